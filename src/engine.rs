@@ -223,14 +223,20 @@ struct RowOut {
     cands: Vec<CandOut>,
 }
 
+/// Per-thread working memory, allocated once per run and reused for every row.
 struct Scratch {
+    /// Decoded rows (unused when the file stores aligned F32: the map is read directly).
     xr: Vec<f32>,
     xc: Vec<f32>,
+    /// exp(x - max) of the reference row and of the current candidate row.
+    er: Vec<f32>,
+    ec: Vec<f32>,
     br: Vec<f64>,
     bc: Vec<f64>,
     order: Vec<(f64, usize)>,
     tok_p: Vec<u32>,
     tok_q: Vec<u32>,
+    raw: Vec<u8>,
 }
 
 impl Scratch {
@@ -238,11 +244,14 @@ impl Scratch {
         Scratch {
             xr: vec![0.0; cols],
             xc: vec![0.0; cols],
+            er: vec![0.0; cols],
+            ec: vec![0.0; cols],
             br: vec![0.0; kernel::norm_blocks(cols)],
             bc: vec![0.0; kernel::norm_blocks(cols)],
             order: Vec::with_capacity(draws),
             tok_p: vec![0; draws],
             tok_q: vec![0; draws],
+            raw: Vec::new(),
         }
     }
 }
@@ -280,9 +289,10 @@ fn fold_draws(est: &mut [[[f64; 3]; 2]], dir: usize, samples: &[usize], mut log_
 }
 
 fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
-    let cols = s.xr.len();
-    ctx.reference.read_row(row, &mut s.xr);
-    let nr = match kernel::normalise(&s.xr, &mut s.br) {
+    let Scratch { xr: xr_buf, xc: xc_buf, er, ec, br, bc, order, tok_p, tok_q, raw } = s;
+    let cols = xr_buf.len();
+    let xr = ctx.reference.load_row(row, xr_buf, raw);
+    let nr = match kernel::normalise_store(xr, er, br) {
         Ok(n) => n,
         Err(f) => {
             out.ref_fault = Some(f);
@@ -292,13 +302,13 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
     out.ref_fault = None;
     let draws = ctx.draws;
     if draws > 0 {
-        draw_tokens(&s.xr, nr.max, &s.br, ctx.opts.seed, row as u64, 0, &mut s.order, &mut s.tok_p[..draws]);
+        draw_tokens(xr, nr.max, br, ctx.opts.seed, row as u64, 0, order, &mut tok_p[..draws]);
     }
     let target = ctx.targets.map(|t| t[row]).filter(|&t| t >= 0 && (t as usize) < cols);
     for (k, cand) in ctx.candidates.iter().enumerate() {
         let co = &mut out.cands[k];
-        cand.read_row(row, &mut s.xc);
-        let nc = match kernel::normalise(&s.xc, &mut s.bc) {
+        let xc = cand.load_row(row, xc_buf, raw);
+        let nc = match kernel::normalise_store(xc, ec, bc) {
             Ok(n) => n,
             Err(f) => {
                 co.fault = Some(f);
@@ -306,19 +316,19 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
             }
         };
         co.fault = None;
-        let pm = kernel::compare_rows(&s.xr, &s.xc, &nr, &nc);
+        let pm = kernel::compare_stored(xr, xc, er, ec, &nr, &nc);
         let m = &mut co.m;
         m[KL] = pm.kl;
         m[KL_REV] = pm.kl_reverse;
         m[TV] = pm.tv;
-        m[JS] = if ctx.opts.js { kernel::js_divergence(&s.xr, &s.xc, &nr, &nc) } else { f64::NAN };
+        m[JS] = if ctx.opts.js { kernel::js_divergence(xr, xc, &nr, &nc) } else { f64::NAN };
         m[ENT_REF] = nr.entropy;
         m[ENT_CAND] = nc.entropy;
         m[TOP1] = if nr.argmax == nc.argmax { 1.0 } else { 0.0 };
         match target {
             Some(t) => {
-                m[NLL_REF] = nr.lse - s.xr[t as usize] as f64;
-                m[NLL_CAND] = nc.lse - s.xc[t as usize] as f64;
+                m[NLL_REF] = nr.lse - xr[t as usize] as f64;
+                m[NLL_CAND] = nc.lse - xc[t as usize] as f64;
             }
             None => {
                 m[NLL_REF] = f64::NAN;
@@ -326,10 +336,10 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
             }
         }
         if draws > 0 {
-            let (xr, xc, tp) = (&s.xr, &s.xc, &s.tok_p);
+            let tp = &*tok_p;
             fold_draws(&mut co.est, 0, &ctx.opts.samples, |j| log_ratio(xr, &nr, xc, &nc, tp[j]));
-            draw_tokens(&s.xc, nc.max, &s.bc, ctx.opts.seed, row as u64, 1 + k as u64, &mut s.order, &mut s.tok_q[..draws]);
-            let tq = &s.tok_q;
+            draw_tokens(xc, nc.max, bc, ctx.opts.seed, row as u64, 1 + k as u64, order, &mut tok_q[..draws]);
+            let tq = &*tok_q;
             // Reverse: x ~ q, log r' = log p(x) - log q(x).
             fold_draws(&mut co.est, 1, &ctx.opts.samples, |j| -log_ratio(xr, &nr, xc, &nc, tq[j]));
         }
@@ -385,9 +395,16 @@ pub fn run(
         cands: vec![CandOut { fault: None, m: [0.0; NMETRIC], est: vec![[[0.0; 3]; 2]; samples.len()] }; nc],
     };
     let mut outs: Vec<RowOut> = vec![blank; block];
+    // One scratch per worker thread, taken by the worker's index, so nothing is
+    // allocated per row or per task.
+    let scratch: Vec<std::sync::Mutex<Scratch>> =
+        (0..rayon::current_num_threads().max(1)).map(|_| std::sync::Mutex::new(Scratch::new(cols, draws))).collect();
     let bar = progress_bar(opts.progress, range.len() as u64);
     let start = std::time::Instant::now();
     let mut row0 = range.start;
+    for f in &files {
+        f.advise_window(row0, block);
+    }
     while row0 < range.end {
         let row1 = (row0 + block).min(range.end);
         let n = row1 - row0;
@@ -396,17 +413,22 @@ pub fn run(
         }
         {
             use rayon::prelude::*;
+            // Each task takes a few consecutive rows, so a worker reads the
+            // maps front to back; small tasks keep both workers busy to the
+            // end of the block.
+            const TASK_ROWS: usize = 2;
             let slots = &mut outs[..n];
-            slots.par_iter_mut().enumerate().for_each_init(
-                || Scratch::new(cols, draws),
-                |s, (i, out)| {
-                    let row = row0 + i;
+            slots.par_chunks_mut(TASK_ROWS).enumerate().for_each(|(ti, task)| {
+                let w = rayon::current_thread_index().unwrap_or(0) % scratch.len();
+                let mut s = scratch[w].lock().unwrap_or_else(|e| e.into_inner());
+                for (i, out) in task.iter_mut().enumerate() {
+                    let row = row0 + ti * TASK_ROWS + i;
                     out.counted = counted(row, &files);
                     if out.counted {
-                        compute_row(&ctx, s, row, out);
+                        compute_row(&ctx, &mut s, row, out);
                     }
-                },
-            );
+                }
+            });
         }
         for (i, out) in outs[..n].iter().enumerate() {
             let row = row0 + i;

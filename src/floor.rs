@@ -22,22 +22,11 @@ pub fn step(dtype: StoredDtype, x: f32) -> f64 {
     (2f64.powi(e - dtype.mantissa_bits())).max(dtype.min_step())
 }
 
-/// Expected KL from storage rounding of one row pair.
+/// Expected KL from storage rounding of one row pair (computed by the
+/// vectorised kernel; `step` gives the same steps one value at a time).
 pub fn row_floor(x: &[f32], xd: StoredDtype, y: &[f32], yd: StoredDtype) -> f64 {
-    let m = x.iter().cloned().fold(f32::NEG_INFINITY, f32::max) as f64;
-    if !m.is_finite() {
-        return f64::NAN;
-    }
-    let s: f64 = x.iter().map(|&v| (v as f64 - m).exp()).sum();
-    let mut acc = 0f64;
-    for (&a, &b) in x.iter().zip(y) {
-        let p = (a as f64 - m).exp() / s;
-        if p > 0.0 && b.is_finite() {
-            let v = (step(xd, a).powi(2) + step(yd, b).powi(2)) / 12.0;
-            acc += p * (1.0 - p) * v;
-        }
-    }
-    0.5 * acc
+    let r = |d: StoredDtype| crate::kernel::Rounding { mantissa_bits: d.mantissa_bits(), min_exp: d.min_step().log2() as i32 };
+    crate::kernel::storage_floor_row(x, r(xd), y, r(yd))
 }
 
 /// Mean floor over up to `max_rows` evenly spaced rows of the pair.

@@ -4,10 +4,10 @@
 
 use super::file::MappedFile;
 use crate::error::{Error, Result};
-use half::{bf16, f16};
 use safetensors::Dtype;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicUsize, Ordering};
 
 /// The floating-point formats a `logits` tensor may be stored in.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -69,6 +69,10 @@ struct Shard {
     logits_start: usize,
     /// Columns per stored row (the file's own vocabulary).
     stride: usize,
+    /// Map offset up to which pages were already released.
+    released: AtomicUsize,
+    /// The file opened for positioned reads (the streaming path).
+    reader: Option<std::fs::File>,
 }
 
 #[derive(Debug)]
@@ -239,11 +243,11 @@ impl LogitFile {
             }
             dtype = Some(d);
             vocab = Some(v);
-            shards.push(Shard { first_row, rows, logits_start: logits.start, stride: v, file });
+            shards.push(Shard { first_row, rows, logits_start: logits.start, stride: v, released: AtomicUsize::new(0), reader: std::fs::File::open(fpath).ok(), file });
             first_row += rows;
         }
         // A 3-D tensor with length 0 has zero rows and was refused above.
-        Ok(LogitFile {
+        let f = LogitFile {
             path: path.to_path_buf(),
             dtype: dtype.unwrap(),
             rows: first_row,
@@ -255,7 +259,9 @@ impl LogitFile {
             metadata,
             shape: shape0,
             shards,
-        })
+        };
+        f.advise_sequential();
+        Ok(f)
     }
 
     pub fn prompts(&self) -> usize {
@@ -294,40 +300,115 @@ impl LogitFile {
         decode_row(self.dtype, bytes, out);
     }
 
-    /// Asks the kernel to read ahead `rows` starting at `row` and to drop
-    /// pages of rows before it; on non-Unix systems this does nothing.
+    /// The first `buf.len()` columns of `row` as f32: the mapped values
+    /// themselves when the file stores aligned F32, else decoded into `buf`.
+    pub fn row_view<'a>(&'a self, row: usize, buf: &'a mut [f32]) -> &'a [f32] {
+        let bytes = self.row_bytes(row, buf.len());
+        if self.dtype == StoredDtype::F32 {
+            if let Ok(v) = bytemuck::try_cast_slice::<u8, f32>(bytes) {
+                if cfg!(target_endian = "little") {
+                    return v;
+                }
+            }
+        }
+        decode_row(self.dtype, bytes, buf);
+        buf
+    }
+
+    /// Like `row_view`, but reading the stored bytes with a positioned read
+    /// into `raw` (or, for F32, straight into `buf`) instead of touching the map.
+    pub fn load_row<'a>(&'a self, row: usize, buf: &'a mut [f32], raw: &mut Vec<u8>) -> &'a [f32] {
+        let s = self.shard_of(row);
+        let Some(f) = s.reader.as_ref().filter(|_| use_reads()) else {
+            return self.row_view(row, buf);
+        };
+        use std::os::unix::fs::FileExt;
+        let es = self.dtype.size();
+        let start = s.logits_start + (row - s.first_row) * s.stride * es;
+        let len = buf.len() * es;
+        if self.dtype == StoredDtype::F32 && cfg!(target_endian = "little") {
+            let dst: &mut [u8] = bytemuck::cast_slice_mut(&mut buf[..]);
+            if f.read_exact_at(dst, start as u64).is_ok() {
+                return buf;
+            }
+            return self.row_view(row, buf);
+        }
+        raw.resize(len, 0);
+        if f.read_exact_at(&mut raw[..], start as u64).is_err() {
+            return self.row_view(row, buf);
+        }
+        decode_row(self.dtype, &raw[..], buf);
+        buf
+    }
+
+    /// Asks the kernel to read ahead `rows` rows starting at `row` (an
+    /// asynchronous hint; on non-Unix systems it does nothing).
     pub fn advise_window(&self, row: usize, rows: usize) {
+        let es = self.dtype.size();
         for s in &self.shards {
-            let es = self.dtype.size();
-            let row_bytes = s.stride * es;
             let lo = row.max(s.first_row);
             let hi = (row + rows).min(s.first_row + s.rows);
             if lo < hi {
+                let row_bytes = s.stride * es;
                 let off = s.logits_start + (lo - s.first_row) * row_bytes;
                 let _ = s.file.map.advise_range(memmap2::Advice::WillNeed, off, (hi - lo) * row_bytes);
             }
         }
     }
 
-    /// Releases pages of rows that were fully processed, so a file larger than
-    /// RAM streams through the page cache instead of filling it.
+    /// Releases the mapped pages of rows before `row` that were not released
+    /// yet, so that a file larger than RAM streams through the page cache and
+    /// the process's resident size stays bounded. Only whole pages that hold
+    /// nothing but finished rows are released; each page is released once.
+    /// The page cache keeps the file's pages, so a later run still finds them.
     pub fn release_before(&self, row: usize) {
+        let es = self.dtype.size();
+        let page = page_size();
         for s in &self.shards {
             if row <= s.first_row {
                 continue;
             }
             let done = (row - s.first_row).min(s.rows);
-            let es = self.dtype.size();
-            let page = 4096;
-            let begin = s.logits_start / page * page;
             let end = (s.logits_start + done * s.stride * es) / page * page;
-            if end > begin + page {
+            let begin = s.released.load(Ordering::Relaxed).max(s.logits_start / page * page);
+            if end > begin {
                 // SAFETY: DontNeed on a read-only private file mapping only drops
-                // cached pages; later reads fault them back in from the file.
+                // this process's page-table entries for those pages (nothing was
+                // ever written to them); later reads fault them back in from the
+                // page cache or the file. No reference into the range is alive:
+                // the rows before `row` are finished.
                 let _ = unsafe { s.file.map.unchecked_advise_range(memmap2::UncheckedAdvice::DontNeed, begin, end - begin) };
+                s.released.store(end, Ordering::Relaxed);
             }
         }
     }
+
+    /// Tells the kernel that the logits of every shard will be read once,
+    /// front to back (larger read-ahead on page faults).
+    fn advise_sequential(&self) {
+        let es = self.dtype.size();
+        for s in &self.shards {
+            let _ = s.file.map.advise_range(memmap2::Advice::Sequential, s.logits_start, s.rows * s.stride * es);
+        }
+    }
+}
+
+fn use_reads() -> bool {
+    static V: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
+    *V.get_or_init(|| std::env::var("KLGAUGE_IO").map_or(false, |v| v == "read"))
+}
+
+/// The virtual-memory page size (4 KiB where it cannot be asked).
+fn page_size() -> usize {
+    #[cfg(unix)]
+    {
+        // SAFETY: sysconf has no preconditions.
+        let v = unsafe { libc::sysconf(libc::_SC_PAGESIZE) };
+        if v > 0 {
+            return v as usize;
+        }
+    }
+    4096
 }
 
 fn names(f: &MappedFile) -> String {
@@ -338,35 +419,12 @@ fn names(f: &MappedFile) -> String {
     }
 }
 
-/// Converts stored little-endian values to f32. The aligned case goes through
-/// `half`'s bulk slice conversion (vectorised); a misaligned tensor, which the
-/// format allows, falls back to a byte-wise decode.
+/// Converts stored little-endian values to f32 (any alignment; the format
+/// allows a misaligned tensor) with the kernel's vectorised decoders.
 pub fn decode_row(dtype: StoredDtype, bytes: &[u8], out: &mut [f32]) {
-    use half::slice::HalfFloatSliceExt;
     match dtype {
-        StoredDtype::F32 => match bytemuck::try_cast_slice::<u8, f32>(bytes) {
-            Ok(s) => out.copy_from_slice(s),
-            Err(_) => {
-                for (o, c) in out.iter_mut().zip(bytes.chunks_exact(4)) {
-                    *o = f32::from_le_bytes(c.try_into().unwrap());
-                }
-            }
-        },
-        StoredDtype::BF16 => match bytemuck::try_cast_slice::<u8, bf16>(bytes) {
-            Ok(s) => s.convert_to_f32_slice(out),
-            Err(_) => {
-                for (o, c) in out.iter_mut().zip(bytes.chunks_exact(2)) {
-                    *o = bf16::from_le_bytes([c[0], c[1]]).to_f32();
-                }
-            }
-        },
-        StoredDtype::F16 => match bytemuck::try_cast_slice::<u8, f16>(bytes) {
-            Ok(s) => s.convert_to_f32_slice(out),
-            Err(_) => {
-                for (o, c) in out.iter_mut().zip(bytes.chunks_exact(2)) {
-                    *o = f16::from_le_bytes([c[0], c[1]]).to_f32();
-                }
-            }
-        },
+        StoredDtype::F32 => crate::kernel::decode_f32(bytes, out),
+        StoredDtype::BF16 => crate::kernel::decode_bf16(bytes, out),
+        StoredDtype::F16 => crate::kernel::decode_f16(bytes, out),
     }
 }

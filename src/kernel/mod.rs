@@ -1,12 +1,16 @@
 //! The per-row math: the hot kernel.
 //!
 //! For each reference row we find the maximum, the log-sum-exp and the
-//! entropy (`normalise`), and for each candidate row the same, then one fused
-//! pass over both rows (`compare_rows`) gives KL in both directions and the
-//! total variation. Everything runs on f32 lanes in fixed blocks whose partial
+//! entropy, keeping exp(x - max) of every column (`normalise_store`); the same
+//! for each candidate row; then one fused pass over both rows and both stored
+//! exponentials (`compare_stored`) gives KL in both directions and the total
+//! variation without another exp. A row costs one exp per column and file.
+//!
+//! Everything runs on 16 f32 lanes (see `lanes`) in fixed blocks whose partial
 //! sums are carried in f64, so a 256k-column row loses no precision to
 //! accumulation, and the summation order depends only on the row, never on
-//! the thread that ran it.
+//! the thread that ran it or on the instruction set: the AVX-512, AVX2 and
+//! scalar builds of each function give the same bits (tested).
 //!
 //! KL uses SPEC's cancellation-free form: with d = log p - log q,
 //! KL(p||q) = sum p * g(d) with g(d) = d + e^-d - 1 >= 0. For |d| < 0.5 g is
@@ -17,14 +21,18 @@
 //! constant computed in f64, not from two rounded log-probabilities.
 
 pub mod exp;
+pub mod lanes;
 
-use exp::exp_f32;
+use exp::{exp_nonpos, mul_add, EXP_UNDERFLOW};
+use lanes::{hmax, hsum, hsum64, load, padded, widen_add, F, W};
+use std::sync::atomic::{AtomicU8, Ordering};
 
 /// Columns per partial-sum block of the normalising pass; also the block
 /// granularity the sampler walks (see `estimators`).
 pub const NORM_BLOCK: usize = 64;
+/// Columns whose partial sums the pair pass carries in f32 lanes.
 const PAIR_BLOCK: usize = 256;
-const LANES: usize = 8;
+const NEG_INF: f32 = f32::NEG_INFINITY;
 
 /// What makes a row unusable (SPEC: skipped, counted and listed).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -45,7 +53,7 @@ impl RowFault {
 }
 
 /// Summary of one row's log-softmax.
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone, Copy, PartialEq)]
 pub struct RowNorm {
     pub max: f32,
     /// Lowest column holding the maximum (SPEC: ties go to the lowest id).
@@ -58,82 +66,323 @@ pub struct RowNorm {
 }
 
 /// Per-row results of the fused pair pass.
-#[derive(Debug, Clone, Copy, Default)]
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
 pub struct PairMetrics {
     pub kl: f64,
     pub kl_reverse: f64,
     pub tv: f64,
 }
 
-/// Finds the maximum and checks the row for faults.
-#[inline(always)]
-fn scan_max(x: &[f32]) -> (f32, bool) {
-    let mut m = [f32::NEG_INFINITY; LANES];
-    let mut bad = [false; LANES];
-    let chunks = x.chunks_exact(LANES);
-    let tail = chunks.remainder();
-    for c in chunks {
-        for j in 0..LANES {
-            let v = c[j];
-            m[j] = if v > m[j] { v } else { m[j] };
-            bad[j] |= v != v;
-        }
-    }
-    let mut mx = f32::NEG_INFINITY;
-    let mut nan = false;
-    for j in 0..LANES {
-        mx = if m[j] > mx { m[j] } else { mx };
-        nan |= bad[j];
-    }
-    for &v in tail {
-        mx = if v > mx { v } else { mx };
-        nan |= v != v;
-    }
-    (mx, nan)
+// ---------------------------------------------------------------------------
+// Instruction-set levels and run-time dispatch.
+
+/// The instruction sets a kernel function can be compiled for.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+pub enum Level {
+    Scalar = 1,
+    Avx2 = 2,
+    Avx512 = 3,
 }
 
-/// Sums exp(x - m) and (x - m) exp(x - m) over the row, storing the first sum
-/// of every NORM_BLOCK columns into `blocks` (len = ceil(n / NORM_BLOCK)).
-#[inline(always)]
-fn sum_exp_blocks(x: &[f32], m: f32, blocks: &mut [f64]) -> (f64, f64) {
-    let mut s_tot = 0f64;
-    let mut t_tot = 0f64;
-    for (bi, blk) in x.chunks(NORM_BLOCK).enumerate() {
-        let mut s = [0f32; LANES];
-        let mut t = [0f32; LANES];
-        let chunks = blk.chunks_exact(LANES);
-        let tail = chunks.remainder();
-        for c in chunks {
-            for j in 0..LANES {
-                let a = c[j] - m;
-                let e = exp_f32(a);
-                s[j] += e;
-                // a = -inf gives e = 0; keep the product 0 rather than NaN.
-                t[j] += if e > 0.0 { a * e } else { 0.0 };
+impl Level {
+    pub fn name(self) -> &'static str {
+        match self {
+            Level::Scalar => "scalar",
+            Level::Avx2 => "avx2",
+            Level::Avx512 => "avx512",
+        }
+    }
+    fn from_u8(v: u8) -> Level {
+        match v {
+            3 => Level::Avx512,
+            2 => Level::Avx2,
+            _ => Level::Scalar,
+        }
+    }
+}
+
+/// The best level this CPU runs.
+pub fn detected_level() -> Level {
+    static CACHE: AtomicU8 = AtomicU8::new(0);
+    let c = CACHE.load(Ordering::Relaxed);
+    if c != 0 {
+        return Level::from_u8(c);
+    }
+    #[allow(unused_mut)]
+    let mut l = Level::Scalar;
+    #[cfg(target_arch = "x86_64")]
+    {
+        use std::arch::is_x86_feature_detected as has;
+        if has!("avx2") && has!("fma") && has!("bmi1") && has!("bmi2") && has!("f16c") {
+            l = Level::Avx2;
+            if has!("avx512f") && has!("avx512bw") && has!("avx512dq") && has!("avx512vl") {
+                l = Level::Avx512;
             }
         }
-        let mut sb = 0f32;
-        let mut tb = 0f32;
-        for &v in tail {
-            let a = v - m;
-            let e = exp_f32(a);
-            sb += e;
-            tb += if e > 0.0 { a * e } else { 0.0 };
-        }
-        for j in 0..LANES {
-            sb += s[j];
-            tb += t[j];
-        }
-        blocks[bi] = sb as f64;
-        s_tot += sb as f64;
-        t_tot += tb as f64;
     }
-    (s_tot, t_tot)
+    CACHE.store(l as u8, Ordering::Relaxed);
+    l
+}
+
+/// The level the kernel uses: the detected one, or a lower one named by the
+/// environment variable `KLGAUGE_SIMD` (`scalar`, `avx2`, `avx512`), for
+/// benchmarks and for checking one path against another.
+pub fn level() -> Level {
+    static CACHE: AtomicU8 = AtomicU8::new(0);
+    let c = CACHE.load(Ordering::Relaxed);
+    if c != 0 {
+        return Level::from_u8(c);
+    }
+    let best = detected_level();
+    let want = match std::env::var("KLGAUGE_SIMD").as_deref() {
+        Ok("scalar") => Level::Scalar,
+        Ok("avx2") => Level::Avx2,
+        _ => best,
+    };
+    let l = want.min(best);
+    CACHE.store(l as u8, Ordering::Relaxed);
+    l
+}
+
+// The same source compiled once per level, chosen per call by a cached CPU
+// feature check. Implementations take `const L: u8` (0 scalar, 1 AVX2,
+// 2 AVX-512), which selects fused multiply-adds (`exp::fused`) and the
+// horizontal sums (`lanes`). With the lane layout fixed, builds that agree on
+// fusing give the same bits (tested).
+macro_rules! dispatched {
+    ($(#[$m:meta])* pub fn $name:ident / $at:ident ($($a:ident: $t:ty),*) -> $r:ty => $imp:ident) => {
+        $(#[$m])*
+        #[inline]
+        pub fn $name($($a: $t),*) -> $r {
+            $at(level(), $($a),*)
+        }
+
+        /// The same computed at a given level; a level the CPU lacks runs
+        /// the best one it has below it.
+        pub fn $at(level: Level, $($a: $t),*) -> $r {
+            #[cfg(target_arch = "x86_64")]
+            {
+                #[target_feature(enable = "avx512f,avx512bw,avx512dq,avx512vl,avx2,fma,bmi1,bmi2,f16c")]
+                unsafe fn wide512($($a: $t),*) -> $r {
+                    $imp::<2>($($a),*)
+                }
+                #[target_feature(enable = "avx2,fma,bmi1,bmi2,f16c")]
+                unsafe fn wide256($($a: $t),*) -> $r {
+                    $imp::<1>($($a),*)
+                }
+                let level = level.min(detected_level());
+                if level == Level::Avx512 {
+                    // SAFETY: the features were detected at run time.
+                    return unsafe { wide512($($a),*) };
+                }
+                if level == Level::Avx2 {
+                    // SAFETY: as above.
+                    return unsafe { wide256($($a),*) };
+                }
+            }
+            let _ = level;
+            $imp::<0>($($a),*)
+        }
+    };
+}
+
+/// Whether the scalar build fuses multiply-adds like the vector builds (see
+/// `exp::fused`); where it does not, it differs from them in the last bits,
+/// never in accuracy.
+pub const SCALAR_FMA: bool = exp::fused(0);
+
+// ---------------------------------------------------------------------------
+// Decoding stored values.
+
+/// 2^112: moves an f16 exponent (bias 15) to an f32 one (bias 127).
+const F16_SCALE: f32 = 5.192_297e33;
+
+#[inline(always)]
+fn bf16_to_f32(h: u16) -> f32 {
+    f32::from_bits((h as u32) << 16)
+}
+
+/// IEEE half to single, exact for every input: the 15 magnitude bits moved
+/// into an f32 and scaled by 2^112 (normals and subnormals alike), infinities
+/// and NaNs rebuilt with the top exponent, then the sign.
+#[inline(always)]
+fn f16_to_f32(h: u16) -> f32 {
+    let h = h as u32;
+    let em = h & 0x7fff;
+    let mag = f32::from_bits(em << 13) * F16_SCALE;
+    let mag = if em >= 0x7c00 { f32::from_bits((em << 13) | 0x7f80_0000) } else { mag };
+    f32::from_bits(mag.to_bits() | ((h & 0x8000) << 16))
 }
 
 #[inline(always)]
-fn normalise_impl(x: &[f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
-    let (max, nan) = scan_max(x);
+fn decode_2byte(bytes: &[u8], out: &mut [f32], conv: impl Fn(u16) -> f32) {
+    assert_eq!(bytes.len(), 2 * out.len(), "decode: byte count");
+    let mut ob = out.chunks_exact_mut(W);
+    let mut ib = bytes.chunks_exact(2 * W);
+    for (o, c) in (&mut ob).zip(&mut ib) {
+        for j in 0..W {
+            o[j] = conv(u16::from_le_bytes([c[2 * j], c[2 * j + 1]]));
+        }
+    }
+    for (o, c) in ob.into_remainder().iter_mut().zip(ib.remainder().chunks_exact(2)) {
+        *o = conv(u16::from_le_bytes([c[0], c[1]]));
+    }
+}
+
+#[inline(always)]
+fn decode_bf16_impl<const L: u8>(bytes: &[u8], out: &mut [f32]) {
+    decode_2byte(bytes, out, bf16_to_f32)
+}
+
+#[inline(always)]
+fn decode_f16_impl<const L: u8>(bytes: &[u8], out: &mut [f32]) {
+    decode_2byte(bytes, out, f16_to_f32)
+}
+
+#[inline(always)]
+fn decode_f32_impl<const L: u8>(bytes: &[u8], out: &mut [f32]) {
+    assert_eq!(bytes.len(), 4 * out.len(), "decode: byte count");
+    for (o, c) in out.iter_mut().zip(bytes.chunks_exact(4)) {
+        *o = f32::from_le_bytes([c[0], c[1], c[2], c[3]]);
+    }
+}
+
+dispatched! {
+    /// Little-endian bf16 values (any alignment) to f32.
+    pub fn decode_bf16 / decode_bf16_at(bytes: &[u8], out: &mut [f32]) -> () => decode_bf16_impl
+}
+
+dispatched! {
+    /// Little-endian IEEE f16 values (any alignment) to f32, exactly.
+    pub fn decode_f16 / decode_f16_at(bytes: &[u8], out: &mut [f32]) -> () => decode_f16_impl
+}
+
+dispatched! {
+    /// Little-endian f32 values at any alignment.
+    pub fn decode_f32 / decode_f32_at(bytes: &[u8], out: &mut [f32]) -> () => decode_f32_impl
+}
+
+// ---------------------------------------------------------------------------
+// Normalising one row.
+
+/// The maximum, the lowest column holding it, and whether the row holds a NaN.
+#[inline(always)]
+fn scan_max(x: &[f32]) -> (f32, usize, bool) {
+    // Per lane: the largest value and the chunk where it first occurred
+    // (strictly greater replaces, so ties keep the earlier chunk).
+    #[inline(always)]
+    fn step(c: &F, chunk: u32, m: &mut F, at: &mut [u32; W], bad: &mut [u32; W]) {
+        for j in 0..W {
+            let v = c[j];
+            let gt = v > m[j];
+            m[j] = if gt { v } else { m[j] };
+            at[j] = if gt { chunk } else { at[j] };
+            bad[j] = if v != v { 1 } else { bad[j] };
+        }
+    }
+    let mut m = [NEG_INF; W];
+    let mut at = [0u32; W];
+    let mut bad = [0u32; W];
+    let chunks = x.chunks_exact(W);
+    let tail = chunks.remainder();
+    let mut ci = 0u32;
+    for c in chunks {
+        step(load(c), ci, &mut m, &mut at, &mut bad);
+        ci += 1;
+    }
+    if !tail.is_empty() {
+        step(&padded(tail, NEG_INF), ci, &mut m, &mut at, &mut bad);
+    }
+    let nan = bad.iter().fold(0, |a, &b| a | b) != 0;
+    let mx = hmax(&m);
+    let mut arg = usize::MAX;
+    for j in 0..W {
+        if m[j] == mx {
+            arg = arg.min(at[j] as usize * W + j);
+        }
+    }
+    (mx, if arg == usize::MAX { 0 } else { arg }, nan)
+}
+
+/// exp(x - m) of 16 columns, added into the running sums of exp and of
+/// (x - m) exp(x - m).
+#[inline(always)]
+fn exp_step<const L: u8>(c: &F, m: f32, s: &mut F, t: &mut F) -> F {
+    let mut e = [0f32; W];
+    for j in 0..W {
+        let a = c[j] - m;
+        let v = exp_nonpos::<L>(a);
+        s[j] += v;
+        // Below the underflow bound v = 0; the clamp keeps -inf * 0 from
+        // making a NaN and changes nothing else.
+        let ac = if a < EXP_UNDERFLOW { EXP_UNDERFLOW } else { a };
+        t[j] = mul_add::<L>(ac, v, t[j]);
+        e[j] = v;
+    }
+    e
+}
+
+/// Stores exp(x - m) into `e`, the sum of every NORM_BLOCK columns into
+/// `blocks`, and returns (sum exp(x - m), sum (x - m) exp(x - m)).
+#[inline(always)]
+fn exp_pass<const L: u8>(x: &[f32], m: f32, e: &mut [f32], blocks: &mut [f64]) -> (f64, f64) {
+    // t is carried in f32 lanes over four blocks (256 columns), then in f64.
+    // The lanes of each block's sum are kept and reduced GROUP blocks at a
+    // time, away from the exp chains they depend on.
+    const T_EVERY: usize = 4;
+    const GROUP: usize = 16;
+    let n = x.len();
+    let mut s_tot = 0f64;
+    let mut t_acc = [0f64; W];
+    let mut t = [0f32; W];
+    let mut lanes = [[0f32; W]; GROUP];
+    #[inline(always)]
+    fn flush<const L: u8>(lanes: &[F], first: usize, blocks: &mut [f64], s_tot: &mut f64) {
+        for (k, l) in lanes.iter().enumerate() {
+            let b = hsum::<L>(l);
+            blocks[first + k] = b as f64;
+            *s_tot += b as f64;
+        }
+    }
+    let nb = norm_blocks(n);
+    let mut bi = 0usize;
+    while bi < nb {
+        let g = GROUP.min(nb - bi);
+        for k in 0..g {
+            let lo = (bi + k) * NORM_BLOCK;
+            let hi = (lo + NORM_BLOCK).min(n);
+            let (bx, be) = (&x[lo..hi], &mut e[lo..hi]);
+            let mut s = [0f32; W];
+            let cx = bx.chunks_exact(W);
+            let tail = cx.remainder();
+            let mut ce = be.chunks_exact_mut(W);
+            for (c, o) in cx.zip(&mut ce) {
+                let v = exp_step::<L>(load(c), m, &mut s, &mut t);
+                o.copy_from_slice(&v);
+            }
+            if !tail.is_empty() {
+                let v = exp_step::<L>(&padded(tail, NEG_INF), m, &mut s, &mut t);
+                let o = ce.into_remainder();
+                o.copy_from_slice(&v[..o.len()]);
+            }
+            lanes[k] = s;
+            if (bi + k) % T_EVERY == T_EVERY - 1 {
+                widen_add::<L>(&mut t_acc, &t);
+                t = [0f32; W];
+            }
+        }
+        flush::<L>(&lanes[..g], bi, blocks, &mut s_tot);
+        bi += g;
+    }
+    widen_add::<L>(&mut t_acc, &t);
+    (s_tot, hsum64(&t_acc))
+}
+
+#[inline(always)]
+fn normalise_impl<const L: u8>(x: &[f32], e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
+    assert!(e.len() >= x.len(), "normalise: exp buffer shorter than the row");
+    assert!(blocks.len() >= norm_blocks(x.len()), "normalise: block buffer too short");
+    let (max, argmax, nan) = scan_max(x);
     if nan {
         return Err(RowFault::Nan);
     }
@@ -143,134 +392,195 @@ fn normalise_impl(x: &[f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
     if max == f32::NEG_INFINITY {
         return Err(RowFault::AllNegInf);
     }
-    let argmax = x.iter().position(|&v| v == max).unwrap_or(0) as u32;
-    let (s, t) = sum_exp_blocks(x, max, blocks);
+    let (s, t) = exp_pass::<L>(x, max, &mut e[..x.len()], blocks);
     let ln_s = s.ln();
-    Ok(RowNorm { max, argmax, lse: max as f64 + ln_s, sum: s, entropy: ln_s - t / s })
-}
-
-/// g(d) / d^2 for |d| < 0.5: the Taylor series of (d + e^-d - 1) / d^2,
-/// truncated after d^6 (the next term is below 6e-8 relative at |d| = 0.5).
-#[inline(always)]
-fn g_over_d2(d: f32) -> f32 {
-    const C: [f32; 7] = [
-        1.0 / 2.0,
-        -1.0 / 6.0,
-        1.0 / 24.0,
-        -1.0 / 120.0,
-        1.0 / 720.0,
-        -1.0 / 5040.0,
-        1.0 / 40320.0,
-    ];
-    let mut y = C[6];
-    y = y * d + C[5];
-    y = y * d + C[4];
-    y = y * d + C[3];
-    y = y * d + C[2];
-    y = y * d + C[1];
-    y * d + C[0]
-}
-
-/// The contribution of one column to (KL(p||q), KL(q||p), |p - q|).
-#[inline(always)]
-fn pair_terms(x: f32, y: f32, lr: f32, lc: f32, c: f32) -> (f32, f32, f32) {
-    let p = exp_f32(x - lr);
-    let q = exp_f32(y - lc);
-    let d = (x - y) + c;
-    let d2 = d * d;
-    let small = d.abs() < 0.5;
-    let fwd_direct = p * d + (q - p);
-    let rev_direct = (p - q) - q * d;
-    let fwd_series = p * (d2 * g_over_d2(d));
-    let rev_series = q * (d2 * g_over_d2(-d));
-    let fwd = if small { fwd_series } else { fwd_direct };
-    let rev = if small { rev_series } else { rev_direct };
-    // Where one side has no mass the sum picks up the other side's mass
-    // (SPEC: "+ candidate mass where p is zero"); both zero gives 0.
-    let fwd = if p == 0.0 { q } else { fwd };
-    let rev = if q == 0.0 { p } else { rev };
-    (fwd, rev, (p - q).abs())
-}
-
-#[inline(always)]
-fn compare_impl(x: &[f32], y: &[f32], r: &RowNorm, c: &RowNorm) -> PairMetrics {
-    let lr = r.lse as f32;
-    let lc = c.lse as f32;
-    // d = (x - lse_r) - (y - lse_c) = (x - y) + (lse_c - lse_r); the constant in f64.
-    // Its rounding is a uniform shift of d, to which the sum is insensitive to first order.
-    let cst = (c.lse - r.lse) as f32;
-    let mut out = PairMetrics::default();
-    for (bx, by) in x.chunks(PAIR_BLOCK).zip(y.chunks(PAIR_BLOCK)) {
-        let mut f = [0f32; LANES];
-        let mut b = [0f32; LANES];
-        let mut t = [0f32; LANES];
-        let cx = bx.chunks_exact(LANES);
-        let cy = by.chunks_exact(LANES);
-        let (tx, ty) = (cx.remainder(), cy.remainder());
-        for (vx, vy) in cx.zip(cy) {
-            for j in 0..LANES {
-                let (a, bb, cc) = pair_terms(vx[j], vy[j], lr, lc, cst);
-                f[j] += a;
-                b[j] += bb;
-                t[j] += cc;
-            }
-        }
-        let (mut fs, mut bs, mut ts) = (0f32, 0f32, 0f32);
-        for (&vx, &vy) in tx.iter().zip(ty) {
-            let (a, bb, cc) = pair_terms(vx, vy, lr, lc, cst);
-            fs += a;
-            bs += bb;
-            ts += cc;
-        }
-        for j in 0..LANES {
-            fs += f[j];
-            bs += b[j];
-            ts += t[j];
-        }
-        out.kl += fs as f64;
-        out.kl_reverse += bs as f64;
-        out.tv += ts as f64;
-    }
-    out.tv *= 0.5;
-    out
-}
-
-// Runtime dispatch: the same source compiled once for the baseline target and
-// once with AVX2 enabled, chosen per call by a cached CPU feature check. The
-// arithmetic is identical (Rust never fuses multiply-add on its own), so the
-// two paths give bit-identical results.
-macro_rules! dispatched {
-    ($(#[$m:meta])* pub fn $name:ident($($a:ident: $t:ty),*) -> $r:ty => $imp:ident) => {
-        $(#[$m])*
-        pub fn $name($($a: $t),*) -> $r {
-            #[cfg(target_arch = "x86_64")]
-            {
-                #[target_feature(enable = "avx2")]
-                unsafe fn wide($($a: $t),*) -> $r { $imp($($a),*) }
-                if std::arch::is_x86_feature_detected!("avx2") {
-                    // SAFETY: the feature was detected at run time just above.
-                    return unsafe { wide($($a),*) };
-                }
-            }
-            $imp($($a),*)
-        }
-    };
+    Ok(RowNorm { max, argmax: argmax as u32, lse: max as f64 + ln_s, sum: s, entropy: ln_s - t / s })
 }
 
 dispatched! {
-    /// Log-softmax summary of one row; `blocks` receives the block sums of
-    /// exp(x - max) that the sampler uses (len = ceil(len / NORM_BLOCK)).
-    pub fn normalise(x: &[f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> => normalise_impl
+    /// Log-softmax summary of one row. `e` receives exp(x - max) of every
+    /// column (len >= x.len()), which `compare_stored` reuses; `blocks`
+    /// receives the block sums of those values that the sampler walks
+    /// (len >= ceil(len / NORM_BLOCK)).
+    pub fn normalise_store / normalise_store_at(x: &[f32], e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> => normalise_impl
 }
 
-dispatched! {
-    /// KL both ways and total variation between two normalised rows.
-    pub fn compare_rows(x: &[f32], y: &[f32], r: &RowNorm, c: &RowNorm) -> PairMetrics => compare_impl
+/// `normalise_store` without keeping the exponentials (allocates; for
+/// one-off rows).
+pub fn normalise(x: &[f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
+    let mut e = vec![0f32; x.len()];
+    normalise_store(x, &mut e, blocks)
 }
 
 /// Number of NORM_BLOCK blocks of a row of `cols` columns.
 pub fn norm_blocks(cols: usize) -> usize {
     cols.div_ceil(NORM_BLOCK)
+}
+
+// ---------------------------------------------------------------------------
+// The pair pass.
+
+/// Taylor coefficients of g(d) / d^2 = (d + e^-d - 1) / d^2 = sum_k (-d)^k / (k + 2)!
+/// truncated after d^6 (the next term is below 6e-8 relative at |d| = 0.5).
+const C: [f32; 7] = [
+    1.0 / 2.0,
+    -1.0 / 6.0,
+    1.0 / 24.0,
+    -1.0 / 120.0,
+    1.0 / 720.0,
+    -1.0 / 5040.0,
+    1.0 / 40320.0,
+];
+/// Below this |d| the series form is used.
+const SERIES_BELOW: f32 = 0.5;
+
+struct PairConsts {
+    /// 1 / sum of the reference's exp(x - max), so p = e_ref * inv_r.
+    inv_r: f32,
+    inv_c: f32,
+    /// lse_c - lse_r, so d = (x - y) + cst.
+    cst: f32,
+}
+
+/// Adds 16 columns' contributions to KL(p||q), KL(q||p) and |p - q|.
+#[inline(always)]
+fn pair_step<const L: u8>(x: &F, y: &F, er: &F, ec: &F, k: &PairConsts, f: &mut F, b: &mut F, t: &mut F) {
+    let ma = mul_add::<L>;
+    for j in 0..W {
+        let p = er[j] * k.inv_r;
+        let q = ec[j] * k.inv_c;
+        let d = (x[j] - y[j]) + k.cst;
+        let d2 = d * d;
+        // g(d)/d^2 and g(-d)/d^2 from the even and odd parts of one series.
+        let ev = ma(d2, ma(d2, ma(d2, C[6], C[4]), C[2]), C[0]);
+        let od = d * ma(d2, ma(d2, C[5], C[3]), C[1]);
+        let pq = p - q;
+        let small = d.abs() < SERIES_BELOW;
+        // Direct forms: p d + (q - p) and (p - q) - q d.
+        let fwd = if small { (p * d2) * (ev + od) } else { ma(p, d, -pq) };
+        let rev = if small { (q * d2) * (ev - od) } else { ma(-q, d, pq) };
+        // Where one side has no mass the sum picks up the other side's mass
+        // (SPEC: "+ candidate mass where p is zero"); both zero gives 0.
+        let fwd = if p == 0.0 { q } else { fwd };
+        let rev = if q == 0.0 { p } else { rev };
+        f[j] += fwd;
+        b[j] += rev;
+        t[j] += pq.abs();
+    }
+}
+
+#[inline(always)]
+fn compare_impl<const L: u8>(x: &[f32], y: &[f32], er: &[f32], ec: &[f32], r: &RowNorm, c: &RowNorm) -> PairMetrics {
+    let n = x.len();
+    assert!(y.len() == n && er.len() >= n && ec.len() >= n, "compare: row lengths differ");
+    // d = (x - lse_r) - (y - lse_c) = (x - y) + (lse_c - lse_r); the constant in f64.
+    // Its rounding is a uniform shift of d, to which the sum is insensitive to first order.
+    let k = PairConsts { inv_r: (1.0 / r.sum) as f32, inv_c: (1.0 / c.sum) as f32, cst: (c.lse - r.lse) as f32 };
+    let mut acc = [[0f64; W]; 3];
+    let blocks = x
+        .chunks(PAIR_BLOCK)
+        .zip(y.chunks(PAIR_BLOCK))
+        .zip(er[..n].chunks(PAIR_BLOCK))
+        .zip(ec[..n].chunks(PAIR_BLOCK));
+    for (((bx, by), br), bc) in blocks {
+        let (mut f, mut b, mut t) = ([0f32; W], [0f32; W], [0f32; W]);
+        let (cx, cy, cr, cc) = (bx.chunks_exact(W), by.chunks_exact(W), br.chunks_exact(W), bc.chunks_exact(W));
+        let (tx, ty, tr, tc) = (cx.remainder(), cy.remainder(), cr.remainder(), cc.remainder());
+        for (((vx, vy), vr), vc) in cx.zip(cy).zip(cr).zip(cc) {
+            pair_step::<L>(load(vx), load(vy), load(vr), load(vc), &k, &mut f, &mut b, &mut t);
+        }
+        if !tx.is_empty() {
+            // Padding columns have no mass on either side and add exactly 0.
+            let (px, py) = (padded(tx, NEG_INF), padded(ty, NEG_INF));
+            let (pr, pc) = (padded(tr, 0.0), padded(tc, 0.0));
+            pair_step::<L>(&px, &py, &pr, &pc, &k, &mut f, &mut b, &mut t);
+        }
+        widen_add::<L>(&mut acc[0], &f);
+        widen_add::<L>(&mut acc[1], &b);
+        widen_add::<L>(&mut acc[2], &t);
+    }
+    PairMetrics { kl: hsum64(&acc[0]), kl_reverse: hsum64(&acc[1]), tv: 0.5 * hsum64(&acc[2]) }
+}
+
+dispatched! {
+    /// KL both ways and total variation between two rows normalised by
+    /// `normalise_store`, from the logits and the stored exponentials.
+    pub fn compare_stored / compare_stored_at(x: &[f32], y: &[f32], er: &[f32], ec: &[f32], r: &RowNorm, c: &RowNorm) -> PairMetrics => compare_impl
+}
+
+/// KL both ways and total variation between two normalised rows
+/// (recomputes the exponentials; allocates; same result as `compare_stored`).
+pub fn compare_rows(x: &[f32], y: &[f32], r: &RowNorm, c: &RowNorm) -> PairMetrics {
+    let mut er = vec![0f32; x.len()];
+    let mut ec = vec![0f32; y.len()];
+    let mut b = vec![0f64; norm_blocks(x.len().max(y.len()))];
+    let (r2, c2) = (normalise_store(x, &mut er, &mut b), normalise_store(y, &mut ec, &mut b));
+    debug_assert!(r2.is_ok() && c2.is_ok());
+    compare_stored(x, y, &er, &ec, r, c)
+}
+
+// ---------------------------------------------------------------------------
+// The storage floor of one row pair (see `floor`).
+
+/// How a storage format rounds: `mantissa_bits` explicit mantissa bits, and
+/// 2^`min_exp` the smallest spacing it has (its subnormal step).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Rounding {
+    pub mantissa_bits: i32,
+    pub min_exp: i32,
+}
+
+/// Square of the rounding step at x: 2^(2 max(floor(log2|x|) - bits, min_exp)),
+/// and 2^(2 min_exp) at 0, subnormals, infinities and NaN. floor(log2|x|) is
+/// the f32 exponent field; a subnormal's is below every format's limit.
+#[inline(always)]
+fn step_sq(x: f32, r: Rounding) -> f64 {
+    let ef = ((x.to_bits() >> 23) & 0xff) as i32;
+    let e = if ef == 0 || ef == 255 { i32::MIN / 4 } else { ef - 127 - r.mantissa_bits };
+    let k = if e > r.min_exp { e } else { r.min_exp };
+    f64::from_bits(((2 * k + 1023) as u64) << 52)
+}
+
+#[inline(always)]
+fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> f64 {
+    let n = x.len().min(y.len());
+    let (x, y) = (&x[..n], &y[..n]);
+    let (m, _, nan) = scan_max(x);
+    if nan || !m.is_finite() {
+        return f64::NAN;
+    }
+    let mut e = vec![0f32; n];
+    let mut blocks = vec![0f64; norm_blocks(n)];
+    let (sum, _) = exp_pass::<L>(x, m, &mut e, &mut blocks);
+    let inv = (1.0 / sum) as f32;
+    let mut acc = [0f64; W];
+    #[inline(always)]
+    fn step(x: &F, y: &F, e: &F, inv: f32, rx: Rounding, ry: Rounding, acc: &mut [f64; W]) {
+        for j in 0..W {
+            let p = e[j] * inv;
+            let w = (p * (1.0 - p)) as f64;
+            let v = (step_sq(x[j], rx) + step_sq(y[j], ry)) * (1.0 / 12.0);
+            let ok = p > 0.0 && y[j].is_finite();
+            acc[j] += if ok { w * v } else { 0.0 };
+        }
+    }
+    let (cx, cy, ce) = (x.chunks_exact(W), y.chunks_exact(W), e.chunks_exact(W));
+    let (tx, ty, te) = (cx.remainder(), cy.remainder(), ce.remainder());
+    for ((vx, vy), ve) in cx.zip(cy).zip(ce) {
+        step(load(vx), load(vy), load(ve), inv, rx, ry, &mut acc);
+    }
+    if !tx.is_empty() {
+        step(&padded(tx, 0.0), &padded(ty, 0.0), &padded(te, 0.0), inv, rx, ry, &mut acc);
+    }
+    0.5 * hsum64(&acc)
+}
+
+dispatched! {
+    /// Expected KL that rounding both rows to their storage formats causes:
+    /// 1/2 sum p_i (1 - p_i) (s_x(x_i)^2 + s_y(y_i)^2) / 12 over columns with
+    /// p_i > 0 and y_i finite, p = softmax(x) (see `floor` for the model).
+    /// NaN when x holds a NaN or no finite maximum.
+    pub fn storage_floor_row / storage_floor_row_at(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> f64 => floor_impl
 }
 
 /// Jensen-Shannon divergence (natural log), in f64 one column at a time. It

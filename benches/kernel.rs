@@ -1,0 +1,94 @@
+//! Per-row cost of the hot kernel functions at every instruction-set level
+//! this CPU has: `cargo bench --bench kernel [-- COLS] [WORD ...]`, where a
+//! WORD keeps only the levels and functions whose names contain it (so that
+//! `perf stat` can count the cycles of one of them).
+//!
+//! Prints the fastest and the median of many timed repetitions (the fastest is
+//! the least disturbed by other work on the machine), in microseconds per row
+//! and in columns per nanosecond. No assertions: a benchmark, not a test.
+
+use klgauge::kernel::{self, Level, RowNorm};
+use std::hint::black_box;
+use std::time::Instant;
+
+fn lcg(s: &mut u64) -> f64 {
+    *s = s.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+    ((*s >> 11) as f64) / ((1u64 << 53) as f64)
+}
+
+fn normal(s: &mut u64) -> f32 {
+    let u1 = lcg(s).max(1e-300);
+    let u2 = lcg(s);
+    ((-2.0 * u1.ln()).sqrt() * (2.0 * std::f64::consts::PI * u2).cos()) as f32
+}
+
+/// Runs `f` in batches for about `budget` seconds; returns (min, median) seconds per call.
+fn time(budget: f64, mut f: impl FnMut()) -> (f64, f64) {
+    let reps = 60;
+    let t0 = Instant::now();
+    f();
+    let one = t0.elapsed().as_secs_f64().max(1e-7);
+    let per_batch = ((budget / reps as f64) / one).ceil().max(1.0) as usize;
+    let mut v: Vec<f64> = (0..reps)
+        .map(|_| {
+            let t = Instant::now();
+            for _ in 0..per_batch {
+                f();
+            }
+            t.elapsed().as_secs_f64() / per_batch as f64
+        })
+        .collect();
+    v.sort_by(f64::total_cmp);
+    (v[0], v[reps / 2])
+}
+
+fn main() {
+    let args: Vec<String> = std::env::args().skip(1).filter(|a| !a.starts_with("--")).collect();
+    let cols: usize = args.iter().find_map(|a| a.parse().ok()).unwrap_or(128_256);
+    let words: Vec<&String> = args.iter().filter(|a| a.parse::<usize>().is_err()).collect();
+    let keep = |l: Level, f: &str| {
+        let lw: Vec<_> = words.iter().filter(|w| ["avx512", "avx2", "scalar"].contains(&w.as_str())).collect();
+        let fw: Vec<_> = words.iter().filter(|w| !["avx512", "avx2", "scalar"].contains(&w.as_str())).collect();
+        (lw.is_empty() || lw.iter().any(|w| w.as_str() == l.name())) && (fw.is_empty() || fw.iter().any(|w| f.contains(w.as_str())))
+    };
+    let mut s = 5u64;
+    let x: Vec<f32> = (0..cols).map(|_| 2.5 * normal(&mut s)).collect();
+    let y: Vec<f32> = x.iter().map(|&v| v + 0.1 * normal(&mut s)).collect();
+    let bf: Vec<u8> = x.iter().flat_map(|v| ((v.to_bits() >> 16) as u16).to_le_bytes()).collect();
+    let hf: Vec<u8> = x.iter().flat_map(|v| half::f16::from_f32(*v).to_bits().to_le_bytes()).collect();
+    let mut er = vec![0f32; cols];
+    let mut ec = vec![0f32; cols];
+    let mut out = vec![0f32; cols];
+    let mut blocks = vec![0f64; kernel::norm_blocks(cols)];
+    println!("kernel benchmark, {cols} columns; detected level {}", kernel::detected_level().name());
+    println!("{:<8} {:<22} {:>10} {:>10} {:>9}", "level", "function", "min us", "median us", "col/ns");
+    let levels: Vec<Level> =
+        [Level::Avx512, Level::Avx2, Level::Scalar].into_iter().filter(|&l| l <= kernel::detected_level()).collect();
+    let budget = 0.4;
+    for &l in &levels {
+        let r: RowNorm = kernel::normalise_store_at(l, &x, &mut er, &mut blocks).unwrap();
+        let c: RowNorm = kernel::normalise_store_at(l, &y, &mut ec, &mut blocks).unwrap();
+        let mut rows: Vec<(&str, (f64, f64))> = Vec::new();
+        let mut run = |name: &'static str, f: &mut dyn FnMut()| {
+            if keep(l, name) {
+                rows.push((name, time(budget, f)));
+            }
+        };
+        run("decode_bf16", &mut || kernel::decode_bf16_at(l, black_box(&bf), &mut out));
+        run("decode_f16", &mut || kernel::decode_f16_at(l, black_box(&hf), &mut out));
+        run("normalise_store", &mut || {
+            black_box(kernel::normalise_store_at(l, black_box(&x), &mut er, &mut blocks).ok());
+        });
+        let (er2, ec2) = (er.clone(), ec.clone());
+        run("compare_stored", &mut || {
+            black_box(kernel::compare_stored_at(l, black_box(&x), &y, &er2, &ec2, &r, &c));
+        });
+        let rd = kernel::Rounding { mantissa_bits: 7, min_exp: -133 };
+        run("storage_floor_row", &mut || {
+            black_box(kernel::storage_floor_row_at(l, black_box(&x), rd, &y, rd));
+        });
+        for (name, (mn, med)) in rows {
+            println!("{:<8} {:<22} {:>10.1} {:>10.1} {:>9.2}", l.name(), name, mn * 1e6, med * 1e6, cols as f64 / (mn * 1e9));
+        }
+    }
+}

@@ -1,0 +1,104 @@
+//! Sixteen f32 lanes as a plain array, and the few fixed-order reductions the
+//! kernel needs.
+//!
+//! The kernel loops are written over `[f32; 16]` with one straight-line
+//! statement list per lane and no fused multiply-add. Compiled with AVX-512
+//! each array is one zmm register, with AVX2 two ymm registers, without
+//! either plain scalar or SSE code: the lanes and the order in which they are
+//! summed are the same in every build, so every path produces the same bits.
+
+pub const W: usize = 16;
+pub type F = [f32; W];
+
+/// The first `W` values of `s` (`s` must hold at least `W`).
+#[inline(always)]
+pub fn load(s: &[f32]) -> &F {
+    s[..W].try_into().unwrap()
+}
+
+/// A partial chunk padded with `fill`.
+#[inline(always)]
+pub fn padded(s: &[f32], fill: f32) -> F {
+    let mut v = [fill; W];
+    v[..s.len()].copy_from_slice(s);
+    v
+}
+
+/// Sum of the lanes by a fixed pairwise tree: a_j = v_j + v_(j+8),
+/// b_j = a_j + a_(j+4), then (b_0 + b_2) + (b_1 + b_3). `L` is the build
+/// level (see `kernel::Level`): the vector builds run the same tree with
+/// x86 shuffles, which LLVM does not reliably find on its own.
+#[inline(always)]
+pub fn hsum<const L: u8>(v: &F) -> f32 {
+    #[cfg(target_arch = "x86_64")]
+    if L >= 1 {
+        use std::arch::x86_64::*;
+        // SAFETY: levels 1 and 2 are only instantiated inside functions
+        // compiled with AVX2 (and AVX-512), called after run-time detection;
+        // the loads read the 16 values of `v`.
+        unsafe {
+            let lo = _mm256_loadu_ps(v.as_ptr());
+            let hi = _mm256_loadu_ps(v.as_ptr().add(8));
+            let a = _mm256_add_ps(lo, hi);
+            let b = _mm_add_ps(_mm256_castps256_ps128(a), _mm256_extractf128_ps::<1>(a));
+            let c = _mm_add_ps(b, _mm_movehl_ps(b, b));
+            let d = _mm_add_ss(c, _mm_movehdup_ps(c));
+            return _mm_cvtss_f32(d);
+        }
+    }
+    let mut a = [0f32; 8];
+    for j in 0..8 {
+        a[j] = v[j] + v[j + 8];
+    }
+    let mut b = [0f32; 4];
+    for j in 0..4 {
+        b[j] = a[j] + a[j + 4];
+    }
+    (b[0] + b[2]) + (b[1] + b[3])
+}
+
+/// Sum of f64 lanes by the same fixed tree.
+#[inline(always)]
+pub fn hsum64(v: &[f64; W]) -> f64 {
+    let mut a = [0f64; 8];
+    for j in 0..8 {
+        a[j] = v[j] + v[j + 8];
+    }
+    let mut b = [0f64; 4];
+    for j in 0..4 {
+        b[j] = a[j] + a[j + 4];
+    }
+    (b[0] + b[2]) + (b[1] + b[3])
+}
+
+/// Adds the f32 lanes into f64 lanes (exact conversions, one rounding per add).
+#[inline(always)]
+pub fn widen_add<const L: u8>(acc: &mut [f64; W], v: &F) {
+    #[cfg(target_arch = "x86_64")]
+    if L >= 1 {
+        use std::arch::x86_64::*;
+        // SAFETY: as in `hsum`; the loads and stores stay inside `v` and `acc`.
+        unsafe {
+            for q in 0..4 {
+                let f = _mm256_cvtps_pd(_mm_loadu_ps(v.as_ptr().add(4 * q)));
+                let a = _mm256_loadu_pd(acc.as_ptr().add(4 * q));
+                _mm256_storeu_pd(acc.as_mut_ptr().add(4 * q), _mm256_add_pd(a, f));
+            }
+        }
+        return;
+    }
+    for j in 0..W {
+        acc[j] += v[j] as f64;
+    }
+}
+
+/// Largest lane (ignores NaN lanes; order does not matter for a maximum).
+#[inline(always)]
+pub fn hmax(v: &F) -> f32 {
+    let mut m = f32::NEG_INFINITY;
+    for &x in v {
+        m = if x > m { x } else { m };
+    }
+    m
+}
+
