@@ -76,6 +76,9 @@ fn main() {
         };
         run("decode_bf16", &mut || kernel::decode_bf16_at(l, black_box(&bf), &mut out));
         run("decode_f16", &mut || kernel::decode_f16_at(l, black_box(&hf), &mut out));
+        run("scan_row", &mut || {
+            black_box(kernel::scan_row_at(l, black_box(&x)));
+        });
         run("normalise_store", &mut || {
             black_box(kernel::normalise_store_at(l, black_box(&x), &mut er, &mut blocks).ok());
         });

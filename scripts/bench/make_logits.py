@@ -59,7 +59,7 @@ def main():
     a = ap.parse_args()
     os.makedirs(a.out, exist_ok=True)
     rng = np.random.default_rng(a.seed)
-    targets = rng.integers(0, a.vocab, size=a.rows, dtype=np.int64)
+    targets = np.zeros(a.rows, dtype=np.int64)
     names = ["ref"] + [f"cand{k}" for k in range(1, a.candidates + 1)]
     files = [open(os.path.join(a.out, f"{n}.safetensors"), "wb") for n in names]
     for k, f in enumerate(files):
@@ -69,6 +69,8 @@ def main():
         x = rng.standard_normal((n, a.vocab), dtype=np.float32) * 2.5
         hot = rng.integers(0, a.vocab, size=(n, 8))
         x[np.arange(n)[:, None], hot] += rng.uniform(6, 14, size=(n, 8)).astype(np.float32)
+        # The token that follows: one of the boosted columns, as in a model that predicts well.
+        targets[r0:r0 + n] = hot[np.arange(n), rng.integers(0, 8, size=n)]
         files[0].write(encode(x, a.dtype))
         for k, f in enumerate(files[1:]):
             noise = NOISE[k % len(NOISE)]

@@ -78,6 +78,55 @@ pub fn exp_nonpos<const L: u8>(x: f32) -> f32 {
     }
 }
 
+/// One step of the normalising pass over 16 lanes: e = exp(c - m) (as
+/// `exp_nonpos`), s += e, and t += (c - m) e where c - m >= EXP_UNDERFLOW.
+/// The AVX-512 build is written with intrinsics: it forms y * 2^n with one
+/// `vscalefps` instead of assembling 2^n from bits and multiplying (both are
+/// the exact product rounded once) and masks the underflow lanes; every
+/// other operation is the same, so the lanes are the same bits.
+#[inline(always)]
+pub fn exp_step<const L: u8>(c: &[f32; 16], m: f32, s: &mut [f32; 16], t: &mut [f32; 16]) -> [f32; 16] {
+    #[cfg(target_arch = "x86_64")]
+    if L >= 2 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 2 is only instantiated inside functions compiled
+        // with AVX-512F, called after run-time detection; loads and stores
+        // stay inside the arrays.
+        unsafe {
+            let k = _mm512_set1_ps;
+            let x = _mm512_sub_ps(_mm512_loadu_ps(c.as_ptr()), k(m));
+            let tt = _mm512_fmadd_ps(x, k(LOG2E), k(ROUND));
+            let n = _mm512_sub_ps(tt, k(ROUND));
+            let r = _mm512_fmadd_ps(n, k(-LN2_LO), _mm512_fmadd_ps(n, k(-LN2_HI), x));
+            let r2 = _mm512_mul_ps(r, r);
+            let pa = _mm512_fmadd_ps(k(P0), r, k(P1));
+            let pb = _mm512_fmadd_ps(k(P2), r, k(P3));
+            let pc = _mm512_fmadd_ps(k(P4), r, k(P5));
+            let y = _mm512_fmadd_ps(_mm512_fmadd_ps(pa, r2, pb), r2, pc);
+            let y = _mm512_add_ps(_mm512_fmadd_ps(y, r2, r), k(1.0));
+            // Lanes with x < EXP_UNDERFLOW are zeroed and add no t; NaN lanes are kept.
+            let keep = _mm512_cmp_ps_mask::<_CMP_NLT_UQ>(x, k(EXP_UNDERFLOW));
+            let e = _mm512_maskz_scalef_ps(keep, y, n);
+            _mm512_storeu_ps(s.as_mut_ptr(), _mm512_add_ps(_mm512_loadu_ps(s.as_ptr()), e));
+            _mm512_storeu_ps(t.as_mut_ptr(), _mm512_mask3_fmadd_ps(x, e, _mm512_loadu_ps(t.as_ptr()), keep));
+            let mut out = [0f32; 16];
+            _mm512_storeu_ps(out.as_mut_ptr(), e);
+            return out;
+        }
+    }
+    let mut out = [0f32; 16];
+    for j in 0..16 {
+        let a = c[j] - m;
+        let v = exp_nonpos::<L>(a);
+        s[j] += v;
+        // Below the underflow bound v = 0 and the term is skipped, which
+        // also keeps -inf * 0 from making a NaN.
+        t[j] = if a < EXP_UNDERFLOW { t[j] } else { mul_add::<L>(a, v, t[j]) };
+        out[j] = v;
+    }
+    out
+}
+
 /// exp(x) for any x (clamped to [-87.3, 88.3] first; below -87.3 gives 0).
 #[inline(always)]
 pub fn exp_f32(x: f32) -> f32 {

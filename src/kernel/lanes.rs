@@ -92,6 +92,25 @@ pub fn widen_add<const L: u8>(acc: &mut [f64; W], v: &F) {
     }
 }
 
+/// Whether |v_j| < bound in every lane (false for a NaN lane).
+#[inline(always)]
+pub fn all_abs_below<const L: u8>(v: &F, bound: f32) -> bool {
+    #[cfg(target_arch = "x86_64")]
+    if L >= 1 {
+        use std::arch::x86_64::*;
+        // SAFETY: as in `hsum`.
+        unsafe {
+            let sign = _mm256_set1_ps(-0.0);
+            let bd = _mm256_set1_ps(bound);
+            let lo = _mm256_andnot_ps(sign, _mm256_loadu_ps(v.as_ptr()));
+            let hi = _mm256_andnot_ps(sign, _mm256_loadu_ps(v.as_ptr().add(8)));
+            let ok = _mm256_and_ps(_mm256_cmp_ps::<_CMP_LT_OQ>(lo, bd), _mm256_cmp_ps::<_CMP_LT_OQ>(hi, bd));
+            return _mm256_movemask_ps(ok) == 0xff;
+        }
+    }
+    v.iter().all(|x| x.abs() < bound)
+}
+
 /// Largest lane (ignores NaN lanes; order does not matter for a maximum).
 #[inline(always)]
 pub fn hmax(v: &F) -> f32 {

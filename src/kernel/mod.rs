@@ -23,8 +23,8 @@
 pub mod exp;
 pub mod lanes;
 
-use exp::{exp_nonpos, mul_add, EXP_UNDERFLOW};
-use lanes::{hmax, hsum, hsum64, load, padded, widen_add, F, W};
+use exp::{exp_nonpos, exp_step, mul_add};
+use lanes::{all_abs_below, hmax, hsum, hsum64, load, padded, widen_add, F, W};
 use std::sync::atomic::{AtomicU8, Ordering};
 
 /// Columns per partial-sum block of the normalising pass; also the block
@@ -304,28 +304,20 @@ fn scan_max(x: &[f32]) -> (f32, usize, bool) {
     (mx, if arg == usize::MAX { 0 } else { arg }, nan)
 }
 
-/// exp(x - m) of 16 columns, added into the running sums of exp and of
-/// (x - m) exp(x - m).
 #[inline(always)]
-fn exp_step<const L: u8>(c: &F, m: f32, s: &mut F, t: &mut F) -> F {
-    let mut e = [0f32; W];
-    for j in 0..W {
-        let a = c[j] - m;
-        let v = exp_nonpos::<L>(a);
-        s[j] += v;
-        // Below the underflow bound v = 0; the clamp keeps -inf * 0 from
-        // making a NaN and changes nothing else.
-        let ac = if a < EXP_UNDERFLOW { EXP_UNDERFLOW } else { a };
-        t[j] = mul_add::<L>(ac, v, t[j]);
-        e[j] = v;
-    }
-    e
+fn scan_impl<const L: u8>(x: &[f32]) -> (f32, usize, bool) {
+    scan_max(x)
+}
+
+dispatched! {
+    /// The maximum of a row, the lowest column holding it, and whether the row holds a NaN.
+    pub fn scan_row / scan_row_at(x: &[f32]) -> (f32, usize, bool) => scan_impl
 }
 
 /// Stores exp(x - m) into `e`, the sum of every NORM_BLOCK columns into
 /// `blocks`, and returns (sum exp(x - m), sum (x - m) exp(x - m)).
 #[inline(always)]
-fn exp_pass<const L: u8>(x: &[f32], m: f32, e: &mut [f32], blocks: &mut [f64]) -> (f64, f64) {
+fn exp_pass<const L: u8, const STORE: bool>(x: &[f32], m: f32, e: &mut [f32], blocks: &mut [f64]) -> (f64, f64) {
     // t is carried in f32 lanes over four blocks (256 columns), then in f64.
     // The lanes of each block's sum are kept and reduced GROUP blocks at a
     // time, away from the exp chains they depend on.
@@ -351,19 +343,28 @@ fn exp_pass<const L: u8>(x: &[f32], m: f32, e: &mut [f32], blocks: &mut [f64]) -
         for k in 0..g {
             let lo = (bi + k) * NORM_BLOCK;
             let hi = (lo + NORM_BLOCK).min(n);
-            let (bx, be) = (&x[lo..hi], &mut e[lo..hi]);
+            let bx = &x[lo..hi];
             let mut s = [0f32; W];
             let cx = bx.chunks_exact(W);
             let tail = cx.remainder();
-            let mut ce = be.chunks_exact_mut(W);
-            for (c, o) in cx.zip(&mut ce) {
-                let v = exp_step::<L>(load(c), m, &mut s, &mut t);
-                o.copy_from_slice(&v);
-            }
-            if !tail.is_empty() {
-                let v = exp_step::<L>(&padded(tail, NEG_INF), m, &mut s, &mut t);
-                let o = ce.into_remainder();
-                o.copy_from_slice(&v[..o.len()]);
+            if STORE {
+                let mut ce = e[lo..hi].chunks_exact_mut(W);
+                for (c, o) in cx.zip(&mut ce) {
+                    let v = exp_step::<L>(load(c), m, &mut s, &mut t);
+                    o.copy_from_slice(&v);
+                }
+                if !tail.is_empty() {
+                    let v = exp_step::<L>(&padded(tail, NEG_INF), m, &mut s, &mut t);
+                    let o = ce.into_remainder();
+                    o.copy_from_slice(&v[..o.len()]);
+                }
+            } else {
+                for c in cx {
+                    exp_step::<L>(load(c), m, &mut s, &mut t);
+                }
+                if !tail.is_empty() {
+                    exp_step::<L>(&padded(tail, NEG_INF), m, &mut s, &mut t);
+                }
             }
             lanes[k] = s;
             if (bi + k) % T_EVERY == T_EVERY - 1 {
@@ -379,8 +380,8 @@ fn exp_pass<const L: u8>(x: &[f32], m: f32, e: &mut [f32], blocks: &mut [f64]) -
 }
 
 #[inline(always)]
-fn normalise_impl<const L: u8>(x: &[f32], e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
-    assert!(e.len() >= x.len(), "normalise: exp buffer shorter than the row");
+fn normalise_any<const L: u8, const STORE: bool>(x: &[f32], e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
+    assert!(!STORE || e.len() >= x.len(), "normalise: exp buffer shorter than the row");
     assert!(blocks.len() >= norm_blocks(x.len()), "normalise: block buffer too short");
     let (max, argmax, nan) = scan_max(x);
     if nan {
@@ -392,9 +393,19 @@ fn normalise_impl<const L: u8>(x: &[f32], e: &mut [f32], blocks: &mut [f64]) -> 
     if max == f32::NEG_INFINITY {
         return Err(RowFault::AllNegInf);
     }
-    let (s, t) = exp_pass::<L>(x, max, &mut e[..x.len()], blocks);
+    let (s, t) = exp_pass::<L, STORE>(x, max, e, blocks);
     let ln_s = s.ln();
     Ok(RowNorm { max, argmax: argmax as u32, lse: max as f64 + ln_s, sum: s, entropy: ln_s - t / s })
+}
+
+#[inline(always)]
+fn normalise_impl<const L: u8>(x: &[f32], e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
+    normalise_any::<L, true>(x, e, blocks)
+}
+
+#[inline(always)]
+fn normalise_only_impl<const L: u8>(x: &[f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
+    normalise_any::<L, false>(x, &mut [], blocks)
 }
 
 dispatched! {
@@ -405,11 +416,10 @@ dispatched! {
     pub fn normalise_store / normalise_store_at(x: &[f32], e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> => normalise_impl
 }
 
-/// `normalise_store` without keeping the exponentials (allocates; for
-/// one-off rows).
-pub fn normalise(x: &[f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
-    let mut e = vec![0f32; x.len()];
-    normalise_store(x, &mut e, blocks)
+dispatched! {
+    /// `normalise_store` without keeping the exponentials (the same
+    /// results, to the bit).
+    pub fn normalise / normalise_at(x: &[f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> => normalise_only_impl
 }
 
 /// Number of NORM_BLOCK blocks of a row of `cols` columns.
@@ -446,10 +456,30 @@ struct PairConsts {
 #[inline(always)]
 fn pair_step<const L: u8>(x: &F, y: &F, er: &F, ec: &F, k: &PairConsts, f: &mut F, b: &mut F, t: &mut F) {
     let ma = mul_add::<L>;
+    let mut d = [0f32; W];
+    for j in 0..W {
+        d[j] = (x[j] - y[j]) + k.cst;
+    }
+    if all_abs_below::<L>(&d, SERIES_BELOW) {
+        // Every column of the chunk in the series range, the common case for
+        // a compressed model. Both logits are finite here; a probability
+        // that underflowed to 0 leaves out a term below 1e-38.
+        for j in 0..W {
+            let p = er[j] * k.inv_r;
+            let q = ec[j] * k.inv_c;
+            let d2 = d[j] * d[j];
+            let ev = ma(d2, ma(d2, ma(d2, C[6], C[4]), C[2]), C[0]);
+            let od = d[j] * ma(d2, ma(d2, C[5], C[3]), C[1]);
+            f[j] = ma(p * d2, ev + od, f[j]);
+            b[j] = ma(q * d2, ev - od, b[j]);
+            t[j] += (p - q).abs();
+        }
+        return;
+    }
     for j in 0..W {
         let p = er[j] * k.inv_r;
         let q = ec[j] * k.inv_c;
-        let d = (x[j] - y[j]) + k.cst;
+        let d = d[j];
         let d2 = d * d;
         // g(d)/d^2 and g(-d)/d^2 from the even and odd parts of one series.
         let ev = ma(d2, ma(d2, ma(d2, C[6], C[4]), C[2]), C[0]);
@@ -549,28 +579,27 @@ fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> 
     if nan || !m.is_finite() {
         return f64::NAN;
     }
-    let mut e = vec![0f32; n];
     let mut blocks = vec![0f64; norm_blocks(n)];
-    let (sum, _) = exp_pass::<L>(x, m, &mut e, &mut blocks);
+    let (sum, _) = exp_pass::<L, false>(x, m, &mut [], &mut blocks);
     let inv = (1.0 / sum) as f32;
     let mut acc = [0f64; W];
     #[inline(always)]
-    fn step(x: &F, y: &F, e: &F, inv: f32, rx: Rounding, ry: Rounding, acc: &mut [f64; W]) {
+    fn step<const L: u8>(x: &F, y: &F, m: f32, inv: f32, rx: Rounding, ry: Rounding, acc: &mut [f64; W]) {
         for j in 0..W {
-            let p = e[j] * inv;
+            let p = exp_nonpos::<L>(x[j] - m) * inv;
             let w = (p * (1.0 - p)) as f64;
             let v = (step_sq(x[j], rx) + step_sq(y[j], ry)) * (1.0 / 12.0);
             let ok = p > 0.0 && y[j].is_finite();
             acc[j] += if ok { w * v } else { 0.0 };
         }
     }
-    let (cx, cy, ce) = (x.chunks_exact(W), y.chunks_exact(W), e.chunks_exact(W));
-    let (tx, ty, te) = (cx.remainder(), cy.remainder(), ce.remainder());
-    for ((vx, vy), ve) in cx.zip(cy).zip(ce) {
-        step(load(vx), load(vy), load(ve), inv, rx, ry, &mut acc);
+    let (cx, cy) = (x.chunks_exact(W), y.chunks_exact(W));
+    let (tx, ty) = (cx.remainder(), cy.remainder());
+    for (vx, vy) in cx.zip(cy) {
+        step::<L>(load(vx), load(vy), m, inv, rx, ry, &mut acc);
     }
     if !tx.is_empty() {
-        step(&padded(tx, 0.0), &padded(ty, 0.0), &padded(te, 0.0), inv, rx, ry, &mut acc);
+        step::<L>(&padded(tx, NEG_INF), &padded(ty, 0.0), m, inv, rx, ry, &mut acc);
     }
     0.5 * hsum64(&acc)
 }
