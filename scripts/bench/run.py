@@ -32,14 +32,17 @@ HERE = os.path.dirname(os.path.abspath(__file__))
 REPO = os.path.dirname(os.path.dirname(HERE))
 SIZE = {"bf16": 2, "f16": 2, "f32": 4}
 
-# name, dtype, vocab, candidates, klgauge threads (None = default), run torch
-CASES = [
-    ("bf16-128k", "bf16", 128256, 1, None, True),
-    ("bf16-128k-1thread", "bf16", 128256, 1, 1, False),
-    ("bf16-128k-3cand", "bf16", 128256, 3, None, True),
-    ("f16-128k", "f16", 128256, 1, None, True),
-    ("f32-128k", "f32", 128256, 1, None, True),
-    ("bf16-32k", "bf16", 32000, 1, None, True),
+# Groups of runs on one set of files, run in turn within each round so that
+# the ratios compare runs made under the same machine load:
+# name, dtype, vocab, candidates in the files, runs (label, candidates used,
+# klgauge threads or None for the default, tool).
+GROUPS = [
+    ("bf16-128k", "bf16", 128256, 3, [
+        ("klgauge", 1, None, "k"), ("klgauge --threads 1", 1, 1, "k"), ("klgauge 3 candidates", 3, None, "k"),
+        ("torch", 1, None, "t"), ("torch 3 candidates", 3, None, "t")]),
+    ("f16-128k", "f16", 128256, 1, [("klgauge", 1, None, "k"), ("torch", 1, None, "t")]),
+    ("f32-128k", "f32", 128256, 1, [("klgauge", 1, None, "k"), ("torch", 1, None, "t")]),
+    ("bf16-32k", "bf16", 32000, 1, [("klgauge", 1, None, "k"), ("torch", 1, None, "t")]),
 ]
 
 
@@ -94,79 +97,74 @@ def main():
     ap.add_argument("--python", default=sys.executable, help="interpreter with torch and numpy")
     ap.add_argument("--rows", type=int, default=2048)
     ap.add_argument("--rounds", type=int, default=3)
-    ap.add_argument("--only", nargs="*", help="case names to run (default: all)")
-    ap.add_argument("--quick", action="store_true", help="only the first case, 512 rows, 2 rounds")
-    ap.add_argument("--data", help="where to write the files (default: a temporary directory)")
+    ap.add_argument("--only", nargs="*", help="group names to run (default: all)")
+    ap.add_argument("--quick", action="store_true", help="only the first group, 512 rows, 2 rounds")
+    ap.add_argument("--data", help="where to write the files (default: a temporary directory, removed after)")
     ap.add_argument("--json", help="also write the results here")
     a = ap.parse_args()
-    cases = CASES
+    groups = GROUPS
     if a.quick:
-        cases, a.rows, a.rounds = CASES[:1], 512, 2
+        groups, a.rows, a.rounds = GROUPS[:1], 512, 2
     if a.only:
-        cases = [c for c in CASES if c[0] in a.only]
+        groups = [g for g in GROUPS if g[0] in a.only]
     if not os.path.exists(a.klgauge):
         sys.exit(f"no binary at {a.klgauge}: run `cargo build --release` first")
     base = a.data or tempfile.mkdtemp(prefix="klgauge-bench-")
     print(f"klgauge {a.klgauge}; torch via {a.python}; {a.rows} rows; {a.rounds} rounds; "
           f"{os.cpu_count()} CPUs; load average at start {os.getloadavg()[0]:.2f}")
+    print("klgauge: whole process, default metrics and --samples; torch: its streaming loop only")
     results = {}
-    made = {}
     try:
-        last_use = {c[1:4]: i for i, c in enumerate(cases)}
-        for i, (name, dtype, vocab, ncand, threads, with_torch) in enumerate(cases):
-            key = (dtype, vocab, ncand)
-            if key not in made:
-                d = os.path.join(base, f"{dtype}-{vocab}-{ncand}")
-                out = subprocess.run([a.python, os.path.join(HERE, "make_logits.py"), d, "--rows", str(a.rows),
-                                      "--vocab", str(vocab), "--dtype", dtype, "--candidates", str(ncand)],
-                                     check=True, capture_output=True, text=True).stdout.split()
-                made[key] = out
-            files = made[key]
+        for name, dtype, vocab, ncand, runs in groups:
+            d = os.path.join(base, name)
+            files = subprocess.run([a.python, os.path.join(HERE, "make_logits.py"), d, "--rows", str(a.rows),
+                                    "--vocab", str(vocab), "--dtype", dtype, "--candidates", str(ncand)],
+                                   check=True, capture_output=True, text=True).stdout.split()
             warm(files)
-            gb = a.rows * vocab * SIZE[dtype] * len(files) / 1e9
-            kcmd = [a.klgauge, "compare", *files] + (["--threads", str(threads)] if threads else [])
-            tcmd = [a.python, os.path.join(HERE, "torch_reference.py"), *files]
-            k_runs, t_runs = [], []
+            times = {label: [] for label, *_ in runs}
             for _ in range(a.rounds):
-                wall, cpu, anon, rfile, _ = run_polled(kcmd)
-                k_runs.append((wall, cpu, anon, rfile))
-                if with_torch:
-                    wall_t, cpu_t, anon_t, _, out = run_polled(tcmd)
-                    t_runs.append((json.loads(out.strip().splitlines()[-1])["seconds"], cpu_t, anon_t))
-            kw = statistics.median(r[0] for r in k_runs)
-            r = {
-                "rows": a.rows, "vocab": vocab, "dtype": dtype, "candidates": ncand, "threads": threads,
-                "klgauge_seconds": kw, "klgauge_rows_per_s": a.rows / kw, "klgauge_gb_per_s": gb / kw,
-                "klgauge_cpu_seconds": statistics.median(r[1] for r in k_runs),
-                "klgauge_peak_rss_anon_mib": max(r[2] for r in k_runs) / 1024,
-                "klgauge_peak_rss_file_mib": max(r[3] for r in k_runs) / 1024,
-                "klgauge_all_seconds": [round(r[0], 3) for r in k_runs],
-            }
-            if t_runs:
-                tw = statistics.median(t[0] for t in t_runs)
-                r.update({"torch_seconds": tw, "torch_rows_per_s": a.rows / tw, "torch_gb_per_s": gb / tw,
-                          "torch_all_seconds": [round(t[0], 3) for t in t_runs], "ratio_vs_torch": tw / kw})
-            results[name] = r
-            line = (f"{name:<20} klgauge {r['klgauge_rows_per_s']:8.0f} rows/s {r['klgauge_gb_per_s']:6.2f} GB/s "
-                    f"cpu {r['klgauge_cpu_seconds']:5.2f} s  RssAnon {r['klgauge_peak_rss_anon_mib']:5.1f} MiB")
-            if t_runs:
-                line += f" | torch {r['torch_rows_per_s']:7.0f} rows/s {r['torch_gb_per_s']:5.2f} GB/s | x{r['ratio_vs_torch']:.1f}"
-            print(line, flush=True)
-            if a.data is None and last_use[key] == i:
-                # Keep the disk and the page cache small: drop files no later case uses.
-                shutil.rmtree(os.path.dirname(files[0]), ignore_errors=True)
+                for label, nc, threads, tool in runs:
+                    used = files[:1 + nc]
+                    if tool == "k":
+                        cmd = [a.klgauge, "compare", *used] + (["--threads", str(threads)] if threads else [])
+                        wall, cpu, anon, rfile, _ = run_polled(cmd)
+                        times[label].append((wall, cpu, anon, rfile))
+                    else:
+                        wall, cpu, anon, rfile, out = run_polled([a.python, os.path.join(HERE, "torch_reference.py"), *used])
+                        times[label].append((json.loads(out.strip().splitlines()[-1])["seconds"], cpu, anon, rfile))
+            print(f"\n{name}: {a.rows} rows x {vocab} {dtype}")
+            group = {}
+            for label, nc, threads, tool in runs:
+                ts = times[label]
+                sec = statistics.median(t[0] for t in ts)
+                gb = a.rows * vocab * SIZE[dtype] * (1 + nc) / 1e9
+                r = {"seconds": sec, "rows_per_s": a.rows / sec, "gb_per_s": gb / sec,
+                     "cpu_seconds": statistics.median(t[1] for t in ts), "all_seconds": [round(t[0], 3) for t in ts],
+                     "peak_rss_anon_mib": max(t[2] for t in ts) / 1024, "peak_rss_file_mib": max(t[3] for t in ts) / 1024}
+                group[label] = r
+                mem = f"  peak RssAnon {r['peak_rss_anon_mib']:6.1f} MiB" if tool == "k" else ""
+                print(f"  {label:<22} {r['rows_per_s']:8.0f} rows/s {r['gb_per_s']:6.2f} GB/s  cpu {r['cpu_seconds']:6.2f} s{mem}")
+            ratios = {}
+            if "torch" in group:
+                ratios["klgauge / torch (rows/s)"] = group["torch"]["seconds"] / group["klgauge"]["seconds"]
+            if "torch 3 candidates" in group:
+                ratios["klgauge / torch, 3 candidates"] = group["torch 3 candidates"]["seconds"] / group["klgauge 3 candidates"]["seconds"]
+            if "klgauge 3 candidates" in group:
+                ratios["3 candidates / 1 candidate (time)"] = group["klgauge 3 candidates"]["seconds"] / group["klgauge"]["seconds"]
+            if "klgauge --threads 1" in group:
+                ratios[f"{os.cpu_count()} threads / 1 thread (speed)"] = group["klgauge --threads 1"]["seconds"] / group["klgauge"]["seconds"]
+            for k, v in ratios.items():
+                print(f"  {k:<36} {v:6.2f}")
+            group["ratios"] = ratios
+            results[name] = group
+            if a.data is None:
+                # Keep the disk and the page cache small: drop files no later group uses.
+                shutil.rmtree(d, ignore_errors=True)
     finally:
         if a.data is None:
             shutil.rmtree(base, ignore_errors=True)
-    one, three, single = results.get("bf16-128k"), results.get("bf16-128k-3cand"), results.get("bf16-128k-1thread")
-    print()
-    if one and three:
-        print(f"3 candidates cost {three['klgauge_seconds'] / one['klgauge_seconds']:.2f}x one candidate (target <= 2)")
-    if one and single:
-        print(f"{os.cpu_count()} threads give {single['klgauge_seconds'] / one['klgauge_seconds']:.2f}x one thread (target >= 1.7 on 2 cores)")
-    if one and "ratio_vs_torch" in one:
-        print(f"bf16 128k: {one['ratio_vs_torch']:.1f}x the torch script's rows/s (target >= 10)")
-    print(f"load average at end {os.getloadavg()[0]:.2f}")
+    print(f"\nload average at end {os.getloadavg()[0]:.2f}")
+    print("targets: klgauge >= 10x torch at bf16 128k; 3 candidates <= 2x one; 2 threads >= 1.7x one")
     if a.json:
         with open(a.json, "w") as f:
             json.dump(results, f, indent=2)

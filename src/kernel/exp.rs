@@ -114,6 +114,42 @@ pub fn exp_step<const L: u8>(c: &[f32; 16], m: f32, s: &mut [f32; 16], t: &mut [
             return out;
         }
     }
+    #[cfg(target_arch = "x86_64")]
+    if L == 1 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 1 is only instantiated inside functions compiled
+        // with AVX2 and FMA, called after run-time detection; loads and
+        // stores stay inside the arrays. Eight lanes at a time keep the
+        // constants and temporaries inside the 16 ymm registers; the
+        // arithmetic is `exp_nonpos::<1>` lane for lane.
+        unsafe {
+            let k = _mm256_set1_ps;
+            let mut out = [0f32; 16];
+            for h in 0..2 {
+                let x = _mm256_sub_ps(_mm256_loadu_ps(c.as_ptr().add(8 * h)), k(m));
+                let tt = _mm256_fmadd_ps(x, k(LOG2E), k(ROUND));
+                let n = _mm256_sub_ps(tt, k(ROUND));
+                let r = _mm256_fmadd_ps(n, k(-LN2_LO), _mm256_fmadd_ps(n, k(-LN2_HI), x));
+                let r2 = _mm256_mul_ps(r, r);
+                let pa = _mm256_fmadd_ps(k(P0), r, k(P1));
+                let pb = _mm256_fmadd_ps(k(P2), r, k(P3));
+                let pc = _mm256_fmadd_ps(k(P4), r, k(P5));
+                let y = _mm256_fmadd_ps(_mm256_fmadd_ps(pa, r2, pb), r2, pc);
+                let y = _mm256_add_ps(_mm256_fmadd_ps(y, r2, r), k(1.0));
+                let bits = _mm256_add_epi32(_mm256_slli_epi32::<23>(_mm256_castps_si256(tt)), _mm256_set1_epi32(127 << 23));
+                let v = _mm256_mul_ps(y, _mm256_castsi256_ps(bits));
+                let keep = _mm256_cmp_ps::<_CMP_NLT_UQ>(x, k(EXP_UNDERFLOW));
+                let e = _mm256_and_ps(v, keep);
+                let sp = s.as_mut_ptr().add(8 * h);
+                _mm256_storeu_ps(sp, _mm256_add_ps(_mm256_loadu_ps(sp), e));
+                let tp = t.as_mut_ptr().add(8 * h);
+                let to = _mm256_loadu_ps(tp);
+                _mm256_storeu_ps(tp, _mm256_blendv_ps(to, _mm256_fmadd_ps(x, e, to), keep));
+                _mm256_storeu_ps(out.as_mut_ptr().add(8 * h), e);
+            }
+            return out;
+        }
+    }
     let mut out = [0f32; 16];
     for j in 0..16 {
         let a = c[j] - m;

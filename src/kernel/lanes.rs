@@ -111,6 +111,23 @@ pub fn all_abs_below<const L: u8>(v: &F, bound: f32) -> bool {
     v.iter().all(|x| x.abs() < bound)
 }
 
+/// Whether some lane exceeds `bound` (NaN lanes do not).
+#[inline(always)]
+pub fn any_above<const L: u8>(v: &F, bound: f32) -> bool {
+    #[cfg(target_arch = "x86_64")]
+    if L >= 1 {
+        use std::arch::x86_64::*;
+        // SAFETY: as in `hsum`.
+        unsafe {
+            let bd = _mm256_set1_ps(bound);
+            let lo = _mm256_cmp_ps::<_CMP_GT_OQ>(_mm256_loadu_ps(v.as_ptr()), bd);
+            let hi = _mm256_cmp_ps::<_CMP_GT_OQ>(_mm256_loadu_ps(v.as_ptr().add(8)), bd);
+            return _mm256_movemask_ps(_mm256_or_ps(lo, hi)) != 0;
+        }
+    }
+    v.iter().any(|&x| x > bound)
+}
+
 /// Largest lane (ignores NaN lanes; order does not matter for a maximum).
 #[inline(always)]
 pub fn hmax(v: &F) -> f32 {

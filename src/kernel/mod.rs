@@ -24,7 +24,7 @@ pub mod exp;
 pub mod lanes;
 
 use exp::{exp_nonpos, exp_step, mul_add};
-use lanes::{all_abs_below, hmax, hsum, hsum64, load, padded, widen_add, F, W};
+use lanes::{all_abs_below, any_above, hmax, hsum, hsum64, load, padded, widen_add, F, W};
 use std::sync::atomic::{AtomicU8, Ordering};
 
 /// Columns per partial-sum block of the normalising pass; also the block
@@ -265,35 +265,56 @@ dispatched! {
 // ---------------------------------------------------------------------------
 // Normalising one row.
 
-/// The maximum, the lowest column holding it, and whether the row holds a NaN.
+/// Per lane: the largest value and the chunk where it first occurred
+/// (strictly greater replaces, so ties keep the earlier chunk). NaN lanes
+/// are passed over here; a NaN shows up later as a NaN sum (see
+/// `normalise_any`). The AVX2 build uses blends, which LLVM does not find
+/// there on its own; same results.
 #[inline(always)]
-fn scan_max(x: &[f32]) -> (f32, usize, bool) {
-    // Per lane: the largest value and the chunk where it first occurred
-    // (strictly greater replaces, so ties keep the earlier chunk).
-    #[inline(always)]
-    fn step(c: &F, chunk: u32, m: &mut F, at: &mut [u32; W], bad: &mut [u32; W]) {
-        for j in 0..W {
-            let v = c[j];
-            let gt = v > m[j];
-            m[j] = if gt { v } else { m[j] };
-            at[j] = if gt { chunk } else { at[j] };
-            bad[j] = if v != v { 1 } else { bad[j] };
+fn scan_step<const L: u8>(c: &F, chunk: u32, m: &mut F, at: &mut [u32; W]) {
+    #[cfg(target_arch = "x86_64")]
+    if L == 1 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 1 is only instantiated inside functions compiled with
+        // AVX2, called after run-time detection; loads and stores stay inside
+        // the arrays.
+        unsafe {
+            let ch = _mm256_castsi256_ps(_mm256_set1_epi32(chunk as i32));
+            for h in 0..2 {
+                let v = _mm256_loadu_ps(c.as_ptr().add(8 * h));
+                let mo = _mm256_loadu_ps(m.as_ptr().add(8 * h));
+                let gt = _mm256_cmp_ps::<_CMP_GT_OQ>(v, mo);
+                _mm256_storeu_ps(m.as_mut_ptr().add(8 * h), _mm256_blendv_ps(mo, v, gt));
+                let ap = at.as_mut_ptr().add(8 * h) as *mut __m256i;
+                let ao = _mm256_castsi256_ps(_mm256_loadu_si256(ap));
+                _mm256_storeu_si256(ap, _mm256_castps_si256(_mm256_blendv_ps(ao, ch, gt)));
+            }
         }
+        return;
     }
+    for j in 0..W {
+        let v = c[j];
+        let gt = v > m[j];
+        m[j] = if gt { v } else { m[j] };
+        at[j] = if gt { chunk } else { at[j] };
+    }
+}
+
+/// The maximum over the non-NaN values and the lowest column holding it.
+#[inline(always)]
+fn scan_max<const L: u8>(x: &[f32]) -> (f32, usize) {
     let mut m = [NEG_INF; W];
     let mut at = [0u32; W];
-    let mut bad = [0u32; W];
     let chunks = x.chunks_exact(W);
     let tail = chunks.remainder();
     let mut ci = 0u32;
     for c in chunks {
-        step(load(c), ci, &mut m, &mut at, &mut bad);
+        scan_step::<L>(load(c), ci, &mut m, &mut at);
         ci += 1;
     }
     if !tail.is_empty() {
-        step(&padded(tail, NEG_INF), ci, &mut m, &mut at, &mut bad);
+        scan_step::<L>(&padded(tail, NEG_INF), ci, &mut m, &mut at);
     }
-    let nan = bad.iter().fold(0, |a, &b| a | b) != 0;
     let mx = hmax(&m);
     let mut arg = usize::MAX;
     for j in 0..W {
@@ -301,17 +322,30 @@ fn scan_max(x: &[f32]) -> (f32, usize, bool) {
             arg = arg.min(at[j] as usize * W + j);
         }
     }
-    (mx, if arg == usize::MAX { 0 } else { arg }, nan)
+    (mx, if arg == usize::MAX { 0 } else { arg })
+}
+
+/// What is wrong with a row that did not normalise (NaN first, as SPEC
+/// lists faults by the value that causes them).
+#[cold]
+fn classify_fault(x: &[f32]) -> RowFault {
+    if x.iter().any(|v| v.is_nan()) {
+        RowFault::Nan
+    } else if x.iter().any(|&v| v == f32::INFINITY) {
+        RowFault::PosInf
+    } else {
+        RowFault::AllNegInf
+    }
 }
 
 #[inline(always)]
-fn scan_impl<const L: u8>(x: &[f32]) -> (f32, usize, bool) {
-    scan_max(x)
+fn scan_impl<const L: u8>(x: &[f32]) -> (f32, usize) {
+    scan_max::<L>(x)
 }
 
 dispatched! {
-    /// The maximum of a row, the lowest column holding it, and whether the row holds a NaN.
-    pub fn scan_row / scan_row_at(x: &[f32]) -> (f32, usize, bool) => scan_impl
+    /// The maximum of a row (NaN ignored) and the lowest column holding it.
+    pub fn scan_row / scan_row_at(x: &[f32]) -> (f32, usize) => scan_impl
 }
 
 /// Stores exp(x - m) into `e`, the sum of every NORM_BLOCK columns into
@@ -383,17 +417,16 @@ fn exp_pass<const L: u8, const STORE: bool>(x: &[f32], m: f32, e: &mut [f32], bl
 fn normalise_any<const L: u8, const STORE: bool>(x: &[f32], e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
     assert!(!STORE || e.len() >= x.len(), "normalise: exp buffer shorter than the row");
     assert!(blocks.len() >= norm_blocks(x.len()), "normalise: block buffer too short");
-    let (max, argmax, nan) = scan_max(x);
-    if nan {
-        return Err(RowFault::Nan);
-    }
-    if max == f32::INFINITY {
-        return Err(RowFault::PosInf);
-    }
-    if max == f32::NEG_INFINITY {
-        return Err(RowFault::AllNegInf);
+    let (max, argmax) = scan_max::<L>(x);
+    if !max.is_finite() {
+        return Err(classify_fault(x));
     }
     let (s, t) = exp_pass::<L, STORE>(x, max, e, blocks);
+    // A NaN logit went through exp into the sum (NaN lanes are kept), so
+    // one test here replaces a test per column.
+    if s.is_nan() {
+        return Err(classify_fault(x));
+    }
     let ln_s = s.ln();
     Ok(RowNorm { max, argmax: argmax as u32, lse: max as f64 + ln_s, sum: s, entropy: ln_s - t / s })
 }
@@ -575,12 +608,15 @@ fn step_sq(x: f32, r: Rounding) -> f64 {
 fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> f64 {
     let n = x.len().min(y.len());
     let (x, y) = (&x[..n], &y[..n]);
-    let (m, _, nan) = scan_max(x);
-    if nan || !m.is_finite() {
+    let (m, _) = scan_max::<L>(x);
+    if !m.is_finite() {
         return f64::NAN;
     }
     let mut blocks = vec![0f64; norm_blocks(n)];
     let (sum, _) = exp_pass::<L, false>(x, m, &mut [], &mut blocks);
+    if sum.is_nan() {
+        return f64::NAN;
+    }
     let inv = (1.0 / sum) as f32;
     let mut acc = [0f64; W];
     #[inline(always)]
@@ -644,21 +680,40 @@ pub fn js_divergence(x: &[f32], y: &[f32], r: &RowNorm, c: &RowNorm) -> f64 {
     0.5 * acc
 }
 
-/// The `k` columns with the highest values, highest first, ties to the lowest id.
-pub fn top_k(x: &[f32], k: usize) -> Vec<(u32, f32)> {
+#[inline(always)]
+fn top_k_impl<const L: u8>(x: &[f32], k: usize) -> Vec<(u32, f32)> {
     let mut best: Vec<(u32, f32)> = Vec::with_capacity(k + 1);
-    for (i, &v) in x.iter().enumerate() {
-        if v != v {
-            continue;
-        }
-        if best.len() == k && !(v > best[k - 1].1) {
-            continue;
+    if k == 0 {
+        return best;
+    }
+    let mut offer = |best: &mut Vec<(u32, f32)>, i: usize, v: f32| {
+        if v != v || (best.len() == k && !(v > best[k - 1].1)) {
+            return;
         }
         let pos = best.partition_point(|&(_, b)| b >= v);
         best.insert(pos, (i as u32, v));
         best.truncate(k);
+    };
+    let chunks = x.chunks_exact(W);
+    let tail_at = x.len() - chunks.remainder().len();
+    for (ci, c) in chunks.enumerate() {
+        // Once the list is full, a chunk with nothing above its last entry is skipped whole.
+        if best.len() == k && !any_above::<L>(load(c), best[k - 1].1) {
+            continue;
+        }
+        for (j, &v) in c.iter().enumerate() {
+            offer(&mut best, ci * W + j, v);
+        }
+    }
+    for (i, &v) in x.iter().enumerate().skip(tail_at) {
+        offer(&mut best, i, v);
     }
     best
+}
+
+dispatched! {
+    /// The `k` columns with the highest values, highest first, ties to the lowest id (NaN skipped).
+    pub fn top_k / top_k_at(x: &[f32], k: usize) -> Vec<(u32, f32)> => top_k_impl
 }
 
 #[cfg(test)]

@@ -426,3 +426,61 @@ fn storage_floor_matches_the_f64_formula() {
         }
     }
 }
+
+#[test]
+fn faults_are_found_anywhere_in_the_row_at_every_level() {
+    for l in levels() {
+        for &n in &[3usize, 16, 17, 64, 1000, 32_003] {
+            for &at in &[0usize, 1, n / 2, n - 1] {
+                let base: Vec<f32> = (0..n).map(|i| (i as f32 * 0.3).cos()).collect();
+                let mut b = vec![0f64; norm_blocks(n)];
+                let mut e = vec![0f32; n];
+                let mut x = base.clone();
+                x[at] = f32::NAN;
+                assert_eq!(normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(), RowFault::Nan, "{} n={n} at={at}", l.name());
+                assert_eq!(normalise_at(l, &x, &mut b).unwrap_err(), RowFault::Nan);
+                // NaN is reported before +inf.
+                x[(at + 1) % n] = f32::INFINITY;
+                assert_eq!(normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(), RowFault::Nan);
+                let mut x = base.clone();
+                x[at] = f32::INFINITY;
+                assert_eq!(normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(), RowFault::PosInf);
+                let mut x = vec![f32::NEG_INFINITY; n];
+                assert_eq!(normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(), RowFault::AllNegInf);
+                x[at] = -3.0;
+                let r = normalise_store_at(l, &x, &mut e, &mut b).unwrap();
+                assert_eq!((r.argmax as usize, r.entropy), (at, 0.0));
+                assert!(storage_floor_row_at(l, &{ let mut y = base.clone(); y[at] = f32::NAN; y }, Rounding { mantissa_bits: 7, min_exp: -133 }, &base, Rounding { mantissa_bits: 7, min_exp: -133 }).is_nan());
+            }
+        }
+    }
+}
+
+#[test]
+fn normalise_without_storing_matches_storing() {
+    for l in levels() {
+        let (x, _) = awkward_pair(4099, 9);
+        let mut e = vec![0f32; x.len()];
+        let (mut b1, mut b2) = (vec![0f64; norm_blocks(x.len())], vec![0f64; norm_blocks(x.len())]);
+        let a = normalise_store_at(l, &x, &mut e, &mut b1).unwrap();
+        let b = normalise_at(l, &x, &mut b2).unwrap();
+        assert_eq!(a, b);
+        assert_eq!(b1, b2);
+    }
+}
+
+#[test]
+fn top_k_matches_a_full_sort_at_every_level() {
+    // Reference: sort by value descending, then by id (the stable order SPEC asks for ties).
+    let (mut x, _) = awkward_pair(3001, 4);
+    x[100] = f32::NAN;
+    x[2999] = 60.0;
+    x[17] = 60.0;
+    let mut want: Vec<(u32, f32)> = x.iter().enumerate().filter(|(_, v)| !v.is_nan()).map(|(i, &v)| (i as u32, v)).collect();
+    want.sort_by(|a, b| b.1.total_cmp(&a.1).then(a.0.cmp(&b.0)));
+    for l in levels() {
+        for k in [0usize, 1, 5, 20] {
+            assert_eq!(top_k_at(l, &x, k), want[..k].to_vec(), "{} k={k}", l.name());
+        }
+    }
+}
