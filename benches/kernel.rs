@@ -86,6 +86,18 @@ fn main() {
         run("compare_stored", &mut || {
             black_box(kernel::compare_stored_at(l, black_box(&x), &y, &er2, &ec2, &r, &c));
         });
+        // The engine's whole row: decode both rows, normalise both, compare,
+        // with the engine's separate buffers (its cache footprint).
+        let bfy: Vec<u8> = y.iter().flat_map(|v| ((v.to_bits() >> 16) as u16).to_le_bytes()).collect();
+        let (mut xr, mut xc, mut er3, mut ec3) = (vec![0f32; cols], vec![0f32; cols], vec![0f32; cols], vec![0f32; cols]);
+        let (mut br, mut bc) = (vec![0f64; kernel::norm_blocks(cols)], vec![0f64; kernel::norm_blocks(cols)]);
+        run("whole_row_bf16", &mut || {
+            kernel::decode_bf16_at(l, black_box(&bf), &mut xr);
+            let r = kernel::normalise_store_at(l, &xr, &mut er3, &mut br).unwrap();
+            kernel::decode_bf16_at(l, black_box(&bfy), &mut xc);
+            let c = kernel::normalise_store_at(l, &xc, &mut ec3, &mut bc).unwrap();
+            black_box(kernel::compare_stored_at(l, &xr, &xc, &er3, &ec3, &r, &c));
+        });
         let rd = kernel::Rounding { mantissa_bits: 7, min_exp: -133 };
         run("storage_floor_row", &mut || {
             black_box(kernel::storage_floor_row_at(l, black_box(&x), rd, &y, rd));

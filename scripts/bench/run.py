@@ -35,10 +35,11 @@ SIZE = {"bf16": 2, "f16": 2, "f32": 4}
 # Groups of runs on one set of files, run in turn within each round so that
 # the ratios compare runs made under the same machine load:
 # name, dtype, vocab, candidates in the files, runs (label, candidates used,
-# klgauge threads or None for the default, tool).
+# klgauge threads, None for the default or "s0" for --samples 0, tool).
 GROUPS = [
     ("bf16-128k", "bf16", 128256, 3, [
-        ("klgauge", 1, None, "k"), ("klgauge --threads 1", 1, 1, "k"), ("klgauge 3 candidates", 3, None, "k"),
+        ("klgauge", 1, None, "k"), ("klgauge --threads 1", 1, 1, "k"), ("klgauge --samples 0", 1, "s0", "k"),
+        ("klgauge 3 candidates", 3, None, "k"),
         ("torch", 1, None, "t"), ("torch 3 candidates", 3, None, "t")]),
     ("f16-128k", "f16", 128256, 1, [("klgauge", 1, None, "k"), ("torch", 1, None, "t")]),
     ("f32-128k", "f32", 128256, 1, [("klgauge", 1, None, "k"), ("torch", 1, None, "t")]),
@@ -126,7 +127,8 @@ def main():
                 for label, nc, threads, tool in runs:
                     used = files[:1 + nc]
                     if tool == "k":
-                        cmd = [a.klgauge, "compare", *used] + (["--threads", str(threads)] if threads else [])
+                        extra = ["--samples", "0"] if threads == "s0" else (["--threads", str(threads)] if threads else [])
+                        cmd = [a.klgauge, "compare", *used] + extra
                         wall, cpu, anon, rfile, _ = run_polled(cmd)
                         times[label].append((wall, cpu, anon, rfile))
                     else:
@@ -151,6 +153,8 @@ def main():
                 ratios["klgauge / torch, 3 candidates"] = group["torch 3 candidates"]["seconds"] / group["klgauge 3 candidates"]["seconds"]
             if "klgauge 3 candidates" in group:
                 ratios["3 candidates / 1 candidate (time)"] = group["klgauge 3 candidates"]["seconds"] / group["klgauge"]["seconds"]
+            if "klgauge --samples 0" in group:
+                ratios["default --samples / --samples 0 (time)"] = group["klgauge"]["seconds"] / group["klgauge --samples 0"]["seconds"]
             if "klgauge --threads 1" in group:
                 ratios[f"{os.cpu_count()} threads / 1 thread (speed)"] = group["klgauge --threads 1"]["seconds"] / group["klgauge"]["seconds"]
             for k, v in ratios.items():
