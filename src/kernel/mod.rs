@@ -686,7 +686,7 @@ fn top_k_impl<const L: u8>(x: &[f32], k: usize) -> Vec<(u32, f32)> {
     if k == 0 {
         return best;
     }
-    let mut offer = |best: &mut Vec<(u32, f32)>, i: usize, v: f32| {
+    let offer = |best: &mut Vec<(u32, f32)>, i: usize, v: f32| {
         if v != v || (best.len() == k && !(v > best[k - 1].1)) {
             return;
         }
