@@ -128,6 +128,14 @@ pub fn any_above<const L: u8>(v: &F, bound: f32) -> bool {
     v.iter().any(|&x| x > bound)
 }
 
+/// Adds `v` into `acc` lane by lane.
+#[inline(always)]
+pub fn add(acc: &mut F, v: &F) {
+    for j in 0..W {
+        acc[j] += v[j];
+    }
+}
+
 /// Largest lane (ignores NaN lanes; order does not matter for a maximum).
 #[inline(always)]
 pub fn hmax(v: &F) -> f32 {

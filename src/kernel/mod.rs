@@ -268,10 +268,26 @@ dispatched! {
 /// Per lane: the largest value and the chunk where it first occurred
 /// (strictly greater replaces, so ties keep the earlier chunk). NaN lanes
 /// are passed over here; a NaN shows up later as a NaN sum (see
-/// `normalise_any`). The AVX2 build uses blends, which LLVM does not find
-/// there on its own; same results.
+/// `normalise_any`). The vector builds use masked moves and blends, which
+/// LLVM does not reliably find on its own; same results.
 #[inline(always)]
 fn scan_step<const L: u8>(c: &F, chunk: u32, m: &mut F, at: &mut [u32; W]) {
+    #[cfg(target_arch = "x86_64")]
+    if L == 2 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 2 is only instantiated inside functions compiled with
+        // AVX-512F, called after run-time detection; loads and stores stay
+        // inside the arrays.
+        unsafe {
+            let v = _mm512_loadu_ps(c.as_ptr());
+            let mo = _mm512_loadu_ps(m.as_ptr());
+            let gt = _mm512_cmp_ps_mask::<_CMP_GT_OQ>(v, mo);
+            _mm512_storeu_ps(m.as_mut_ptr(), _mm512_mask_mov_ps(mo, gt, v));
+            let ap = at.as_mut_ptr() as *mut __m512i;
+            _mm512_storeu_si512(ap, _mm512_mask_mov_epi32(_mm512_loadu_si512(ap), gt, _mm512_set1_epi32(chunk as i32)));
+        }
+        return;
+    }
     #[cfg(target_arch = "x86_64")]
     if L == 1 {
         use std::arch::x86_64::*;
@@ -301,25 +317,52 @@ fn scan_step<const L: u8>(c: &F, chunk: u32, m: &mut F, at: &mut [u32; W]) {
 }
 
 /// The maximum over the non-NaN values and the lowest column holding it.
+/// Four independent running maxima (chunk i goes to number i mod 4), so the
+/// compare-and-select chains overlap instead of waiting on each other; they
+/// are separate variables so that they stay in registers.
 #[inline(always)]
 fn scan_max<const L: u8>(x: &[f32]) -> (f32, usize) {
-    let mut m = [NEG_INF; W];
-    let mut at = [0u32; W];
-    let chunks = x.chunks_exact(W);
-    let tail = chunks.remainder();
+    let (mut m0, mut m1, mut m2, mut m3) = ([NEG_INF; W], [NEG_INF; W], [NEG_INF; W], [NEG_INF; W]);
+    let (mut a0, mut a1, mut a2, mut a3) = ([0u32; W], [0u32; W], [0u32; W], [0u32; W]);
+    let quads = x.chunks_exact(4 * W);
+    let rest = quads.remainder();
     let mut ci = 0u32;
-    for c in chunks {
-        scan_step::<L>(load(c), ci, &mut m, &mut at);
+    for q in quads {
+        scan_step::<L>(load(&q[..W]), ci, &mut m0, &mut a0);
+        scan_step::<L>(load(&q[W..]), ci + 1, &mut m1, &mut a1);
+        scan_step::<L>(load(&q[2 * W..]), ci + 2, &mut m2, &mut a2);
+        scan_step::<L>(load(&q[3 * W..]), ci + 3, &mut m3, &mut a3);
+        ci += 4;
+    }
+    // At most three whole chunks and a partial one are left: to m0, m1, m2, m3 in turn.
+    let mut k = 0;
+    let mut left = rest;
+    while !left.is_empty() {
+        let n = left.len().min(W);
+        let c = padded(&left[..n], NEG_INF);
+        match k {
+            0 => scan_step::<L>(&c, ci, &mut m0, &mut a0),
+            1 => scan_step::<L>(&c, ci, &mut m1, &mut a1),
+            2 => scan_step::<L>(&c, ci, &mut m2, &mut a2),
+            _ => scan_step::<L>(&c, ci, &mut m3, &mut a3),
+        }
+        left = &left[n..];
         ci += 1;
+        k += 1;
     }
-    if !tail.is_empty() {
-        scan_step::<L>(&padded(tail, NEG_INF), ci, &mut m, &mut at);
+    let ms = [m0, m1, m2, m3];
+    let ats = [a0, a1, a2, a3];
+    let mut mx = NEG_INF;
+    for ma in &ms {
+        let h = hmax(ma);
+        mx = if h > mx { h } else { mx };
     }
-    let mx = hmax(&m);
     let mut arg = usize::MAX;
-    for j in 0..W {
-        if m[j] == mx {
-            arg = arg.min(at[j] as usize * W + j);
+    for a in 0..4 {
+        for j in 0..W {
+            if ms[a][j] == mx {
+                arg = arg.min(ats[a][j] as usize * W + j);
+            }
         }
     }
     (mx, if arg == usize::MAX { 0 } else { arg })
@@ -352,7 +395,7 @@ dispatched! {
 /// `blocks`, and returns (sum exp(x - m), sum (x - m) exp(x - m)).
 #[inline(always)]
 fn exp_pass<const L: u8, const STORE: bool>(x: &[f32], m: f32, e: &mut [f32], blocks: &mut [f64]) -> (f64, f64) {
-    // t is carried in f32 lanes over four blocks (256 columns), then in f64.
+    // t is summed in f32 lanes per block, over four blocks (256 columns), then in f64.
     // The lanes of each block's sum are kept and reduced GROUP blocks at a
     // time, away from the exp chains they depend on.
     const T_EVERY: usize = 4;
@@ -360,7 +403,7 @@ fn exp_pass<const L: u8, const STORE: bool>(x: &[f32], m: f32, e: &mut [f32], bl
     let n = x.len();
     let mut s_tot = 0f64;
     let mut t_acc = [0f64; W];
-    let mut t = [0f32; W];
+    let mut t4 = [0f32; W];
     let mut lanes = [[0f32; W]; GROUP];
     #[inline(always)]
     fn flush<const L: u8>(lanes: &[F], first: usize, blocks: &mut [f64], s_tot: &mut f64) {
@@ -378,7 +421,10 @@ fn exp_pass<const L: u8, const STORE: bool>(x: &[f32], m: f32, e: &mut [f32], bl
             let lo = (bi + k) * NORM_BLOCK;
             let hi = (lo + NORM_BLOCK).min(n);
             let bx = &x[lo..hi];
+            // Both sums start afresh in every block, so consecutive blocks'
+            // dependency chains overlap.
             let mut s = [0f32; W];
+            let mut t = [0f32; W];
             let cx = bx.chunks_exact(W);
             let tail = cx.remainder();
             if STORE {
@@ -401,15 +447,16 @@ fn exp_pass<const L: u8, const STORE: bool>(x: &[f32], m: f32, e: &mut [f32], bl
                 }
             }
             lanes[k] = s;
+            lanes::add(&mut t4, &t);
             if (bi + k) % T_EVERY == T_EVERY - 1 {
-                widen_add::<L>(&mut t_acc, &t);
-                t = [0f32; W];
+                widen_add::<L>(&mut t_acc, &t4);
+                t4 = [0f32; W];
             }
         }
         flush::<L>(&lanes[..g], bi, blocks, &mut s_tot);
         bi += g;
     }
-    widen_add::<L>(&mut t_acc, &t);
+    widen_add::<L>(&mut t_acc, &t4);
     (s_tot, hsum64(&t_acc))
 }
 
