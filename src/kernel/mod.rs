@@ -374,7 +374,7 @@ fn scan_max<const L: u8>(x: &[f32]) -> (f32, usize) {
 fn classify_fault(x: &[f32]) -> RowFault {
     if x.iter().any(|v| v.is_nan()) {
         RowFault::Nan
-    } else if x.iter().any(|&v| v == f32::INFINITY) {
+    } else if x.contains(&f32::INFINITY) {
         RowFault::PosInf
     } else {
         RowFault::AllNegInf
@@ -734,7 +734,7 @@ fn top_k_impl<const L: u8>(x: &[f32], k: usize) -> Vec<(u32, f32)> {
         return best;
     }
     let offer = |best: &mut Vec<(u32, f32)>, i: usize, v: f32| {
-        if v != v || (best.len() == k && !(v > best[k - 1].1)) {
+        if v.is_nan() || (best.len() == k && v <= best[k - 1].1) {
             return;
         }
         let pos = best.partition_point(|&(_, b)| b >= v);
