@@ -2,6 +2,7 @@
 //! one module per output format behind the small `Format` trait.
 
 pub mod csv;
+pub mod html;
 pub mod json;
 pub mod text;
 
@@ -32,6 +33,8 @@ pub struct Report {
     pub candidates: Vec<CandidateReport>,
     /// Paired differences of mean kl between candidates (a minus b).
     pub comparisons: Vec<PairReport>,
+    /// Candidates ordered by mean kl, lowest first.
+    pub ranking: Vec<RankEntry>,
     pub timing: Timing,
     pub notice: &'static str,
 }
@@ -89,9 +92,10 @@ pub struct WorstPositionReport {
     pub target_text: Option<String>,
     pub ref_top: Vec<TokenProb>,
     pub cand_top: Vec<TokenProb>,
-    /// The tokens before the position (with a tokenizer and targets).
+    /// Text of up to 8 tokens before the position, oldest first (with a
+    /// tokenizer and targets).
     #[serde(skip_serializing_if = "Option::is_none")]
-    pub context: Option<String>,
+    pub context: Option<Vec<String>>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -132,10 +136,70 @@ pub struct Gate {
     /// The limit lies inside the value's 95% interval: the verdict could flip
     /// with another prompt sample.
     pub uncertain: bool,
+    /// The 95% interval of the value that `uncertain` was judged against.
+    pub interval: Option<[f64; 2]>,
+}
+
+/// One finite bin of the kl histogram (edges in the report's units).
+#[derive(Debug, Clone, Serialize)]
+pub struct HistBin {
+    pub lo: f64,
+    pub hi: f64,
+    pub count: u64,
+}
+
+/// The log-spaced histogram of per-position kl.
+#[derive(Debug, Clone, Serialize)]
+pub struct KlHistogramReport {
+    pub bins_per_decade: usize,
+    /// Positions with kl below `lowest_edge` (exact zeros included).
+    pub below: u64,
+    pub lowest_edge: f64,
+    /// Positions with kl at or above `highest_edge` (infinite kl included).
+    pub above: u64,
+    pub highest_edge: f64,
+    /// The bins that hold any position, in increasing order.
+    pub bins: Vec<HistBin>,
+}
+
+/// kl over the positions whose index within the prompt lies in first..=last.
+#[derive(Debug, Clone, Serialize)]
+pub struct PositionBinReport {
+    pub first: u64,
+    pub last: u64,
+    pub positions: u64,
+    /// Mean over the finite values of the bin.
+    pub kl_mean: f64,
+    /// Approximate quantiles (from a histogram with 10 bins per decade).
+    pub kl_p50: f64,
+    pub kl_p90: f64,
+    pub top1_agree: f64,
+    pub infinite_kl: u64,
+}
+
+/// A place in the ranking by mean kl.
+#[derive(Debug, Clone, Serialize)]
+pub struct RankEntry {
+    pub rank: usize,
+    /// Index into `candidates`.
+    pub candidate: usize,
+    pub name: String,
+    pub kl_mean: f64,
+    pub kl_ci95: Option<[f64; 2]>,
+    pub kl_p99: f64,
+    pub top1_agree: f64,
+    /// "pass", "fail" or "no gates".
+    pub gates: &'static str,
+    /// The paired difference to the next candidate in the ranking, in which
+    /// this one is lower: "lower" when its 95% interval excludes zero,
+    /// "not distinguishable" otherwise; null for the last place.
+    pub vs_next: Option<&'static str>,
 }
 
 #[derive(Debug, Clone, Serialize)]
 pub struct CandidateReport {
+    /// The display name: the `model` metadata, else the file name.
+    pub name: String,
     pub path: String,
     pub dtype: &'static str,
     pub model: Option<String>,
@@ -157,6 +221,10 @@ pub struct CandidateReport {
     pub skipped: Vec<SkippedRow>,
     pub infinite_kl: u64,
     pub storage_floor: f64,
+    /// Approximate 95% interval of kl.p99 (Woodruff's method, prompts as clusters).
+    pub kl_p99_ci95: Option<[f64; 2]>,
+    pub kl_histogram: KlHistogramReport,
+    pub kl_by_position: Vec<PositionBinReport>,
     pub estimators: Vec<EstimatorBlock>,
     pub sampling_cost: SamplingCost,
     pub worst_positions: Vec<WorstPositionReport>,
@@ -169,6 +237,8 @@ pub struct CandidateReport {
 pub struct PairReport {
     pub a: usize,
     pub b: usize,
+    pub a_name: String,
+    pub b_name: String,
     pub positions: u64,
     /// Mean of kl_a - kl_b over positions counted in both.
     pub kl_mean_diff: f64,
@@ -227,7 +297,9 @@ pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
         let file = &inputs.candidates[k];
         cands.push(candidate_report(inputs, file, acc, scale, result.seconds));
     }
-    let comparisons = result.pairs.iter().map(|p| pair_report(p, scale)).collect();
+    let mut comparisons: Vec<PairReport> = result.pairs.iter().map(|p| pair_report(p, scale)).collect();
+    name_pairs(&mut comparisons, &cands);
+    let ranking = ranking(&cands, &comparisons);
     Report {
         schema: SCHEMA,
         units: if inputs.bits { "bits" } else { "nats" },
@@ -251,6 +323,7 @@ pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
         },
         candidates: cands,
         comparisons,
+        ranking,
         timing: Timing {
             exact_pass_seconds: result.seconds,
             rows_per_second: if result.seconds > 0.0 { result.rows_processed as f64 / result.seconds } else { 0.0 },
@@ -270,6 +343,8 @@ pub fn pair_report(p: &PairAccum, scale: f64) -> PairReport {
     PairReport {
         a: p.a,
         b: p.b,
+        a_name: String::new(),
+        b_name: String::new(),
         positions: n as u64,
         kl_mean_diff: mean * scale,
         ci95: ci.map(|[a, b]| [a * scale, b * scale]),
@@ -277,9 +352,151 @@ pub fn pair_report(p: &PairAccum, scale: f64) -> PairReport {
     }
 }
 
+/// Fills the candidate names into the pair reports.
+pub fn name_pairs(pairs: &mut [PairReport], cands: &[CandidateReport]) {
+    for p in pairs {
+        p.a_name = cands.get(p.a).map(|c| c.name.clone()).unwrap_or_default();
+        p.b_name = cands.get(p.b).map(|c| c.name.clone()).unwrap_or_default();
+    }
+}
+
+/// Candidates ordered by mean kl (lowest first; a NaN mean goes last, ties
+/// keep the command-line order), each with the paired verdict against the
+/// next one.
+pub fn ranking(cands: &[CandidateReport], pairs: &[PairReport]) -> Vec<RankEntry> {
+    let mut order: Vec<usize> = (0..cands.len()).collect();
+    let key = |i: usize| {
+        let m = cands[i].kl.mean;
+        if m.is_nan() {
+            f64::INFINITY
+        } else {
+            m
+        }
+    };
+    order.sort_by(|&a, &b| key(a).total_cmp(&key(b)).then(a.cmp(&b)));
+    order
+        .iter()
+        .enumerate()
+        .map(|(rank, &i)| {
+            let c = &cands[i];
+            let vs_next = order.get(rank + 1).map(|&j| {
+                let p = pairs.iter().find(|p| (p.a, p.b) == (i.min(j), i.max(j)));
+                let lower = match p.map(|p| p.verdict) {
+                    Some("a lower") => p.unwrap().a == i,
+                    Some("b lower") => p.unwrap().b == i,
+                    _ => false,
+                };
+                if lower {
+                    "lower"
+                } else {
+                    "not distinguishable"
+                }
+            });
+            RankEntry {
+                rank: rank + 1,
+                candidate: i,
+                name: c.name.clone(),
+                kl_mean: c.kl.mean,
+                kl_ci95: c.kl.ci95,
+                kl_p99: c.kl.p99,
+                top1_agree: c.top1_agree,
+                gates: if c.gates.is_empty() {
+                    "no gates"
+                } else if c.gates.iter().all(|g| g.pass) {
+                    "pass"
+                } else {
+                    "fail"
+                },
+                vs_next,
+            }
+        })
+        .collect()
+}
+
+/// The display name of a file: its `model` metadata, else its file name.
+pub fn display_name(file: &LogitFile) -> String {
+    match file.metadata.get("model") {
+        Some(m) if !m.trim().is_empty() => m.trim().to_string(),
+        _ => file
+            .path
+            .file_name()
+            .map(|n| n.to_string_lossy().trim_end_matches(".safetensors").to_string())
+            .unwrap_or_else(|| file.path.display().to_string()),
+    }
+}
+
+/// Woodruff's interval for a quantile (Woodruff 1952, JASA 47 "Confidence
+/// intervals for medians and other position measures"; cited from memory,
+/// common practice in survey statistics): take the 95% interval of the
+/// fraction of positions at or below the estimated quantile, computed with
+/// prompts as clusters, and read the quantile function at its two ends.
+/// `in_order` holds the values in row order, so that consecutive runs of
+/// `prompts[g].n` values belong to prompt g; `sorted` the same values sorted.
+pub fn quantile_interval(in_order: &[f64], sorted: &[f64], prompts: &[engine::PromptSums], q: f64) -> Option<[f64; 2]> {
+    let total: f64 = prompts.iter().map(|p| p.n).sum();
+    if sorted.len() < 2 || total as usize != in_order.len() || in_order.len() != sorted.len() {
+        return None;
+    }
+    let v = crate::stats::percentile(sorted, q);
+    let mut groups = Vec::with_capacity(prompts.len());
+    let mut at = 0usize;
+    for p in prompts {
+        let n = p.n as usize;
+        let below = in_order[at..at + n].iter().filter(|&&x| x <= v).count();
+        groups.push((p.n, below as f64));
+        at += n;
+    }
+    let (f, ci) = cluster_mean(groups.iter().copied());
+    let [lo, hi] = ci?;
+    let h = 0.5 * (hi - lo);
+    if !f.is_finite() || !h.is_finite() {
+        return None;
+    }
+    let a = crate::stats::percentile(sorted, (q - h).clamp(0.0, 1.0));
+    let b = crate::stats::percentile(sorted, (q + h).clamp(0.0, 1.0));
+    Some([a.min(v), b.max(v)])
+}
+
+fn histogram_report(h: &crate::histo::KlHistogram, scale: f64) -> KlHistogramReport {
+    use crate::histo::{KL_HI_EXP, KL_LO_EXP, KL_PER_DECADE};
+    KlHistogramReport {
+        bins_per_decade: KL_PER_DECADE,
+        below: h.below(),
+        lowest_edge: 10f64.powi(KL_LO_EXP) * scale,
+        above: h.above(),
+        highest_edge: 10f64.powi(KL_HI_EXP) * scale,
+        bins: h.bins().filter(|b| b.2 > 0).map(|(lo, hi, count)| HistBin { lo: lo * scale, hi: hi * scale, count }).collect(),
+    }
+}
+
+fn position_report(p: &crate::histo::PositionProfile, scale: f64) -> Vec<PositionBinReport> {
+    p.bins
+        .iter()
+        .enumerate()
+        .filter(|(_, b)| b.n > 0)
+        .map(|(i, b)| {
+            let (first, last) = crate::histo::position_range(i);
+            PositionBinReport {
+                first,
+                last,
+                positions: b.n,
+                kl_mean: b.kl_mean() * scale,
+                kl_p50: b.kl_quantile(0.5) * scale,
+                kl_p90: b.kl_quantile(0.9) * scale,
+                top1_agree: b.top1_sum / b.n as f64,
+                infinite_kl: b.infinite,
+            }
+        })
+        .collect()
+}
+
 fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateAccum, scale: f64, seconds: f64) -> CandidateReport {
     let r = inputs.reference;
+    // kl in row order, for the quantile interval (aggregate sorts in place).
+    let kl_in_order = acc.values[KL].clone();
     let mut agg: Vec<Aggregate> = (0..NMETRIC).map(|m| aggregate(acc, m)).collect();
+    let p99_ci = quantile_interval(&kl_in_order, &acc.values[KL], &acc.prompts, 0.99).map(|[a, b]| [a * scale, b * scale]);
+    drop(kl_in_order);
     let n = acc.positions;
     let has_nll = agg[engine::NLL_REF].n > 0;
     let top1 = agg[engine::TOP1].mean;
@@ -357,9 +574,10 @@ fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateA
         .collect();
 
     let kl = agg[KL].clone();
-    let gates = evaluate_gates(&inputs.gates, &kl, top1, &acc.prompts);
+    let gates = evaluate_gates(&inputs.gates, &kl, p99_ci, top1, &acc.prompts);
     let warnings = warnings(inputs, file, acc, &kl, floor, n, has_nll);
     CandidateReport {
+        name: display_name(file),
         path: file.path.display().to_string(),
         dtype: file.dtype.name(),
         model: file.metadata.get("model").cloned(),
@@ -380,6 +598,9 @@ fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateA
         skipped: acc.skipped.clone(),
         infinite_kl: acc.infinite_kl,
         storage_floor: floor,
+        kl_p99_ci95: p99_ci,
+        kl_histogram: histogram_report(&acc.kl_hist, scale),
+        kl_by_position: position_report(&acc.by_position, scale),
         estimators,
         sampling_cost,
         worst_positions,
@@ -391,35 +612,42 @@ fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateA
 
 /// The tokens before a position, from the targets (targets[row - 1] is the
 /// token at this row's position), up to 8 of them.
-fn context_text(inputs: &BuildInputs, row: usize, position: usize) -> Option<String> {
+fn context_text(inputs: &BuildInputs, row: usize, position: usize) -> Option<Vec<String>> {
     let (v, t) = (inputs.vocabulary?, inputs.targets?);
-    // The input token at row r is the target of row r - 1 within the prompt.
+    // The input token at row r is the target of row r - 1 within the prompt;
+    // the first position's input token is not in the file.
     let first = row - position;
-    let lo = (row + 1).saturating_sub(8).max(first + 1);
-    let mut s = String::new();
+    let lo = (row + 1).saturating_sub(CONTEXT_TOKENS).max(first + 1);
+    let mut out = Vec::new();
     for r in lo..=row {
         let id = t[r - 1];
         if id >= 0 {
-            s.push_str(&v.text(id as u32).unwrap_or_else(|| format!("<{id}>")));
+            out.push(v.text(id as u32).unwrap_or_else(|| format!("<{id}>")));
         }
     }
-    Some(s)
+    Some(out)
 }
 
-pub fn evaluate_gates(limits: &GateLimits, kl: &Aggregate, top1: f64, prompts: &[engine::PromptSums]) -> Vec<Gate> {
+/// Tokens of context shown before a worst position.
+pub const CONTEXT_TOKENS: usize = 8;
+
+/// The gates asked for. `p99_ci` is the interval of kl.p99 (see
+/// `quantile_interval`); a gate is `uncertain` when its limit lies inside the
+/// interval of its value.
+pub fn evaluate_gates(limits: &GateLimits, kl: &Aggregate, p99_ci: Option<[f64; 2]>, top1: f64, prompts: &[engine::PromptSums]) -> Vec<Gate> {
     let mut g = Vec::new();
     let inside = |ci: Option<[f64; 2]>, x: f64| ci.map_or(false, |[a, b]| a <= x && x <= b);
     if let Some(x) = limits.max_kl_mean {
         let v = kl.mean;
-        g.push(Gate { name: "max-kl-mean".into(), limit: x, value: v, pass: v <= x, uncertain: inside(kl.ci95, x) });
+        g.push(Gate { name: "max-kl-mean".into(), limit: x, value: v, pass: v <= x, uncertain: inside(kl.ci95, x), interval: kl.ci95 });
     }
     if let Some(x) = limits.max_kl_p99 {
         let v = kl.p99;
-        g.push(Gate { name: "max-kl-p99".into(), limit: x, value: v, pass: v <= x, uncertain: false });
+        g.push(Gate { name: "max-kl-p99".into(), limit: x, value: v, pass: v <= x, uncertain: inside(p99_ci, x), interval: p99_ci });
     }
     if let Some(x) = limits.min_top1 {
         let (_, ci) = cluster_mean(prompts.iter().map(|p| (p.n, p.sum[engine::TOP1])));
-        g.push(Gate { name: "min-top1".into(), limit: x, value: top1, pass: top1 >= x, uncertain: inside(ci, x) });
+        g.push(Gate { name: "min-top1".into(), limit: x, value: top1, pass: top1 >= x, uncertain: inside(ci, x), interval: ci });
     }
     g
 }
