@@ -1167,7 +1167,7 @@ h4{font-size:14px;margin:18px 0 6px;color:var(--soft);text-transform:uppercase;l
 .strip .limit{stroke:var(--bad);stroke-width:2}.strip .dot{stroke:#fff;stroke-width:1.5}.dot.pass{fill:var(--ok)}.dot.fail{fill:var(--bad)}
 table.data{border-collapse:collapse;width:100%;background:var(--card);border:1px solid var(--line);font-size:13.5px}
 table.data th,table.data td{padding:6px 9px;border-bottom:1px solid #ece8df;text-align:left;vertical-align:top}
-table.data thead th{background:#f2efe7;font-size:12px;text-transform:uppercase;letter-spacing:.03em;color:var(--soft)}
+table.data thead th{background:#f2efe7;font-size:12.5px;font-weight:600;color:var(--soft)}
 table.summary tbody th{font-weight:500;color:var(--soft);width:30%}
 td.n{font-variant-numeric:tabular-nums;white-space:nowrap}
 .ci{color:var(--soft);font-size:12px;font-weight:400}
@@ -1242,7 +1242,8 @@ pub fn render(r: &Report) -> String {
     let mut out = String::with_capacity(256 * 1024);
     out.push_str("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"/><meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"/>");
     let _ = write!(out, "<title>klgauge: {} against {} candidate{}</title>", esc(&refname), cands.len(), if cands.len() == 1 { "" } else { "s" });
-    let _ = write!(out, "<style>{STYLE}</style></head><body data-check=\"pending\"><main>");
+    // The check script goes first, so that its error listener sees everything.
+    let _ = write!(out, "<style>{STYLE}</style><script>{SCRIPT}</script></head><body data-check=\"pending\"><main>");
     let names: Vec<String> = cands.iter().map(|k| format!(r#"<span class="swatch" style="--c:{}"></span>{}"#, colour(k.i), esc(&k.c.name))).collect();
     let _ = write!(
         out,
@@ -1265,7 +1266,7 @@ pub fn render(r: &Report) -> String {
     warnings(&mut out, &cands);
     let _ = write!(
         out,
-        r#"<footer><p>{}</p><p>Made by {} {}. Draws per position: {}; seed {}; worst positions kept: {}. Exact pass: {:.2} s ({:.0} rows/s). This page is one file and loads nothing from anywhere.</p></footer></main><script>{SCRIPT}</script></body></html>"#,
+        r#"<footer><p>{}</p><p>Made by {} {}. Draws per position: {}; seed {}; worst positions kept: {}. Exact pass: {:.2} s ({:.0} rows/s). This page is one file and loads nothing from anywhere.</p></footer></main></body></html>"#,
         esc(r.notice),
         r.tool.name,
         r.tool.version,
