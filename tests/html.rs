@@ -273,3 +273,24 @@ fn histogram_and_position_bins_count_every_position() {
         assert!((mean - s / k as f64).abs() <= 1e-12 * mean.abs().max(1e-300) + 1e-15, "bin {a}-{z}");
     }
 }
+
+#[test]
+fn degenerate_inputs_still_make_a_well_formed_page() {
+    // The reference against itself (every kl is 0), no targets, no
+    // estimators, one prompt per row: nothing to plot, but the page must
+    // still be complete and say so through its warnings.
+    let dir = tempdir::Dir::new();
+    let mut r = Rng(3);
+    let x: Vec<f32> = (0..12 * 6).map(|_| r.normal() as f32).collect();
+    let f = dir.path().join("same.safetensors");
+    write(&f, vec![("logits", floats(Dtype::F32, &[12, 6], &x))], None);
+    let html = dir.path().join("r.html");
+    let out = klgauge(&["compare", s(&f), s(&f), "--samples", "0", "--html", s(&html), "--max-kl-p99", "0.01", "--bits"]);
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let page = std::fs::read_to_string(&html).unwrap();
+    assert_self_contained(&page);
+    check_nesting(&page);
+    assert!(page.contains("divergences in bits"));
+    assert!(page.contains("no targets"));
+    assert!(page.contains("every row counts as its own prompt"));
+}

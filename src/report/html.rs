@@ -326,6 +326,9 @@ fn verdict_cards(out: &mut String, r: &Report, cands: &[Cand]) {
         out.push_str("</div>");
     }
     out.push_str("</div>");
+    if cands.iter().any(|k| !k.c.gates.is_empty()) {
+        out.push_str(r#"<p class="small">In each strip: the dot is the measured value, the whisker its 95% interval, the red line the limit; the shaded side fails.</p>"#);
+    }
     let _ = write!(out, r#"<p class="notice">{}</p></section>"#, esc(r.notice));
 }
 
@@ -680,7 +683,7 @@ fn tail_plot(out: &mut String, r: &Report, cands: &[Cand], e0: i32, e1: i32) {
     // The 1% line: where a curve crosses it is that candidate's p99.
     let y99 = sy.at(0.01);
     svg.line(x0, y99, x1, y99, "p99line");
-    svg.text(x1 - 3.0, y99 - 4.0, "end", "mlabel", "1% of positions: crossing = p99");
+    svg.text(x0 + 4.0, y99 - 4.0, "start", "mlabel", "1% of positions: p99 where crossed");
     for k in cands {
         for g in &k.c.gates {
             if g.name == "max-kl-p99" {
