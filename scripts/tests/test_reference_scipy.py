@@ -630,3 +630,96 @@ def test_value_faults_are_counted(tmp_path, dtype):
     assert c.get("infinite_kl") == 0
     _, lines = read_csv(out_csv)
     assert sorted(int(ln["row"]) for ln in lines) == list(keep)
+
+
+def softmax64(x):
+    return np.exp(scipy.special.log_softmax(x, axis=-1))  # scipy.special.log_softmax
+
+
+def test_worst_positions_and_prompts(tmp_path):
+    """worst_positions: the --top N largest kl, in descending order, with the
+    right row/prompt/position, target, and top tokens whose p match scipy;
+    worst_prompts: per-prompt mean and max of kl (numpy)."""
+    case = build_case(str(tmp_path), "offsets", "F32", True)
+    exp = reference_metrics(case.ref, case.cand, case.targets)
+    _, _, rep = compare(case, str(tmp_path), "--top", "5")
+    c = rep["candidates"][0]
+    counted = np.flatnonzero(case.counted)
+    order = counted[np.argsort(-exp["kl"][counted], kind="stable")]
+    wp = c["worst_positions"]
+    assert len(wp) == 5, f"{len(wp)} worst positions with --top 5"
+    assert [w["row"] for w in wp] == list(order[:5]), ([w["row"] for w in wp], list(order[:5]))
+    p_all, q_all = softmax64(case.ref), softmax64(case.cand)
+    for w in wp:
+        r = w["row"]
+        assert w["prompt"] == case.prompt[r] and w["position"] == case.position[r]
+        assert close(w["kl"], exp["kl"][r])
+        t = None if case.targets[r] < 0 else int(case.targets[r])
+        assert w["target"] == t, (w["target"], t)
+        for key, probs in (("ref_top", p_all[r]), ("cand_top", q_all[r])):
+            lst = w[key]
+            assert lst, f"{key} empty"
+            ids = [e["id"] for e in lst]
+            want_ids = list(np.argsort(-probs, kind="stable")[: len(lst)])
+            assert ids == want_ids, (key, ids, want_ids)
+            for e in lst:
+                assert close(e["p"], probs[e["id"]]), (key, e, probs[e["id"]])
+    # worst prompts, by mean kl over counted positions
+    bad = []
+    per = {}
+    for r in counted:
+        per.setdefault(int(case.prompt[r]), []).append(exp["kl"][r])
+    for w in c["worst_prompts"]:
+        v = np.array(per[w["prompt"]])
+        if w["positions"] != len(v) or not close(w["kl_mean"], v.mean()) or not close(w["kl_max"], v.max()):
+            bad.append(f"prompt {w['prompt']}: {w}, want positions {len(v)} mean {v.mean()} max {v.max()}")
+    means = [w["kl_mean"] for w in c["worst_prompts"]]
+    assert means == sorted(means, reverse=True), f"worst_prompts not by descending kl_mean: {means}"
+    best = max(per, key=lambda g: np.mean(per[g]))
+    assert c["worst_prompts"][0]["prompt"] == best
+    assert not bad, "\n".join(bad)
+
+
+def test_gates(tmp_path):
+    """A failing gate exits 1 and still writes the reports; each gate's
+    `value` is the statistic it limits (kl mean, kl p99, top-1 rate)."""
+    case = build_case(str(tmp_path), "seq3d", "F32", False)
+    exp = reference_metrics(case.ref, case.cand)
+    kl = exp["kl"]
+    mean, p99 = float(kl.mean()), float(np.percentile(kl, 99, method="linear"))
+    top1 = float(exp["top1_agree"].mean())
+    # all pass
+    _, _, rep = compare(case, str(tmp_path), "--max-kl-mean", repr(mean * 2), "--max-kl-p99", repr(p99 * 2),
+                        "--min-top1", repr(top1 / 2), rc=0)
+    gates = {g["name"]: g for g in rep["candidates"][0]["gates"]}
+    assert len(gates) == 3 and all(g["pass"] is True for g in gates.values()), gates
+    values = sorted(g["value"] for g in gates.values())
+    for want in (mean, p99, top1):
+        assert any(close(v, want) for v in values), f"no gate value {want} in {values}"
+    # one fails: exit 1, reports still written
+    for f in ("out.csv", "out.json"):
+        (tmp_path / f).unlink()
+    _, lines, rep = compare(case, str(tmp_path), "--max-kl-mean", repr(mean / 2), rc=1)
+    g = rep["candidates"][0]["gates"]
+    assert len(g) == 1 and g[0]["pass"] is False and close(g[0]["value"], mean) and close(g[0]["limit"], mean / 2), g
+    assert len(lines) == case.rows
+
+
+def test_two_candidates(tmp_path):
+    """compare REF C1 C2: one candidates[] entry per file, each against scipy."""
+    case = build_case(str(tmp_path), "rows", "BF16", True)
+    rng = np.random.default_rng(81)
+    c2 = case.ref + rng.normal(size=case.ref.shape) * 0.5
+    c2_path = str(tmp_path / "cand2.safetensors")
+    write_file(c2_path, "F16", c2, case.targets, case.mask, tdtype="I32")
+    out_json = tmp_path / "two.json"
+    run("compare", case.ref_path, case.cand_path, c2_path, "--json", out_json, "--samples", SAMPLES,
+        check_rc=0)
+    rep = read_json(out_json)
+    assert [c["path"] for c in rep["candidates"]] == [case.cand_path, c2_path]
+    m = case.counted
+    for cand_vals, c in ((case.cand, rep["candidates"][0]), (st_write.stored_f64(c2, "F16"), rep["candidates"][1])):
+        exp = reference_metrics(case.ref, cand_vals, case.targets)
+        bad = check_aggregate(c["kl"], exp["kl"][m], "kl")
+        assert not bad, "\n".join(bad)
+    assert rep["candidates"][1]["dtype"] == "F16"
