@@ -4,3 +4,11 @@
 pub mod error;
 pub mod input;
 pub mod kernel;
+pub mod engine;
+pub mod estimators;
+pub mod stats;
+pub mod floor;
+pub mod output;
+pub mod report;
+pub mod tokens;
+pub mod commands;
