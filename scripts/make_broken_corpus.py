@@ -167,9 +167,11 @@ def main(out: str) -> None:
                  {"logits": ("F32", lg), "targets": ("I64", np.arange(ROWS - 1))})
     tensors_case("targets_float", "targets stored as F32",
                  {"logits": ("F32", lg), "targets": ("F32", np.arange(ROWS))})
-    tensors_case("targets_out_of_range", "a target id equal to the vocabulary size",
-                 {"logits": ("F32", lg), "targets": ("I64", np.array([0, 1, VOCAB, 3, 4, 5]))},
-                 basis="reading")
+    d, e = case("targets_out_of_range", "a target id equal to the vocabulary size, in both files",
+                ["ref", "cand"], True, basis="reading")
+    for s in ("ref", "cand"):
+        st_write.write(os.path.join(d, f"{s}.safetensors"),
+                       {"logits": ("F32", logits(rng)), "targets": ("I64", np.array([0, 1, VOCAB, 3, 4, 5]))})
     tensors_case("offsets_not_monotone", "prompt_offsets [0,4,2,6]",
                  {"logits": ("F32", lg), "prompt_offsets": ("I64", np.array([0, 4, 2, 6]))})
     tensors_case("offsets_not_ending_at_rows", "prompt_offsets [0,2,5] for 6 rows",
