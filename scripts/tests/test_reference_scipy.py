@@ -739,3 +739,30 @@ def test_two_candidates(tmp_path):
         bad = check_aggregate(c["kl"], exp["kl"][m], "kl")
         assert not bad, "\n".join(bad)
     assert rep["candidates"][1]["dtype"] == "F16"
+
+
+def drop_timings(x):
+    """The report without wall-clock values (keys naming seconds)."""
+    if isinstance(x, dict):
+        return {k: drop_timings(v) for k, v in x.items() if "second" not in k}
+    if isinstance(x, list):
+        return [drop_timings(v) for v in x]
+    return x
+
+
+def test_thread_count_does_not_change_results(tmp_path):
+    """SPEC: the estimator draws are the same whatever the thread count; the
+    exact metrics must not move either. Every report value except timings."""
+    case = build_case(str(tmp_path), "offsets", "BF16", True)
+    outs = []
+    for n in ("1", "2", "3"):
+        j, c = tmp_path / f"t{n}.json", tmp_path / f"t{n}.csv"
+        run("compare", case.ref_path, case.cand_path, "--json", j, "--csv", c, "--samples", "1,16",
+            "--seed", "7", "--threads", n, check_rc=0)
+        rep = read_json(j)
+        rep.pop("timing", None)
+        rep.get("settings", {}).pop("threads", None)
+        outs.append((drop_timings(rep), c.read_text()))
+    for rep, text in outs[1:]:
+        assert text == outs[0][1], "CSV differs between thread counts"
+        assert rep == outs[0][0], "JSON differs between thread counts"
