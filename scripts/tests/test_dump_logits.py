@@ -305,3 +305,14 @@ def test_klgauge_compare_on_dumped_pair(klgauge_bin, ref_dump, cand_dump, tmp_pa
     lp, lq = log_softmax64(p_logits), log_softmax64(q_logits)
     kl = np.sum(np.exp(lp) * (lp - lq), axis=-1)[mask == 1]
     assert c["kl"]["mean"] == pytest.approx(kl.mean(), rel=1e-4)
+
+
+def test_klgauge_reads_the_other_outputs(klgauge_bin, tiny_model, prompts_file, cand_dump, tmp_path):
+    """`klgauge inspect` accepts a dump directory and `klgauge estimate` the
+    sample-mode file (exit 0); their report keys are not checked here."""
+    samples = tmp_path / "samples.safetensors"
+    assert dump_logits.main(["sample", tiny_model, tiny_model, prompts_file, str(samples),
+                             "--fake-quant", "int4", "--new-tokens", "8"]) == 0
+    for argv in (["inspect", cand_dump], ["estimate", str(samples)]):
+        r = subprocess.run([klgauge_bin] + argv, capture_output=True, text=True, timeout=120)
+        assert r.returncode == 0, (argv, r.stderr)
