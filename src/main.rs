@@ -1,1 +1,149 @@
-fn main() {}
+//! The klgauge binary: parses arguments, calls the library, prints, and
+//! turns the outcome into SPEC's exit code. All work happens in the library.
+
+use clap::{Args, Parser, Subcommand};
+use klgauge::commands::compare::{compare, CompareArgs};
+use klgauge::error::Error;
+use klgauge::report::{text::Text, Format, GateLimits};
+use std::io::{IsTerminal, Write};
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+#[derive(Parser)]
+#[command(name = "klgauge", version, about = "How far a compressed language model's next-token distribution moved from the original's")]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {
+    /// Exact metrics of each candidate against the reference, estimators, worst positions, gates
+    Compare(CompareCli),
+}
+
+#[derive(Args)]
+struct CompareCli {
+    /// Reference logit file (safetensors file or directory of shards)
+    reference: PathBuf,
+    /// Candidate logit files, compared one by one with the reference
+    #[arg(required = true)]
+    candidates: Vec<PathBuf>,
+    /// Write the full report as JSON
+    #[arg(long, value_name = "FILE")]
+    json: Option<PathBuf>,
+    /// Write one line per counted position
+    #[arg(long, value_name = "FILE")]
+    csv: Option<PathBuf>,
+    /// Write a self-contained HTML report
+    #[arg(long, value_name = "FILE")]
+    html: Option<PathBuf>,
+    /// Number of worst positions and prompts listed
+    #[arg(long, default_value_t = 20, value_name = "N")]
+    top: usize,
+    /// A tokenizer.json, to show token text
+    #[arg(long, value_name = "FILE")]
+    tokenizer: Option<PathBuf>,
+    /// Draws per position for the sampled estimators, e.g. 1,4,16 (0 = none)
+    #[arg(long, value_delimiter = ',', default_value = "1,4,16", value_name = "N[,N...]")]
+    samples: Vec<usize>,
+    /// Seed of the estimator draws
+    #[arg(long, default_value_t = 0, value_name = "S")]
+    seed: u64,
+    /// Worker threads (default: one per core)
+    #[arg(long, value_name = "N")]
+    threads: Option<usize>,
+    /// Compare only the first N columns of each file (both renormalised)
+    #[arg(long, value_name = "N")]
+    vocab: Option<usize>,
+    /// Also compute the Jensen-Shannon divergence
+    #[arg(long)]
+    js: bool,
+    /// Report divergences and entropies in bits instead of nats
+    #[arg(long)]
+    bits: bool,
+    /// Process only shard I of N (0-based), for cluster runs; needs --partial
+    #[arg(long, value_name = "I/N")]
+    shard: Option<String>,
+    /// Where a shard run writes its partial result
+    #[arg(long, value_name = "FILE")]
+    partial: Option<PathBuf>,
+    /// Gate: fail when the mean kl exceeds X (in the report's units)
+    #[arg(long, value_name = "X")]
+    max_kl_mean: Option<f64>,
+    /// Gate: fail when the 99th percentile of kl exceeds X
+    #[arg(long, value_name = "X")]
+    max_kl_p99: Option<f64>,
+    /// Gate: fail when top-1 agreement falls below X (a fraction, 0..1)
+    #[arg(long, value_name = "X")]
+    min_top1: Option<f64>,
+}
+
+fn parse_shard(s: &str) -> Result<(usize, usize), Error> {
+    let bad = || Error::usage(format!("--shard {s}: expected I/N with 0 <= I < N, e.g. 0/8"));
+    let (i, n) = s.split_once('/').ok_or_else(bad)?;
+    let (i, n): (usize, usize) = (i.trim().parse().map_err(|_| bad())?, n.trim().parse().map_err(|_| bad())?);
+    if n == 0 || i >= n {
+        return Err(bad());
+    }
+    Ok((i, n))
+}
+
+/// Prints to stdout; a closed pipe (`| head`) is not an error worth a word.
+fn print(report: &klgauge::report::Report) -> Result<(), Error> {
+    let mut out = std::io::stdout().lock();
+    match Text.write(report, &mut out).and_then(|_| out.flush()) {
+        Ok(()) => Ok(()),
+        Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => Ok(()),
+        Err(e) => Err(Error::output(std::path::Path::new("<stdout>"), e)),
+    }
+}
+
+fn run(cli: Cli) -> Result<ExitCode, Error> {
+    match cli.command {
+        Command::Compare(c) => {
+            let args = CompareArgs {
+                reference: c.reference,
+                candidates: c.candidates,
+                json: c.json,
+                csv: c.csv,
+                html: c.html,
+                top: c.top,
+                tokenizer: c.tokenizer,
+                samples: c.samples,
+                seed: c.seed,
+                threads: c.threads,
+                vocab: c.vocab,
+                js: c.js,
+                bits: c.bits,
+                shard: c.shard.as_deref().map(parse_shard).transpose()?,
+                partial: c.partial,
+                gates: GateLimits { max_kl_mean: c.max_kl_mean, max_kl_p99: c.max_kl_p99, min_top1: c.min_top1 },
+                progress: std::io::stderr().is_terminal(),
+            };
+            let outcome = compare(&args)?;
+            print(&outcome.report)?;
+            Ok(ExitCode::from(if outcome.gate_failed { 1 } else { 0 }))
+        }
+    }
+}
+
+fn main() -> ExitCode {
+    let cli = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => {
+            // --help and --version are not errors.
+            let code = if e.use_stderr() { 2 } else { 0 };
+            let _ = e.print();
+            return ExitCode::from(code);
+        }
+    };
+    match run(cli) {
+        Ok(code) => code,
+        Err(e) => {
+            klgauge::output::remove_temps();
+            eprintln!("klgauge: error: {e}");
+            ExitCode::from(e.exit_code() as u8)
+        }
+    }
+}

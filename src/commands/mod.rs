@@ -1,0 +1,4 @@
+//! The work behind each subcommand, callable from the library. The binary
+//! only parses arguments, calls these and prints.
+
+pub mod compare;

@@ -1,0 +1,539 @@
+//! The comparison engine: streams rows of the reference and every candidate
+//! through the kernel in parallel blocks and folds the results, in row order,
+//! into per-candidate accumulators.
+//!
+//! Rows are processed in blocks: each block is computed in parallel (rayon),
+//! then reduced sequentially in row order. The reduction order is therefore
+//! the same for 1 or 16 threads, and memory outside the maps is bounded by the
+//! block plus the per-position values kept for exact percentiles.
+
+use crate::error::{Error, Result};
+use crate::estimators::{draw_tokens, k_values, EstimatorSums};
+use crate::input::LogitFile;
+use crate::kernel::{self, RowFault, RowNorm};
+use serde::{Deserialize, Serialize};
+use std::ops::Range;
+
+/// Metric slots in per-prompt sums and per-position value arrays.
+pub const KL: usize = 0;
+pub const KL_REV: usize = 1;
+pub const TV: usize = 2;
+pub const JS: usize = 3;
+pub const ENT_REF: usize = 4;
+pub const ENT_CAND: usize = 5;
+pub const NLL_REF: usize = 6;
+pub const NLL_CAND: usize = 7;
+pub const TOP1: usize = 8;
+pub const NMETRIC: usize = 9;
+
+#[derive(Debug, Clone)]
+pub struct EngineOptions {
+    /// Compare only the first N columns of each file (both renormalised).
+    pub vocab: Option<usize>,
+    pub js: bool,
+    /// Draws per position for each estimator block, e.g. [1, 4, 16]. Blocks are
+    /// nested: the first n draws of the largest budget.
+    pub samples: Vec<usize>,
+    pub seed: u64,
+    pub top: usize,
+    /// Rows to process (a shard); None = all.
+    pub rows: Option<Range<usize>>,
+    pub block_rows: usize,
+    pub progress: bool,
+}
+
+impl Default for EngineOptions {
+    fn default() -> Self {
+        EngineOptions {
+            vocab: None,
+            js: false,
+            samples: vec![1, 4, 16],
+            seed: 0,
+            top: 20,
+            rows: None,
+            block_rows: 64,
+            progress: false,
+        }
+    }
+}
+
+/// Everything known about one counted position, handed to a `PositionSink`.
+#[derive(Debug, Clone, Copy)]
+pub struct PositionValues {
+    /// Indexed by the metric slots above; NaN where a value does not exist.
+    pub m: [f64; NMETRIC],
+}
+
+/// Receives every counted position in row order (the CSV writer).
+pub trait PositionSink {
+    fn position(&mut self, cand: usize, row: usize, prompt: usize, position: usize, target: Option<i64>, v: &PositionValues) -> Result<()>;
+}
+
+/// Per-prompt sums: everything behind every mean and interval.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct PromptSums {
+    pub prompt: u64,
+    /// Counted positions.
+    pub n: f64,
+    /// Counted positions with a target.
+    pub n_target: f64,
+    pub sum: [f64; NMETRIC],
+    pub max_kl: f64,
+}
+
+impl PromptSums {
+    fn new(prompt: u64) -> PromptSums {
+        PromptSums { prompt, n: 0.0, n_target: 0.0, sum: [0.0; NMETRIC], max_kl: f64::NEG_INFINITY }
+    }
+    /// Number of positions a metric's sum runs over.
+    pub fn count(&self, metric: usize) -> f64 {
+        if metric == NLL_REF || metric == NLL_CAND {
+            self.n_target
+        } else {
+            self.n
+        }
+    }
+}
+
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct SkippedRow {
+    pub row: u64,
+    pub prompt: u64,
+    pub position: u64,
+    /// "reference" or "candidate".
+    pub file: String,
+    pub fault: String,
+}
+
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct WorstPosition {
+    pub row: u64,
+    pub prompt: u64,
+    pub position: u64,
+    pub kl: f64,
+    pub target: Option<i64>,
+}
+
+/// Most skipped rows listed individually; the count is always exact.
+pub const SKIPPED_LISTED: usize = 1000;
+
+/// Everything one candidate's run produced.
+#[derive(Debug, Clone, Default)]
+pub struct CandidateAccum {
+    pub positions: u64,
+    pub prompts: Vec<PromptSums>,
+    /// Per metric, the value of every counted position (for exact percentiles).
+    pub values: Vec<Vec<f64>>,
+    pub worst: Vec<WorstPosition>,
+    pub skipped_rows: u64,
+    pub skipped: Vec<SkippedRow>,
+    pub infinite_kl: u64,
+    /// [budget][direction]
+    pub estimators: Vec<[EstimatorSums; 2]>,
+}
+
+/// Paired kl differences (a - b) per prompt, over positions counted in both.
+#[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq)]
+pub struct PairAccum {
+    pub a: usize,
+    pub b: usize,
+    /// (prompt, n, sum of kl_a - kl_b)
+    pub prompts: Vec<(u64, f64, f64)>,
+}
+
+#[derive(Debug, Default)]
+pub struct EngineResult {
+    pub candidates: Vec<CandidateAccum>,
+    pub pairs: Vec<PairAccum>,
+    /// Seconds spent in the exact pass.
+    pub seconds: f64,
+    pub rows_processed: u64,
+}
+
+/// The columns compared: the common vocabulary or `--vocab`.
+pub fn compared_columns(reference: &LogitFile, candidates: &[LogitFile], vocab: Option<usize>) -> Result<usize> {
+    match vocab {
+        Some(0) => Err(Error::usage("--vocab must be at least 1")),
+        Some(n) => {
+            for f in std::iter::once(reference).chain(candidates) {
+                if f.vocab < n {
+                    return Err(Error::input(&f.path, format!("has a vocabulary of {} columns, fewer than --vocab {n}", f.vocab)));
+                }
+            }
+            Ok(n)
+        }
+        None => {
+            for c in candidates {
+                if c.vocab != reference.vocab {
+                    return Err(Error::input(
+                        &c.path,
+                        format!("vocabulary {} differs from the reference's {} (use --vocab N to compare the first N columns)", c.vocab, reference.vocab),
+                    ));
+                }
+            }
+            Ok(reference.vocab)
+        }
+    }
+}
+
+/// Checks that the candidates line up with the reference (SPEC: same rows,
+/// identical targets when both carry them) and returns the targets to use.
+pub fn check_alignment<'a>(reference: &'a LogitFile, candidates: &'a [LogitFile], cols: usize) -> Result<Option<&'a [i64]>> {
+    let mut targets: Option<&[i64]> = reference.targets.as_deref();
+    for c in candidates {
+        if c.rows != reference.rows {
+            return Err(Error::input(&c.path, format!("has {} rows, the reference {} has {}", c.rows, reference.path.display(), reference.rows)));
+        }
+        if let (Some(a), Some(b)) = (reference.targets.as_deref(), c.targets.as_deref()) {
+            if let Some(i) = a.iter().zip(b).position(|(x, y)| x != y) {
+                return Err(Error::input(
+                    &c.path,
+                    format!("`targets` differ from the reference's at row {i} ({} vs {}): the dumps are not aligned", b[i], a[i]),
+                ));
+            }
+        }
+        if targets.is_none() {
+            targets = c.targets.as_deref();
+        }
+    }
+    if let Some(t) = targets {
+        let vocab = reference.vocab.min(candidates.iter().map(|c| c.vocab).min().unwrap_or(usize::MAX));
+        if let Some(i) = t.iter().position(|&v| v >= vocab as i64) {
+            let owner = if reference.targets.is_some() { reference } else { candidates.iter().find(|c| c.targets.is_some()).unwrap() };
+            return Err(Error::input(&owner.path, format!("`targets` row {i} holds token {} outside the vocabulary of {vocab}", t[i])));
+        }
+    }
+    let _ = cols;
+    Ok(targets)
+}
+
+/// Per-candidate results of one row.
+#[derive(Debug, Clone)]
+struct CandOut {
+    fault: Option<RowFault>,
+    m: [f64; NMETRIC],
+    /// [budget][direction][k]
+    est: Vec<[[f64; 3]; 2]>,
+}
+
+#[derive(Debug, Clone)]
+struct RowOut {
+    counted: bool,
+    ref_fault: Option<RowFault>,
+    cands: Vec<CandOut>,
+}
+
+struct Scratch {
+    xr: Vec<f32>,
+    xc: Vec<f32>,
+    br: Vec<f64>,
+    bc: Vec<f64>,
+    order: Vec<(f64, usize)>,
+    tok_p: Vec<u32>,
+    tok_q: Vec<u32>,
+}
+
+impl Scratch {
+    fn new(cols: usize, draws: usize) -> Scratch {
+        Scratch {
+            xr: vec![0.0; cols],
+            xc: vec![0.0; cols],
+            br: vec![0.0; kernel::norm_blocks(cols)],
+            bc: vec![0.0; kernel::norm_blocks(cols)],
+            order: Vec::with_capacity(draws),
+            tok_p: vec![0; draws],
+            tok_q: vec![0; draws],
+        }
+    }
+}
+
+struct RowCtx<'a> {
+    reference: &'a LogitFile,
+    candidates: &'a [LogitFile],
+    targets: Option<&'a [i64]>,
+    opts: &'a EngineOptions,
+    draws: usize,
+}
+
+/// log q(t) - log p(t) for token t, in f64.
+#[inline]
+fn log_ratio(xr: &[f32], nr: &RowNorm, xc: &[f32], nc: &RowNorm, t: u32) -> f64 {
+    (xc[t as usize] as f64 - nc.lse) - (xr[t as usize] as f64 - nr.lse)
+}
+
+/// Fills `est[b][dir]` with the mean k-values of the first samples[b] draws.
+fn fold_draws(est: &mut [[[f64; 3]; 2]], dir: usize, samples: &[usize], mut log_r: impl FnMut(usize) -> f64) {
+    let mut acc = [0f64; 3];
+    let mut done = 0usize;
+    for (b, &n) in samples.iter().enumerate() {
+        while done < n {
+            let k = k_values(log_r(done));
+            for i in 0..3 {
+                acc[i] += k[i];
+            }
+            done += 1;
+        }
+        for i in 0..3 {
+            est[b][dir][i] = acc[i] / n as f64;
+        }
+    }
+}
+
+fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
+    let cols = s.xr.len();
+    ctx.reference.read_row(row, &mut s.xr);
+    let nr = match kernel::normalise(&s.xr, &mut s.br) {
+        Ok(n) => n,
+        Err(f) => {
+            out.ref_fault = Some(f);
+            return;
+        }
+    };
+    out.ref_fault = None;
+    let draws = ctx.draws;
+    if draws > 0 {
+        draw_tokens(&s.xr, nr.max, &s.br, ctx.opts.seed, row as u64, 0, &mut s.order, &mut s.tok_p[..draws]);
+    }
+    let target = ctx.targets.map(|t| t[row]).filter(|&t| t >= 0 && (t as usize) < cols);
+    for (k, cand) in ctx.candidates.iter().enumerate() {
+        let co = &mut out.cands[k];
+        cand.read_row(row, &mut s.xc);
+        let nc = match kernel::normalise(&s.xc, &mut s.bc) {
+            Ok(n) => n,
+            Err(f) => {
+                co.fault = Some(f);
+                continue;
+            }
+        };
+        co.fault = None;
+        let pm = kernel::compare_rows(&s.xr, &s.xc, &nr, &nc);
+        let m = &mut co.m;
+        m[KL] = pm.kl;
+        m[KL_REV] = pm.kl_reverse;
+        m[TV] = pm.tv;
+        m[JS] = if ctx.opts.js { kernel::js_divergence(&s.xr, &s.xc, &nr, &nc) } else { f64::NAN };
+        m[ENT_REF] = nr.entropy;
+        m[ENT_CAND] = nc.entropy;
+        m[TOP1] = if nr.argmax == nc.argmax { 1.0 } else { 0.0 };
+        match target {
+            Some(t) => {
+                m[NLL_REF] = nr.lse - s.xr[t as usize] as f64;
+                m[NLL_CAND] = nc.lse - s.xc[t as usize] as f64;
+            }
+            None => {
+                m[NLL_REF] = f64::NAN;
+                m[NLL_CAND] = f64::NAN;
+            }
+        }
+        if draws > 0 {
+            let (xr, xc, tp) = (&s.xr, &s.xc, &s.tok_p);
+            fold_draws(&mut co.est, 0, &ctx.opts.samples, |j| log_ratio(xr, &nr, xc, &nc, tp[j]));
+            draw_tokens(&s.xc, nc.max, &s.bc, ctx.opts.seed, row as u64, 1 + k as u64, &mut s.order, &mut s.tok_q[..draws]);
+            let tq = &s.tok_q;
+            // Reverse: x ~ q, log r' = log p(x) - log q(x).
+            fold_draws(&mut co.est, 1, &ctx.opts.samples, |j| -log_ratio(xr, &nr, xc, &nc, tq[j]));
+        }
+    }
+}
+
+/// Rows counted at all: not masked out in any file.
+fn counted(row: usize, files: &[&LogitFile]) -> bool {
+    files.iter().all(|f| f.mask.as_ref().map_or(true, |m| m[row]))
+}
+
+pub fn run(
+    reference: &LogitFile,
+    candidates: &[LogitFile],
+    opts: &EngineOptions,
+    sink: &mut dyn PositionSink,
+) -> Result<EngineResult> {
+    if candidates.is_empty() {
+        return Err(Error::usage("compare needs at least one candidate file"));
+    }
+    let cols = compared_columns(reference, candidates, opts.vocab)?;
+    let targets = check_alignment(reference, candidates, cols)?;
+    let mut samples = opts.samples.clone();
+    samples.sort_unstable();
+    samples.dedup();
+    samples.retain(|&n| n > 0);
+    let opts = &EngineOptions { samples: samples.clone(), ..opts.clone() };
+    let draws = samples.last().copied().unwrap_or(0);
+    let range = opts.rows.clone().unwrap_or(0..reference.rows);
+    let prompt_of = reference.prompt_of_rows();
+    let files: Vec<&LogitFile> = std::iter::once(reference).chain(candidates.iter()).collect();
+    let nc = candidates.len();
+
+    let mut res = EngineResult::default();
+    res.candidates = (0..nc)
+        .map(|_| CandidateAccum {
+            values: vec![Vec::new(); NMETRIC],
+            estimators: vec![Default::default(); samples.len()],
+            ..Default::default()
+        })
+        .collect();
+    for a in 0..nc {
+        for b in a + 1..nc {
+            res.pairs.push(PairAccum { a, b, prompts: Vec::new() });
+        }
+    }
+
+    let ctx = RowCtx { reference, candidates, targets, opts, draws };
+    let block = opts.block_rows.max(1);
+    let blank = RowOut {
+        counted: false,
+        ref_fault: None,
+        cands: vec![CandOut { fault: None, m: [0.0; NMETRIC], est: vec![[[0.0; 3]; 2]; samples.len()] }; nc],
+    };
+    let mut outs: Vec<RowOut> = vec![blank; block];
+    let bar = progress_bar(opts.progress, range.len() as u64);
+    let start = std::time::Instant::now();
+    let mut row0 = range.start;
+    while row0 < range.end {
+        let row1 = (row0 + block).min(range.end);
+        let n = row1 - row0;
+        for f in &files {
+            f.advise_window(row1, block);
+        }
+        {
+            use rayon::prelude::*;
+            let slots = &mut outs[..n];
+            slots.par_iter_mut().enumerate().for_each_init(
+                || Scratch::new(cols, draws),
+                |s, (i, out)| {
+                    let row = row0 + i;
+                    out.counted = counted(row, &files);
+                    if out.counted {
+                        compute_row(&ctx, s, row, out);
+                    }
+                },
+            );
+        }
+        for (i, out) in outs[..n].iter().enumerate() {
+            let row = row0 + i;
+            if !out.counted {
+                continue;
+            }
+            let prompt = prompt_of[row] as usize;
+            let position = row - reference.prompt_starts[prompt];
+            let target = targets.map(|t| t[row]).filter(|&t| t >= 0);
+            for k in 0..nc {
+                let acc = &mut res.candidates[k];
+                let fault = match (out.ref_fault, out.cands[k].fault) {
+                    (Some(f), _) => Some(("reference", f)),
+                    (None, Some(f)) => Some(("candidate", f)),
+                    _ => None,
+                };
+                if let Some((file, f)) = fault {
+                    acc.skipped_rows += 1;
+                    if acc.skipped.len() < SKIPPED_LISTED {
+                        acc.skipped.push(SkippedRow {
+                            row: row as u64,
+                            prompt: prompt as u64,
+                            position: position as u64,
+                            file: file.into(),
+                            fault: f.describe().into(),
+                        });
+                    }
+                    continue;
+                }
+                let co = &out.cands[k];
+                fold_position(acc, co, opts, row, prompt, position, target);
+                sink.position(k, row, prompt, position, target, &PositionValues { m: co.m })?;
+            }
+            for pair in res.pairs.iter_mut() {
+                let (a, b) = (&out.cands[pair.a], &out.cands[pair.b]);
+                if out.ref_fault.is_some() || a.fault.is_some() || b.fault.is_some() {
+                    continue;
+                }
+                let d = a.m[KL] - b.m[KL];
+                match pair.prompts.last_mut() {
+                    Some(last) if last.0 == prompt as u64 => {
+                        last.1 += 1.0;
+                        last.2 += d;
+                    }
+                    _ => pair.prompts.push((prompt as u64, 1.0, d)),
+                }
+            }
+        }
+        for f in &files {
+            f.release_before(row1);
+        }
+        res.rows_processed += n as u64;
+        bar.inc(n as u64);
+        row0 = row1;
+    }
+    bar.finish_and_clear();
+    res.seconds = start.elapsed().as_secs_f64();
+    for acc in res.candidates.iter_mut() {
+        acc.worst.sort_by(worst_order);
+    }
+    Ok(res)
+}
+
+/// Highest kl first; ties to the lower row, so the list never depends on timing.
+pub fn worst_order(a: &WorstPosition, b: &WorstPosition) -> std::cmp::Ordering {
+    b.kl.total_cmp(&a.kl).then(a.row.cmp(&b.row))
+}
+
+fn fold_position(acc: &mut CandidateAccum, co: &CandOut, opts: &EngineOptions, row: usize, prompt: usize, position: usize, target: Option<i64>) {
+    acc.positions += 1;
+    let m = &co.m;
+    let ps = match acc.prompts.last_mut() {
+        Some(p) if p.prompt == prompt as u64 => p,
+        _ => {
+            acc.prompts.push(PromptSums::new(prompt as u64));
+            acc.prompts.last_mut().unwrap()
+        }
+    };
+    ps.n += 1.0;
+    for (i, &v) in m.iter().enumerate() {
+        if !v.is_nan() {
+            ps.sum[i] += v;
+            acc.values[i].push(v);
+        }
+    }
+    if !m[NLL_REF].is_nan() {
+        ps.n_target += 1.0;
+    }
+    ps.max_kl = ps.max_kl.max(m[KL]);
+    if m[KL].is_infinite() {
+        acc.infinite_kl += 1;
+    }
+    for (b, e) in co.est.iter().enumerate() {
+        acc.estimators[b][0].add(m[KL], &e[0]);
+        acc.estimators[b][1].add(m[KL_REV], &e[1]);
+    }
+    // Keep the `top` worst positions (a small sorted list; top is small).
+    let w = WorstPosition { row: row as u64, prompt: prompt as u64, position: position as u64, kl: m[KL], target };
+    if opts.top > 0 {
+        let full = acc.worst.len() >= opts.top;
+        if !full || worst_order(&w, acc.worst.last().unwrap()).is_lt() {
+            let at = acc.worst.partition_point(|x| worst_order(x, &w).is_lt());
+            acc.worst.insert(at, w);
+            acc.worst.truncate(opts.top);
+        }
+    }
+}
+
+fn progress_bar(enabled: bool, len: u64) -> indicatif::ProgressBar {
+    if !enabled {
+        return indicatif::ProgressBar::hidden();
+    }
+    // ProgressBar::new draws to stderr only when it is a terminal.
+    let bar = indicatif::ProgressBar::new(len);
+    if let Ok(style) = indicatif::ProgressStyle::with_template("{bar:40} {pos}/{len} rows  {per_sec}  eta {eta}") {
+        bar.set_style(style);
+    }
+    bar
+}
+
+/// The top tokens of both models at one row, for the worst-position list.
+pub fn top_tokens(file: &LogitFile, row: usize, cols: usize, k: usize) -> Vec<(u32, f64)> {
+    let mut x = vec![0f32; cols];
+    file.read_row(row, &mut x);
+    let mut blocks = vec![0f64; kernel::norm_blocks(cols)];
+    match kernel::normalise(&x, &mut blocks) {
+        Ok(n) => kernel::top_k(&x, k).into_iter().map(|(i, v)| (i, (v as f64 - n.lse).exp())).collect(),
+        Err(_) => Vec::new(),
+    }
+}

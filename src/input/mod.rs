@@ -1,0 +1,7 @@
+//! Reading and validating input files. Nothing outside this module touches
+//! raw bytes of a safetensors file.
+
+pub mod file;
+pub mod logits;
+
+pub use logits::{Grouping, LogitFile, StoredDtype};

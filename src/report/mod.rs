@@ -1,0 +1,460 @@
+//! Reports: one data model, built once from the engine's accumulators, and
+//! one module per output format behind the small `Format` trait.
+
+pub mod csv;
+pub mod json;
+pub mod text;
+
+use crate::engine::{self, CandidateAccum, EngineResult, PairAccum, SkippedRow, KL, KL_REV, NMETRIC};
+use crate::estimators::KSummary;
+use crate::input::{Grouping, LogitFile};
+use crate::stats::{cluster_mean, Aggregate};
+use serde::Serialize;
+use std::io::Write;
+
+pub const SCHEMA: &str = "klgauge-report/1";
+
+/// The sentence every report carries beside its verdict.
+pub const DISCLAIMER: &str = "A passing gate is evidence that the candidate's next-token distribution stayed close to the reference's on these prompts; it is not a certificate that the model is safe or fit for its use. Keep your own evaluation and review before shipping.";
+
+/// An output format (terminal text, JSON, HTML ...).
+pub trait Format {
+    fn write(&self, report: &Report, out: &mut dyn Write) -> std::io::Result<()>;
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Report {
+    pub schema: &'static str,
+    pub units: &'static str,
+    pub tool: ToolInfo,
+    pub reference: FileInfo,
+    pub settings: Settings,
+    pub candidates: Vec<CandidateReport>,
+    /// Paired differences of mean kl between candidates (a minus b).
+    pub comparisons: Vec<PairReport>,
+    pub timing: Timing,
+    pub notice: &'static str,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct ToolInfo {
+    pub name: &'static str,
+    pub version: &'static str,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct FileInfo {
+    pub path: String,
+    pub dtype: &'static str,
+    pub rows: u64,
+    pub vocab: u64,
+    pub prompts: u64,
+    /// "sequences", "offsets" or "rows" (each row its own prompt).
+    pub grouping: &'static str,
+    pub model: Option<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Settings {
+    pub compared_vocab: u64,
+    pub samples: Vec<usize>,
+    pub seed: u64,
+    pub top: usize,
+    pub js: bool,
+    pub shard: Option<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Timing {
+    pub exact_pass_seconds: f64,
+    pub rows_per_second: f64,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct TokenProb {
+    pub id: u32,
+    pub p: f64,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub text: Option<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct WorstPositionReport {
+    pub row: u64,
+    pub prompt: u64,
+    pub position: u64,
+    pub kl: f64,
+    pub target: Option<i64>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub target_text: Option<String>,
+    pub ref_top: Vec<TokenProb>,
+    pub cand_top: Vec<TokenProb>,
+    /// The tokens before the position (with a tokenizer and targets).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub context: Option<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct WorstPromptReport {
+    pub prompt: u64,
+    pub positions: u64,
+    pub kl_mean: f64,
+    pub kl_max: f64,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct EstimatorBlock {
+    /// "forward" estimates KL(p||q) from x ~ p; "reverse" KL(q||p) from x ~ q.
+    pub direction: &'static str,
+    pub samples_per_position: usize,
+    pub positions: u64,
+    pub exact_mean: f64,
+    pub k1: KSummary,
+    pub k2: KSummary,
+    pub k3: KSummary,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct SamplingCost {
+    /// Sampled logging keeps two log-probabilities (f32) per draw.
+    pub sampled_bytes_per_position: Vec<(usize, u64)>,
+    /// Full logits of both models at the stored precision.
+    pub full_logit_bytes_per_position: u64,
+    pub exact_pass_seconds: f64,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Gate {
+    pub name: String,
+    pub limit: f64,
+    pub value: f64,
+    pub pass: bool,
+    /// The limit lies inside the value's 95% interval: the verdict could flip
+    /// with another prompt sample.
+    pub uncertain: bool,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct CandidateReport {
+    pub path: String,
+    pub dtype: &'static str,
+    pub model: Option<String>,
+    pub positions: u64,
+    pub kl: Aggregate,
+    pub kl_reverse: Aggregate,
+    pub tv: Aggregate,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub js: Option<Aggregate>,
+    pub entropy_ref: Aggregate,
+    pub entropy_cand: Aggregate,
+    pub nll_ref: Option<Aggregate>,
+    pub nll_cand: Option<Aggregate>,
+    pub top1_agree: f64,
+    pub ppl_ref: Option<f64>,
+    pub ppl_cand: Option<f64>,
+    pub ppl_ratio: Option<f64>,
+    pub skipped_rows: u64,
+    pub skipped: Vec<SkippedRow>,
+    pub infinite_kl: u64,
+    pub storage_floor: f64,
+    pub estimators: Vec<EstimatorBlock>,
+    pub sampling_cost: SamplingCost,
+    pub worst_positions: Vec<WorstPositionReport>,
+    pub worst_prompts: Vec<WorstPromptReport>,
+    pub gates: Vec<Gate>,
+    pub warnings: Vec<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct PairReport {
+    pub a: usize,
+    pub b: usize,
+    pub positions: u64,
+    /// Mean of kl_a - kl_b over positions counted in both.
+    pub kl_mean_diff: f64,
+    pub ci95: Option<[f64; 2]>,
+    /// "a lower", "b lower" or "not distinguishable" at 95%.
+    pub verdict: &'static str,
+}
+
+/// Gate limits, in the report's units.
+#[derive(Debug, Clone, Default)]
+pub struct GateLimits {
+    pub max_kl_mean: Option<f64>,
+    pub max_kl_p99: Option<f64>,
+    pub min_top1: Option<f64>,
+}
+
+pub struct BuildInputs<'a> {
+    pub reference: &'a LogitFile,
+    pub candidates: &'a [LogitFile],
+    pub cols: usize,
+    pub bits: bool,
+    pub samples: Vec<usize>,
+    pub seed: u64,
+    pub top: usize,
+    pub js: bool,
+    pub shard: Option<String>,
+    pub gates: GateLimits,
+    pub vocabulary: Option<&'a crate::tokens::Vocabulary>,
+    pub targets: Option<&'a [i64]>,
+}
+
+fn grouping_name(g: &Grouping) -> &'static str {
+    match g {
+        Grouping::Sequences { .. } => "sequences",
+        Grouping::Offsets => "offsets",
+        Grouping::PerRow => "rows",
+    }
+}
+
+/// Fewer counted positions than this and the report says the numbers are thin.
+pub const FEW_POSITIONS: u64 = 1000;
+/// Fewer prompts than this and the cluster interval itself is unreliable.
+pub const FEW_PROMPTS: u64 = 30;
+
+fn aggregate(acc: &mut CandidateAccum, metric: usize) -> Aggregate {
+    let prompts = &acc.prompts;
+    let groups = prompts.iter().map(move |p| (p.count(metric), p.sum[metric]));
+    Aggregate::exact(&mut acc.values[metric], groups)
+}
+
+pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
+    let scale = if inputs.bits { 1.0 / std::f64::consts::LN_2 } else { 1.0 };
+    let r = inputs.reference;
+    let mut cands = Vec::new();
+    for (k, acc) in result.candidates.iter_mut().enumerate() {
+        let file = &inputs.candidates[k];
+        cands.push(candidate_report(inputs, file, acc, scale, result.seconds));
+    }
+    let comparisons = result.pairs.iter().map(|p| pair_report(p, scale)).collect();
+    Report {
+        schema: SCHEMA,
+        units: if inputs.bits { "bits" } else { "nats" },
+        tool: ToolInfo { name: "klgauge", version: env!("CARGO_PKG_VERSION") },
+        reference: FileInfo {
+            path: r.path.display().to_string(),
+            dtype: r.dtype.name(),
+            rows: r.rows as u64,
+            vocab: r.vocab as u64,
+            prompts: r.prompts() as u64,
+            grouping: grouping_name(&r.grouping),
+            model: r.metadata.get("model").cloned(),
+        },
+        settings: Settings {
+            compared_vocab: inputs.cols as u64,
+            samples: inputs.samples.clone(),
+            seed: inputs.seed,
+            top: inputs.top,
+            js: inputs.js,
+            shard: inputs.shard.clone(),
+        },
+        candidates: cands,
+        comparisons,
+        timing: Timing {
+            exact_pass_seconds: result.seconds,
+            rows_per_second: if result.seconds > 0.0 { result.rows_processed as f64 / result.seconds } else { 0.0 },
+        },
+        notice: DISCLAIMER,
+    }
+}
+
+pub fn pair_report(p: &PairAccum, scale: f64) -> PairReport {
+    let (mean, ci) = cluster_mean(p.prompts.iter().map(|&(_, n, s)| (n, s)));
+    let n: f64 = p.prompts.iter().map(|x| x.1).sum();
+    let verdict = match ci {
+        Some([lo, _]) if lo > 0.0 => "b lower",
+        Some([_, hi]) if hi < 0.0 => "a lower",
+        _ => "not distinguishable",
+    };
+    PairReport {
+        a: p.a,
+        b: p.b,
+        positions: n as u64,
+        kl_mean_diff: mean * scale,
+        ci95: ci.map(|[a, b]| [a * scale, b * scale]),
+        verdict,
+    }
+}
+
+fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateAccum, scale: f64, seconds: f64) -> CandidateReport {
+    let r = inputs.reference;
+    let mut agg: Vec<Aggregate> = (0..NMETRIC).map(|m| aggregate(acc, m)).collect();
+    let n = acc.positions;
+    let has_nll = agg[engine::NLL_REF].n > 0;
+    let top1 = agg[engine::TOP1].mean;
+    let (ppl_ref, ppl_cand) = if has_nll {
+        (Some(agg[engine::NLL_REF].mean.exp()), Some(agg[engine::NLL_CAND].mean.exp()))
+    } else {
+        (None, None)
+    };
+    let ppl_ratio = match (ppl_ref, ppl_cand) {
+        (Some(a), Some(b)) => Some(b / a),
+        _ => None,
+    };
+    // Unit conversion of everything measured in nats.
+    for m in [engine::KL, engine::KL_REV, engine::JS, engine::ENT_REF, engine::ENT_CAND, engine::NLL_REF, engine::NLL_CAND] {
+        agg[m] = agg[m].scaled(scale);
+    }
+    let floor_nats = crate::floor::storage_floor(r, file, inputs.cols, 64);
+    let floor = floor_nats * scale;
+
+    let mut estimators = Vec::new();
+    for (b, &ns) in inputs.samples.iter().enumerate() {
+        for (dir, name) in [(0usize, "forward"), (1, "reverse")] {
+            let e = &acc.estimators[b][dir];
+            if e.n == 0.0 {
+                continue;
+            }
+            estimators.push(EstimatorBlock {
+                direction: name,
+                samples_per_position: ns,
+                positions: e.n as u64,
+                exact_mean: e.exact / e.n * scale,
+                k1: e.summary(0, scale),
+                k2: e.summary(1, scale),
+                k3: e.summary(2, scale),
+            });
+        }
+    }
+    let sampling_cost = SamplingCost {
+        sampled_bytes_per_position: inputs.samples.iter().map(|&s| (s, 8 * s as u64)).collect(),
+        full_logit_bytes_per_position: (inputs.cols * (r.dtype.size() + file.dtype.size())) as u64,
+        exact_pass_seconds: seconds,
+    };
+
+    let vocab = inputs.vocabulary;
+    let tok = |id: u32, p: f64| TokenProb { id, p, text: vocab.and_then(|v| v.text(id)) };
+    let worst_positions = acc
+        .worst
+        .iter()
+        .map(|w| {
+            let row = w.row as usize;
+            let ref_top = engine::top_tokens(r, row, inputs.cols, 5).into_iter().map(|(i, p)| tok(i, p)).collect();
+            let cand_top = engine::top_tokens(file, row, inputs.cols, 5).into_iter().map(|(i, p)| tok(i, p)).collect();
+            WorstPositionReport {
+                row: w.row,
+                prompt: w.prompt,
+                position: w.position,
+                kl: w.kl * scale,
+                target: w.target,
+                target_text: match (vocab, w.target) {
+                    (Some(v), Some(t)) => v.text(t as u32),
+                    _ => None,
+                },
+                ref_top,
+                cand_top,
+                context: context_text(inputs, row, w.position as usize),
+            }
+        })
+        .collect();
+    let mut prompts: Vec<&engine::PromptSums> = acc.prompts.iter().filter(|p| p.n > 0.0).collect();
+    prompts.sort_by(|a, b| (b.sum[KL] / b.n).total_cmp(&(a.sum[KL] / a.n)).then(a.prompt.cmp(&b.prompt)));
+    let worst_prompts = prompts
+        .iter()
+        .take(inputs.top)
+        .map(|p| WorstPromptReport { prompt: p.prompt, positions: p.n as u64, kl_mean: p.sum[KL] / p.n * scale, kl_max: p.max_kl * scale })
+        .collect();
+
+    let kl = agg[KL].clone();
+    let gates = evaluate_gates(&inputs.gates, &kl, top1, &acc.prompts);
+    let warnings = warnings(inputs, file, acc, &kl, floor, n, has_nll);
+    CandidateReport {
+        path: file.path.display().to_string(),
+        dtype: file.dtype.name(),
+        model: file.metadata.get("model").cloned(),
+        positions: n,
+        kl,
+        kl_reverse: agg[KL_REV].clone(),
+        tv: agg[engine::TV].clone(),
+        js: if inputs.js { Some(agg[engine::JS].clone()) } else { None },
+        entropy_ref: agg[engine::ENT_REF].clone(),
+        entropy_cand: agg[engine::ENT_CAND].clone(),
+        nll_ref: if has_nll { Some(agg[engine::NLL_REF].clone()) } else { None },
+        nll_cand: if has_nll { Some(agg[engine::NLL_CAND].clone()) } else { None },
+        top1_agree: top1,
+        ppl_ref,
+        ppl_cand,
+        ppl_ratio,
+        skipped_rows: acc.skipped_rows,
+        skipped: acc.skipped.clone(),
+        infinite_kl: acc.infinite_kl,
+        storage_floor: floor,
+        estimators,
+        sampling_cost,
+        worst_positions,
+        worst_prompts,
+        gates,
+        warnings,
+    }
+}
+
+/// The tokens before a position, from the targets (targets[row - 1] is the
+/// token at this row's position), up to 8 of them.
+fn context_text(inputs: &BuildInputs, row: usize, position: usize) -> Option<String> {
+    let (v, t) = (inputs.vocabulary?, inputs.targets?);
+    // The input token at row r is the target of row r - 1 within the prompt.
+    let first = row - position;
+    let lo = (row + 1).saturating_sub(8).max(first + 1);
+    let mut s = String::new();
+    for r in lo..=row {
+        let id = t[r - 1];
+        if id >= 0 {
+            s.push_str(&v.text(id as u32).unwrap_or_else(|| format!("<{id}>")));
+        }
+    }
+    Some(s)
+}
+
+pub fn evaluate_gates(limits: &GateLimits, kl: &Aggregate, top1: f64, prompts: &[engine::PromptSums]) -> Vec<Gate> {
+    let mut g = Vec::new();
+    let inside = |ci: Option<[f64; 2]>, x: f64| ci.map_or(false, |[a, b]| a <= x && x <= b);
+    if let Some(x) = limits.max_kl_mean {
+        let v = kl.mean;
+        g.push(Gate { name: "max-kl-mean".into(), limit: x, value: v, pass: v <= x, uncertain: inside(kl.ci95, x) });
+    }
+    if let Some(x) = limits.max_kl_p99 {
+        let v = kl.p99;
+        g.push(Gate { name: "max-kl-p99".into(), limit: x, value: v, pass: v <= x, uncertain: false });
+    }
+    if let Some(x) = limits.min_top1 {
+        let (_, ci) = cluster_mean(prompts.iter().map(|p| (p.n, p.sum[engine::TOP1])));
+        g.push(Gate { name: "min-top1".into(), limit: x, value: top1, pass: top1 >= x, uncertain: inside(ci, x) });
+    }
+    g
+}
+
+fn warnings(inputs: &BuildInputs, file: &LogitFile, acc: &CandidateAccum, kl: &Aggregate, floor: f64, n: u64, has_nll: bool) -> Vec<String> {
+    let mut w = Vec::new();
+    let units = if inputs.bits { "bits" } else { "nats" };
+    if n == 0 {
+        w.push("no position was counted: every row is masked or skipped, so there is nothing to judge".into());
+    } else if n < FEW_POSITIONS {
+        w.push(format!("only {n} positions were counted: percentiles and intervals are rough; use more prompts before deciding"));
+    }
+    let prompts = acc.prompts.iter().filter(|p| p.n > 0.0).count() as u64;
+    if matches!(inputs.reference.grouping, Grouping::PerRow) {
+        w.push("no prompt grouping in the input (neither 3-D logits nor prompt_offsets): every row counts as its own prompt, so intervals ignore the correlation within a prompt and are too narrow".into());
+    } else if prompts > 0 && prompts < FEW_PROMPTS {
+        w.push(format!("only {prompts} prompts: the 95% intervals rest on few clusters and are unreliable"));
+    }
+    if acc.skipped_rows > 0 {
+        w.push(format!("{} rows were skipped for invalid values (NaN, +inf or all -inf logits); they are listed under `skipped`", acc.skipped_rows));
+    }
+    if acc.infinite_kl > 0 {
+        w.push(format!("{} positions have infinite kl: the candidate gives probability 0 to a token the reference allows; the mean is infinite", acc.infinite_kl));
+    }
+    if floor.is_finite() && kl.mean.is_finite() && kl.mean < 10.0 * floor {
+        w.push(format!(
+            "mean kl {:.3e} {units} is within 10x of the storage floor {:.3e} {units} ({} / {}): part of what is measured is rounding of the stored logits, not the model; store centered logits or a wider dtype",
+            kl.mean,
+            floor,
+            inputs.reference.dtype.name(),
+            file.dtype.name()
+        ));
+    }
+    if !has_nll {
+        w.push("no targets: perplexities are not available".into());
+    }
+    w
+}
