@@ -73,31 +73,36 @@ def softmax(z: np.ndarray) -> np.ndarray:
     return e / e.sum(axis=-1, keepdims=True)
 
 
-def _error_variance(v: np.ndarray, dtype: str) -> np.ndarray:
-    exact = round_to(v, dtype) == v
-    return np.where(exact, 0.0, rounding_step(v, dtype) ** 2 / 12.0)
+def _error_variance(v: np.ndarray, dtype: str, exact_is_free: bool) -> np.ndarray:
+    var = rounding_step(v, dtype) ** 2 / 12.0
+    if exact_is_free:
+        var = np.where(round_to(v, dtype) == v, 0.0, var)
+    return var
 
 
 def predicted_floor_rows(z: np.ndarray, dtype: str, form: str = "raw",
-                         ref_dtype: str | None = None) -> np.ndarray:
+                         ref_dtype: str | None = None, exact_is_free: bool = True) -> np.ndarray:
     """Predicted KL (nats) per row caused by storing rows z in `dtype` after `form`.
 
     With `ref_dtype`, the reference is taken as stored in that type too and
-    the two independent rounding errors add their variances.
+    the two independent rounding errors add their variances. `exact_is_free`
+    gives entries already representable in the type no error; pass False
+    when z are stored values standing in for unknown exact ones (then only
+    an exact 0 is free).
     """
     v = transform(z, form)
     p = softmax(v)
-    var = _error_variance(v, dtype)
+    var = _error_variance(v, dtype, exact_is_free)
     if ref_dtype is not None:
-        var = var + _error_variance(v, ref_dtype)
+        var = var + _error_variance(v, ref_dtype, exact_is_free)
     return 0.5 * np.sum(p * (1.0 - p) * var, axis=-1)
 
 
 def predicted_floor(z: np.ndarray, dtype: str, form: str = "raw",
-                    ref_dtype: str | None = None) -> float:
+                    ref_dtype: str | None = None, exact_is_free: bool = True) -> float:
     """Mean over rows of `predicted_floor_rows`."""
     z = np.atleast_2d(z)
-    return float(np.mean(predicted_floor_rows(z, dtype, form, ref_dtype)))
+    return float(np.mean(predicted_floor_rows(z, dtype, form, ref_dtype, exact_is_free)))
 
 
 # --- direct simulation ------------------------------------------------------
@@ -164,6 +169,9 @@ def _main(argv: list[str]) -> int:
     names = {torch.float32: "f32", torch.float16: "f16", torch.bfloat16: "bf16"}
     total, rows = 0.0, 0
     for f in files:
+        if not os.path.isfile(f):
+            print(f"floor_model.py: {f}: no such file", file=sys.stderr)
+            return 2
         try:
             with safe_open(f, framework="pt") as h:
                 t = h.get_tensor("logits")
@@ -177,7 +185,7 @@ def _main(argv: list[str]) -> int:
         z = t.reshape(-1, t.shape[-1]).double().numpy()
         # Stored values are taken as the true ones; the form does not matter
         # for the spacing since it is applied already.
-        total += float(np.sum(predicted_floor_rows(z, dt, "raw")))
+        total += float(np.sum(predicted_floor_rows(z, dt, "raw", exact_is_free=False)))
         rows += z.shape[0]
     print(f"{rows} rows, predicted storage floor {total / max(rows, 1):.3e} nats per position")
     return 0

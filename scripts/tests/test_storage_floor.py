@@ -124,3 +124,20 @@ def test_klgauge_storage_floor_against_prediction(klgauge_bin, tmp_path):
     predicted = fm.predicted_floor(z, "bf16", "raw", ref_dtype="f32")
     print(f"klgauge storage_floor {floor:.3e}, predicted {predicted:.3e}, measured {measured:.3e}")
     assert 0.5 < floor / predicted < 2.0
+
+
+def test_command_line_reports_the_floor_of_a_stored_file(tmp_path, capsys):
+    """`floor_model.py FILE` takes the stored bf16 values as the true ones:
+    its number is the prediction for those rows with only exact zeros free."""
+    from safetensors.torch import save_file
+
+    z = np.random.default_rng(9).normal(0, 3, size=(8, 4096))
+    z = z - z.max(axis=1, keepdims=True)
+    stored = fm.round_to_bf16(z)
+    path = tmp_path / "rows.safetensors"
+    save_file({"logits": torch.from_numpy(z.astype(np.float32)).to(torch.bfloat16)}, str(path))
+    assert fm._main([str(path)]) == 0
+    out = capsys.readouterr().out
+    want = fm.predicted_floor(stored, "bf16", "raw", exact_is_free=False)
+    assert out.startswith("8 rows") and f"{want:.3e}" in out
+    assert fm._main([str(tmp_path / "missing.safetensors")]) == 2
