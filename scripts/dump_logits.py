@@ -234,7 +234,7 @@ def read_records(path: str, skip_first: int):
 def tokenize_records(records, tokenizer, max_tokens: int, skip_first: int, vocab: int):
     """(ids, count_from) per record; given `ids` must lie in 0..vocab-1 (the
     model's input vocabulary); prompts are cut to max_tokens when it is > 0."""
-    prompts = []
+    prompts, cut = [], 0
     for where, rec in records:
         if "ids" in rec:
             ids = list(rec["ids"])
@@ -243,11 +243,14 @@ def tokenize_records(records, tokenizer, max_tokens: int, skip_first: int, vocab
                 raise InputError(f"{where}: token id {bad[0]} outside the model's vocabulary 0..{vocab - 1}")
         else:
             ids = list(tokenizer(rec["text"])["input_ids"])
-        if max_tokens > 0:
+        if 0 < max_tokens < len(ids):
             ids = ids[:max_tokens]
+            cut += 1
         if not ids:
             raise InputError(f"{where}: the prompt has no tokens")
         prompts.append((ids, rec.get("count_from", skip_first)))
+    if cut:
+        print(f"{PROG}: note: {cut} prompt(s) cut to {max_tokens} tokens", file=sys.stderr)
     return prompts
 
 
@@ -354,8 +357,6 @@ def run_dump(args) -> int:
 
     def flush():
         nonlocal shard, parts, shard_rows
-        if not parts:
-            return
         lengths = [p[0].shape[0] for p in parts]
         offsets = torch.tensor([0] + list(itertools.accumulate(lengths)), dtype=torch.int64)
         tensors = {
@@ -368,24 +369,37 @@ def run_dump(args) -> int:
         write_safetensors(path, tensors, dict(meta, shard_index=shard, prompts_in_shard=len(parts)))
         shard += 1
         parts, shard_rows = [], 0
+        return path
 
-    for ids, count_from in prompts:
-        z = forward_logits(model, ids, args.device)
-        if vocab is None:
-            vocab = z.shape[1]
-            meta["vocab"] = vocab
-        v = apply_form(z, args.form).to(store)
-        n = len(ids)
-        targets = torch.tensor(ids[1:] + [-1], dtype=torch.int64)
-        mask = torch.zeros(n, dtype=torch.uint8)
-        mask[min(count_from, n):] = 1
-        parts.append((v, targets, mask))
-        shard_rows += n
-        total_rows += n
-        counted += int(mask.sum())
-        if shard_rows >= args.shard_rows:
-            flush()
-    flush()
+    written = []
+    try:
+        for index, (ids, count_from) in enumerate(prompts):
+            try:
+                z = forward_logits(model, ids, args.device)
+            except RuntimeError as e:
+                raise InputError(f"{args.prompts}: prompt {index + 1}: the forward pass failed: {e}") from e
+            if vocab is None:
+                vocab = z.shape[1]
+                meta["vocab"] = vocab
+            v = apply_form(z, args.form).to(store)
+            n = len(ids)
+            targets = torch.tensor(ids[1:] + [-1], dtype=torch.int64)
+            mask = torch.zeros(n, dtype=torch.uint8)
+            mask[min(count_from, n):] = 1
+            parts.append((v, targets, mask))
+            shard_rows += n
+            total_rows += n
+            counted += int(mask.sum())
+            if shard_rows >= args.shard_rows:
+                written.append(flush())
+        if parts:
+            written.append(flush())
+    except BaseException:
+        # no half-finished dump: remove the shards of this run
+        for path in written + glob.glob(os.path.join(args.out, "part-*.safetensors.tmp")):
+            if os.path.exists(path):
+                os.remove(path)
+        raise
     print(f"{PROG}: {len(prompts)} prompts, {total_rows} rows ({counted} counted), vocab {vocab}, "
           f"{shard} shard(s) in {args.out}, {time.time() - t0:.1f}s", file=sys.stderr)
     return 0

@@ -330,3 +330,49 @@ def test_klgauge_estimate_reads_the_sample_file(klgauge_bin, tiny_model, prompts
     r = subprocess.run([klgauge_bin, "estimate", str(samples)], capture_output=True, text=True,
                        timeout=120)
     assert r.returncode == 0, r.stderr
+
+
+def test_fake_quant_gpt2_conv1d_and_tied_head(tmp_path):
+    """GPT-2 style layers (transformers' Conv1D, weight stored [in, out]) are
+    quantised along their input dimension too, and a head tied to the token
+    embedding is untied: the embedding keeps its float weights."""
+    from transformers import GPT2Config, GPT2LMHeadModel
+
+    torch.manual_seed(0)
+    cfg = GPT2Config(vocab_size=300, n_positions=32, n_embd=32, n_layer=1, n_head=2,
+                     tie_word_embeddings=True)
+    GPT2LMHeadModel(cfg).save_pretrained(tmp_path / "gpt2ish")
+    orig = GPT2LMHeadModel.from_pretrained(tmp_path / "gpt2ish", local_files_only=True)
+    model, layers = dump_logits.load_model(str(tmp_path / "gpt2ish"), "f32", "cpu", "int8", 16)
+    q = dict(model.named_modules())
+    conv = [n for n, m in orig.named_modules() if type(m).__name__ == "Conv1D"]
+    assert len(conv) == 4 and layers == 5  # c_attn, c_proj, c_fc, mlp c_proj + lm_head
+    for name in conv:
+        w = orig.get_submodule(name).weight.detach().numpy()  # [in, out]
+        want, scale = np_fake_quant(w.T, 127, 16)
+        got = q[name].weight.detach().numpy()
+        np.testing.assert_allclose(got, want.T, rtol=1e-6, atol=0)
+        assert np.all(np.abs(got - w) <= scale.T / 2 * (1 + 1e-6))
+    head = model.get_output_embeddings().weight.detach().numpy()
+    emb = orig.get_input_embeddings().weight.detach().numpy()
+    np.testing.assert_allclose(head, np_fake_quant(emb, 127, 16)[0], rtol=1e-6, atol=0)
+    np.testing.assert_array_equal(model.get_input_embeddings().weight.detach().numpy(), emb)
+
+
+def test_failed_run_leaves_no_shards(tiny_model, prompts_file, tmp_path, monkeypatch, capsys):
+    """A forward pass failing half-way: exit 2, one message naming the prompt,
+    and none of the shards already written stay behind."""
+    real = dump_logits.forward_logits
+    calls = []
+
+    def flaky(model, ids, device):
+        calls.append(1)
+        if len(calls) == 9:
+            raise RuntimeError("simulated failure")
+        return real(model, ids, device)
+
+    monkeypatch.setattr(dump_logits, "forward_logits", flaky)
+    out = tmp_path / "broken"
+    assert dump_logits.main([tiny_model, prompts_file, str(out), "--shard-rows", "20"]) == 2
+    assert "prompt 9" in capsys.readouterr().err
+    assert os.listdir(out) == []
