@@ -33,7 +33,7 @@ def klgauge_path() -> str:
     return os.environ.get("KLGAUGE_BIN", os.path.join(REPO, "target", "release", "klgauge"))
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def klgauge_bin() -> str:
     path = klgauge_path()
     if not (os.path.isfile(path) and os.access(path, os.X_OK)):
@@ -42,7 +42,7 @@ def klgauge_bin() -> str:
     return path
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def tiny_model(tmp_path_factory) -> str:
     import make_tiny_model
 
@@ -51,7 +51,7 @@ def tiny_model(tmp_path_factory) -> str:
     return str(out)
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def prompts_file(tiny_model, tmp_path_factory) -> str:
     """The tiny model's invented prompts plus one pre-tokenised record and one
     with a not-counted preamble."""
@@ -71,14 +71,14 @@ def run_dump(*argv) -> None:
     assert code == 0, f"dump_logits.py {' '.join(map(str, argv))} exited {code}"
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def ref_dump(tiny_model, prompts_file, tmp_path_factory) -> str:
     out = tmp_path_factory.mktemp("dumps") / "ref"
     run_dump(tiny_model, prompts_file, out, "--dtype", "f32", "--shard-rows", SHARD_ROWS)
     return str(out)
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def cand_dump(tiny_model, prompts_file, tmp_path_factory) -> str:
     out = tmp_path_factory.mktemp("dumps") / "int4"
     run_dump(tiny_model, prompts_file, out, "--dtype", "bf16", "--fake-quant", "int4",

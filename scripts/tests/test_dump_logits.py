@@ -18,11 +18,11 @@ import torch
 
 import dump_logits
 from conftest import SCRIPTS, SHARD_ROWS, run_dump
-from helpers import (bf16_half_step, concat, load_shards, log_softmax64, np_fake_quant,
+from common import (bf16_half_step, concat, load_shards, log_softmax64, np_fake_quant,
                      read_jsonl)
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def hf(tiny_model):
     from transformers import AutoModelForCausalLM, AutoTokenizer
 
@@ -32,7 +32,7 @@ def hf(tiny_model):
     return tok, model
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def prompt_ids(hf, prompts_file):
     tok, _ = hf
     out = []
@@ -47,7 +47,7 @@ def forward64(model, ids) -> np.ndarray:
         return model(torch.tensor([ids])).logits[0].double().numpy()
 
 
-@pytest.fixture(scope="session")
+@pytest.fixture(scope="module")
 def np_quant_model(hf):
     """The tiny model with every nn.Linear weight replaced by the numpy int4 version."""
     _, model = hf

@@ -1,4 +1,4 @@
-"""Readers used by the tests; independent of the dumper's own code."""
+"""Readers and reference implementations used by the tests; independent of the dumper's own code."""
 from __future__ import annotations
 
 import glob
