@@ -418,7 +418,7 @@ def default_name(model_dir: str, fake_quant, group_size: int, compute_dtype: str
 # --------------------------------------------------------------------------
 # sampling
 
-def sample_continuation(model, ids, new_tokens: int, seed: int, device: str, eos_id):
+def sample_continuation(model, ids, new_tokens: int, seed: int, device: str, eos_ids=frozenset()):
     """Draw up to `new_tokens` tokens from `model` at temperature 1 (KV cache).
 
     The draws use a CPU generator on float64 probabilities so that a seed gives
@@ -440,7 +440,7 @@ def sample_continuation(model, ids, new_tokens: int, seed: int, device: str, eos
             probs = torch.softmax(out.logits[0, -1].to("cpu", torch.float64), dim=-1)
             tok = int(torch.multinomial(probs, 1, generator=gen))
             drawn.append(tok)
-            if eos_id is not None and tok == eos_id:
+            if tok in eos_ids:
                 break
             if step + 1 == new_tokens:
                 break
@@ -485,13 +485,13 @@ def run_sample(args) -> int:
         raise InputError(f"{args.model_b}: vocabulary {vb} differs from {args.model_a}'s {va}")
     limit = min(x for x in (context_limit(model_a), context_limit(model_b), 1 << 62) if x > 0)
     max_prompt = args.max_tokens if args.max_tokens > 0 else limit - args.new_tokens
-    if max_prompt < 1:
-        raise InputError(f"--new-tokens {args.new_tokens} leaves no room in a context of {limit}")
+    if max_prompt < 1 or max_prompt + args.new_tokens > limit:
+        raise InputError(f"--max-tokens {args.max_tokens} with --new-tokens {args.new_tokens} "
+                         f"does not fit the models' context of {limit} tokens")
     prompts = tokenize_records(records, tok_a, max_prompt, 0,
                                min(input_vocab(model_a), input_vocab(model_b)))
     eos = None if args.no_eos_stop else model_a.config.eos_token_id
-    if isinstance(eos, list):
-        eos = eos[0] if eos else None
+    eos = set(eos) if isinstance(eos, (list, tuple)) else ({eos} if isinstance(eos, int) else set())
 
     ref, cand, toks, offsets = [], [], [], [0]
     for i, (ids, _) in enumerate(prompts):
@@ -512,7 +512,7 @@ def run_sample(args) -> int:
         "sampling": "temperature 1, no top-k/top-p, drawn from model_ref",
         "new_tokens": args.new_tokens,
         "seed": args.seed,
-        "stop_at_eos": "no" if eos is None else f"yes (id {eos})",
+        "stop_at_eos": f"yes (ids {sorted(eos)})" if eos else "no",
         "compute_dtype": args.compute_dtype,
         "fake_quant": args.fake_quant or "none",
     }
