@@ -62,6 +62,9 @@ pub struct Settings {
     pub top: usize,
     pub js: bool,
     pub shard: Option<String>,
+    /// How p50 .. p999 were found: "exact" (sorted values), or from merged
+    /// sketches of a sharded run, with their relative accuracy.
+    pub percentiles: String,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -210,6 +213,7 @@ impl<'a> BuildInputs<'a> {
             top: self.top,
             js: self.js,
             shard: self.shard.clone(),
+            percentiles: "exact".into(),
             gates: self.gates.clone(),
             vocabulary: self.vocabulary,
         }
@@ -226,6 +230,8 @@ pub struct ReportSettings<'a> {
     pub top: usize,
     pub js: bool,
     pub shard: Option<String>,
+    /// See `Settings::percentiles`.
+    pub percentiles: String,
     pub gates: GateLimits,
     pub vocabulary: Option<&'a crate::tokens::Vocabulary>,
 }
@@ -314,6 +320,9 @@ fn grouping_name(g: &Grouping) -> &'static str {
     }
 }
 
+/// Rows sampled, evenly spaced, for the storage floor (partial results sample the same ones).
+pub const FLOOR_SAMPLE_ROWS: usize = 64;
+
 /// Fewer counted positions than this and the report says the numbers are thin.
 pub const FEW_POSITIONS: u64 = 1000;
 /// Fewer prompts than this and the cluster interval itself is unreliable.
@@ -337,7 +346,7 @@ pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
             acc,
             aggregates,
             worst: acc.worst.iter().map(|w| resolve_worst(r, file, inputs.cols, inputs.targets, w)).collect(),
-            storage_floor: crate::floor::storage_floor(r, file, inputs.cols, 64),
+            storage_floor: crate::floor::storage_floor(r, file, inputs.cols, FLOOR_SAMPLE_ROWS),
         });
     }
     assemble(&inputs.settings(), &FileSummary::of(r), cands, &result.pairs, result.seconds, result.rows_processed)
@@ -376,6 +385,7 @@ pub fn assemble(
             top: settings.top,
             js: settings.js,
             shard: settings.shard.clone(),
+            percentiles: settings.percentiles.clone(),
         },
         candidates: cands,
         comparisons,
