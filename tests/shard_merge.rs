@@ -86,9 +86,12 @@ fn write_logits(path: &Path, dtype: Dtype, logits: &[f32], rows: usize, vocab: u
 /// heavier one stored in BF16, worse on every fifth prompt, with one NaN row
 /// and one token the reference allows that it rules out (infinite kl).
 fn make_inputs(dir: &Scratch, seed: u64, with_faults: bool) -> (PathBuf, PathBuf, PathBuf) {
-    let vocab = 200;
+    make_inputs_sized(dir, seed, with_faults, 45, 200)
+}
+
+fn make_inputs_sized(dir: &Scratch, seed: u64, with_faults: bool, prompts: usize, vocab: usize) -> (PathBuf, PathBuf, PathBuf) {
     let mut rng = Rng(seed);
-    let lens: Vec<usize> = (0..45).map(|_| 10 + (rng.next() % 40) as usize).collect();
+    let lens: Vec<usize> = (0..prompts).map(|_| 10 + (rng.next() % 40) as usize).collect();
     let mut offsets = vec![0i64];
     for l in &lens {
         offsets.push(offsets.last().unwrap() + *l as i64);
@@ -264,7 +267,7 @@ fn same_layout(merged: &str, single: &str) {
 
 /// Runs the single pass and the three-shard pass with the same options and
 /// compares them; returns the worst percentile difference.
-fn single_vs_sharded(dir: &Scratch, inputs: &[&Path], opts: &[&str], gates: &[&str], expect_code: i32) -> f64 {
+fn single_vs_sharded(dir: &Scratch, inputs: &[&Path], opts: &[&str], merge_opts: &[&str], gates: &[&str], expect_code: i32) -> f64 {
     let single_json = dir.path("single.json");
     let mut args: Vec<&str> = vec!["compare"];
     args.extend(inputs.iter().map(|p| s(p)));
@@ -292,9 +295,7 @@ fn single_vs_sharded(dir: &Scratch, inputs: &[&Path], opts: &[&str], gates: &[&s
     // Shards given out of order: merge sorts them.
     let mut args: Vec<&str> = vec!["merge", s(&partials[2]), s(&partials[0]), s(&partials[1])];
     args.extend(gates);
-    if opts.contains(&"--bits") {
-        args.push("--bits");
-    }
+    args.extend(merge_opts);
     args.extend(["--json", s(&merged_json)]);
     let merged = run(&args);
     assert_eq!(code(&merged), expect_code, "merge: {}", String::from_utf8_lossy(&merged.stderr));
@@ -308,11 +309,24 @@ fn three_shards_merge_to_the_single_run() {
     let (r, a, b) = make_inputs(&dir, 7, true);
     // Candidate b has an infinite kl, so the mean gate fails: exit 1 in both.
     let gates = ["--max-kl-mean", "0.5", "--max-kl-p99", "2.0", "--min-top1", "0.5"];
-    let w = single_vs_sharded(&dir, &[&r, &a, &b], &["--js", "--samples", "1,4"], &gates, 1);
+    let tok = write_tokenizer(&dir, 200);
+    let opts = ["--js", "--samples", "1,4", "--tokenizer", s(&tok)];
+    let w = single_vs_sharded(&dir, &[&r, &a, &b], &opts, &["--tokenizer", s(&tok)], &gates, 1);
     eprintln!("worst relative percentile difference, merged vs single (with faults): {w:.3e}");
     let single = read_json(&dir.path("single.json"));
     assert_eq!(single["candidates"][1]["infinite_kl"], 1);
     assert_eq!(single["candidates"][1]["skipped_rows"], 1);
+    // Token text comes from the tokenizer at merge time and matches the single run's.
+    let w0 = &read_json(&dir.path("merged.json"))["candidates"][0]["worst_positions"][0];
+    assert!(w0["ref_top"][0]["text"].as_str().unwrap().starts_with("tok"), "{w0}");
+}
+
+/// An invented tokenizer.json with tokens "tok0" .. "tokN-1".
+fn write_tokenizer(dir: &Scratch, n: usize) -> PathBuf {
+    let vocab: serde_json::Map<String, Value> = (0..n).map(|i| (format!("tok{i}"), Value::from(i))).collect();
+    let p = dir.path("tokenizer.json");
+    std::fs::write(&p, serde_json::to_vec(&serde_json::json!({ "model": { "vocab": vocab } })).unwrap()).unwrap();
+    p
 }
 
 #[test]
@@ -320,7 +334,7 @@ fn passing_gates_pass_after_merging_too() {
     let dir = Scratch::new("pass");
     let (r, a, _) = make_inputs(&dir, 11, false);
     let gates = ["--max-kl-mean", "0.01", "--max-kl-p99", "0.05", "--min-top1", "0.5"];
-    let w = single_vs_sharded(&dir, &[&r, &a], &["--top", "7", "--bits"], &gates, 0);
+    let w = single_vs_sharded(&dir, &[&r, &a], &["--top", "7", "--bits"], &["--bits"], &gates, 0);
     eprintln!("worst relative percentile difference, merged vs single (light candidate, bits): {w:.3e}");
     let merged = read_json(&dir.path("merged.json"));
     assert_eq!(merged["units"], "bits");
@@ -398,6 +412,16 @@ fn merge_refuses_duplicate_missing_and_foreign_shards() {
     // No report was left behind by any refusal.
     assert!(!out.exists());
 
+    // --html with --json: either both are written or, where this build has
+    // no HTML format, a usage error and neither.
+    let (html, json) = (dir.path("r.html"), dir.path("r.json"));
+    let o = run(&["merge", p0, p1, p2, "--html", s(&html), "--json", s(&json)]);
+    match code(&o) {
+        0 => assert!(html.exists() && json.exists()),
+        2 => assert!(!html.exists() && !json.exists(), "{}", String::from_utf8_lossy(&o.stderr)),
+        c => panic!("exit {c}: {}", String::from_utf8_lossy(&o.stderr)),
+    }
+
     // The complete set still merges.
     let ok = run(&["merge", p2, p1, p0]);
     assert_eq!(code(&ok), 0, "{}", String::from_utf8_lossy(&ok.stderr));
@@ -438,4 +462,26 @@ fn shard_options_are_checked() {
     assert!(String::from_utf8_lossy(&o.stdout).contains("shard 0/1"));
     let o = run(&["merge", s(&whole)]);
     assert_eq!(code(&o), 0, "{}", String::from_utf8_lossy(&o.stderr));
+}
+
+/// A larger run for measuring the sketch on realistic per-position values:
+/// `cargo test --test shard_merge -- --ignored --nocapture`.
+#[test]
+#[ignore]
+fn measure_percentile_accuracy_on_a_larger_run() {
+    let dir = Scratch::new("measure");
+    let (r, a, b) = make_inputs_sized(&dir, 21, false, 1200, 256);
+    let w = single_vs_sharded(&dir, &[&r, &a, &b], &["--samples", "0", "--js"], &[], &[], 0);
+    let (m, s) = (read_json(&dir.path("merged.json")), read_json(&dir.path("single.json")));
+    let (mut sum, mut n) = (0f64, 0usize);
+    for (x, y) in m["candidates"].as_array().unwrap().iter().zip(s["candidates"].as_array().unwrap()) {
+        for metric in ["kl", "kl_reverse", "tv", "js", "entropy_ref", "entropy_cand", "nll_ref", "nll_cand"] {
+            for p in ["p50", "p90", "p99", "p999"] {
+                let (u, v) = (x[metric][p].as_f64().unwrap(), y[metric][p].as_f64().unwrap());
+                sum += rel(u, v);
+                n += 1;
+            }
+        }
+    }
+    eprintln!("positions {}, percentiles compared {n}: mean relative difference {:.3e}, worst {w:.3e}", s["candidates"][0]["positions"], sum / n as f64);
 }
