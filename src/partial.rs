@@ -597,7 +597,7 @@ fn check_one(p: &Partial) -> std::result::Result<(), String> {
         }
         let mut last = None;
         for pr in &c.prompts {
-            if pr.prompt < s.prompts[0] || pr.prompt >= s.prompts[1] || last.map_or(false, |l| pr.prompt <= l) {
+            if pr.prompt < s.prompts[0] || pr.prompt >= s.prompts[1] || last.is_some_and(|l| pr.prompt <= l) {
                 return Err(at(format!("prompt {} is out of order or outside the shard's prompts {:?}", pr.prompt, s.prompts)));
             }
             last = Some(pr.prompt);

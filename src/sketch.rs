@@ -48,7 +48,7 @@ impl Store {
             // arrive in decreasing order cost amortised O(1) each; `trim`
             // drops the unused slack.
             let grow = ((self.offset - index) as usize).max(self.counts.len());
-            self.counts.splice(0..0, std::iter::repeat(0).take(grow));
+            self.counts.splice(0..0, std::iter::repeat_n(0, grow));
             self.offset -= grow as i32;
         } else if index >= self.offset + self.counts.len() as i32 {
             let len = (index - self.offset) as usize + 1;
@@ -310,7 +310,8 @@ impl Sketch {
         if total != p.count {
             return Err(format!("sketch counts add up to {total}, but its count is {}", p.count));
         }
-        if p.count > 0 && !(p.min <= p.max) {
+        // Also refuses a NaN minimum or maximum of a non-empty sketch.
+        if p.count > 0 && p.min.partial_cmp(&p.max).is_none_or(|o| o.is_gt()) {
             return Err(format!("sketch minimum {} is not at most its maximum {}", p.min, p.max));
         }
         s.positive = p.positive;
