@@ -8,6 +8,8 @@ pub mod engine;
 pub mod estimators;
 pub mod stats;
 pub mod histo;
+pub mod sketch;
+pub mod partial;
 pub mod floor;
 pub mod output;
 pub mod report;

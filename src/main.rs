@@ -2,7 +2,8 @@
 //! turns the outcome into SPEC's exit code. All work happens in the library.
 
 use clap::{Args, Parser, Subcommand};
-use klgauge::commands::compare::{compare, CompareArgs};
+use klgauge::commands::compare::{compare, compare_shard, CompareArgs};
+use klgauge::commands::merge::{merge, MergeArgs};
 use klgauge::error::Error;
 use klgauge::report::{text::Text, Format, GateLimits};
 use std::io::{IsTerminal, Write};
@@ -20,6 +21,8 @@ struct Cli {
 enum Command {
     /// Exact metrics of each candidate against the reference, estimators, worst positions, gates
     Compare(CompareCli),
+    /// Combine the partial results of a sharded run (`compare --shard I/N --partial FILE`) into one report
+    Merge(MergeCli),
     /// Make an invented example scenario (the fictional model Wren-7 and two compressed variants) and compare it, writing every report
     Demo(DemoCli),
 }
@@ -32,6 +35,37 @@ struct DemoCli {
     /// Worker threads (default: one per core)
     #[arg(long, value_name = "N")]
     threads: Option<usize>,
+}
+
+#[derive(Args)]
+struct MergeCli {
+    /// Partial results, one per shard, in any order
+    #[arg(required = true, value_name = "PARTIAL")]
+    partials: Vec<PathBuf>,
+    /// Write the full report as JSON
+    #[arg(long, value_name = "FILE")]
+    json: Option<PathBuf>,
+    /// Write a self-contained HTML report
+    #[arg(long, value_name = "FILE")]
+    html: Option<PathBuf>,
+    /// Number of worst positions and prompts listed (default: what the shards kept)
+    #[arg(long, value_name = "N")]
+    top: Option<usize>,
+    /// A tokenizer.json, to show token text
+    #[arg(long, value_name = "FILE")]
+    tokenizer: Option<PathBuf>,
+    /// Report divergences and entropies in bits instead of nats
+    #[arg(long)]
+    bits: bool,
+    /// Gate: fail when the mean kl exceeds X (in the report's units)
+    #[arg(long, value_name = "X")]
+    max_kl_mean: Option<f64>,
+    /// Gate: fail when the 99th percentile of kl exceeds X
+    #[arg(long, value_name = "X")]
+    max_kl_p99: Option<f64>,
+    /// Gate: fail when top-1 agreement falls below X (a fraction, 0..1)
+    #[arg(long, value_name = "X")]
+    min_top1: Option<f64>,
 }
 
 #[derive(Args)]
@@ -122,21 +156,6 @@ fn print_text(s: &str) -> Result<(), Error> {
 
 fn run(cli: Cli) -> Result<ExitCode, Error> {
     match cli.command {
-        Command::Demo(d) => {
-            print_text(&klgauge::demo::preface())?;
-            let (files, outcome) = klgauge::demo::run(&d.out, d.threads)?;
-            print(&outcome.report)?;
-            let dir = files.dir.display();
-            print_text(&format!(
-                "\nwrote {dir}/report.html, {dir}/report.json and {dir}/positions.csv (open the HTML file in a browser)\n\
-                 the same comparison as a command, which exits {} because a gate {}:\n  {}\n",
-                if outcome.gate_failed { 1 } else { 0 },
-                if outcome.gate_failed { "failed" } else { "did not fail" },
-                klgauge::demo::compare_command(&files)
-            ))?;
-            // The demo ran as designed whatever the verdicts: exit 0.
-            Ok(ExitCode::SUCCESS)
-        }
         Command::Compare(c) => {
             let args = CompareArgs {
                 reference: c.reference,
@@ -157,7 +176,41 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
                 gates: GateLimits { max_kl_mean: c.max_kl_mean, max_kl_p99: c.max_kl_p99, min_top1: c.min_top1 },
                 progress: std::io::stderr().is_terminal(),
             };
+            if args.shard.is_some() || args.partial.is_some() {
+                let shard = compare_shard(&args)?;
+                print_text(&shard.summary())?;
+                return Ok(ExitCode::from(0));
+            }
             let outcome = compare(&args)?;
+            print(&outcome.report)?;
+            Ok(ExitCode::from(if outcome.gate_failed { 1 } else { 0 }))
+        }
+        Command::Demo(d) => {
+            print_text(&klgauge::demo::preface())?;
+            let (files, outcome) = klgauge::demo::run(&d.out, d.threads)?;
+            print(&outcome.report)?;
+            let dir = files.dir.display();
+            print_text(&format!(
+                "\nwrote {dir}/report.html, {dir}/report.json and {dir}/positions.csv (open the HTML file in a browser)\n\
+                 the same comparison as a command, which exits {} because a gate {}:\n  {}\n",
+                if outcome.gate_failed { 1 } else { 0 },
+                if outcome.gate_failed { "failed" } else { "did not fail" },
+                klgauge::demo::compare_command(&files)
+            ))?;
+            // The demo ran as designed whatever the verdicts: exit 0.
+            Ok(ExitCode::SUCCESS)
+        }
+        Command::Merge(m) => {
+            let args = MergeArgs {
+                partials: m.partials,
+                json: m.json,
+                html: m.html,
+                top: m.top,
+                tokenizer: m.tokenizer,
+                bits: m.bits,
+                gates: GateLimits { max_kl_mean: m.max_kl_mean, max_kl_p99: m.max_kl_p99, min_top1: m.min_top1 },
+            };
+            let outcome = merge(&args)?;
             print(&outcome.report)?;
             Ok(ExitCode::from(if outcome.gate_failed { 1 } else { 0 }))
         }
