@@ -134,6 +134,8 @@ pub struct CandidateAccum {
     pub kl_hist: crate::histo::KlHistogram,
     /// kl binned by position index within the prompt (plots; mergeable).
     pub by_position: crate::histo::PositionProfile,
+    /// Per-prompt tail counts behind the interval of kl's percentiles (mergeable).
+    pub kl_tail: crate::histo::TailSums,
 }
 
 /// Paired kl differences (a - b) per prompt, over positions counted in both.
@@ -470,6 +472,7 @@ pub fn run(
     res.seconds = start.elapsed().as_secs_f64();
     for acc in res.candidates.iter_mut() {
         acc.worst.sort_by(worst_order);
+        acc.kl_tail.finish();
     }
     Ok(res)
 }
@@ -505,6 +508,7 @@ fn fold_position(acc: &mut CandidateAccum, co: &CandOut, opts: &EngineOptions, r
     }
     acc.kl_hist.add(m[KL]);
     acc.by_position.add(position as u64, m[KL], m[TOP1]);
+    acc.kl_tail.add(prompt as u64, m[KL]);
     for (b, e) in co.est.iter().enumerate() {
         acc.estimators[b][0].add(m[KL], &e[0]);
         acc.estimators[b][1].add(m[KL_REV], &e[1]);

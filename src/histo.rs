@@ -245,6 +245,89 @@ impl PositionProfile {
     }
 }
 
+/// What the cluster-robust variance of "the share of positions with kl at
+/// or above an edge of the fine histogram" needs, for every edge at once:
+/// with c_g the count of such positions in prompt g and n_g its positions,
+/// the sums over prompts of c_g^2 and of c_g * n_g (the sum of c_g is the
+/// histogram's, the sum of n_g^2 comes from the per-prompt sums). Prompts
+/// are folded when they end; integers, so shards merge exactly.
+#[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq)]
+pub struct TailSums {
+    /// Per slot s of the fine histogram (`KL_BINS + 2` entries, or empty):
+    /// sums over prompts of c_gs^2 and of c_gs * n_g, where c_gs counts the
+    /// prompt's positions in slots s and above.
+    pub sq: Vec<u64>,
+    pub cross: Vec<u64>,
+    /// The prompt being filled: its index and per-slot counts.
+    #[serde(skip)]
+    current: Option<(u64, Vec<u64>)>,
+}
+
+impl TailSums {
+    pub fn add(&mut self, prompt: u64, kl: f64) {
+        if self.current.as_ref().is_some_and(|c| c.0 != prompt) {
+            self.finish();
+        }
+        let cur = self.current.get_or_insert_with(|| (prompt, vec![0; KL_BINS + 2]));
+        cur.1[log_slot(kl, KL_LO_EXP, KL_PER_DECADE, KL_BINS)] += 1;
+    }
+
+    /// Folds the prompt being filled (call once the last position was added).
+    pub fn finish(&mut self) {
+        let Some((_, h)) = self.current.take() else { return };
+        if self.sq.is_empty() {
+            self.sq = vec![0; KL_BINS + 2];
+            self.cross = vec![0; KL_BINS + 2];
+        }
+        let n: u64 = h.iter().sum();
+        let mut c = 0u64;
+        for s in (0..h.len()).rev() {
+            c += h[s];
+            self.sq[s] += c * c;
+            self.cross[s] += c * n;
+        }
+    }
+
+    pub fn merge(&mut self, o: &TailSums) {
+        for (a, b) in [(&mut self.sq, &o.sq), (&mut self.cross, &o.cross)] {
+            if a.len() < b.len() {
+                a.resize(b.len(), 0);
+            }
+            for (x, y) in a.iter_mut().zip(b) {
+                *x += y;
+            }
+        }
+    }
+}
+
+/// A 95% interval for the q-quantile `v` of kl by Woodruff's method
+/// (Woodruff 1952, JASA 47, "Confidence intervals for medians and other
+/// position measures"; cited from memory, common practice in survey
+/// statistics): the cluster-robust standard error h/z of the share of
+/// positions at or below the quantile, then the quantile function read at
+/// q - h and q + h. The share is taken at the fine histogram's edge nearest
+/// `v` (within a factor 10^0.05), where `TailSums` holds what its variance
+/// needs. `n_sq` is the sum over prompts of n_g^2, `groups` the number of
+/// prompts with positions; `quantile` reads the quantile function.
+pub fn quantile_interval(hist: &KlHistogram, tail: &TailSums, n_sq: f64, groups: usize, q: f64, v: f64, quantile: impl Fn(f64) -> f64) -> Option<[f64; 2]> {
+    if !(v > 0.0 && v.is_finite()) || groups < 2 || tail.sq.len() != KL_BINS + 2 || hist.counts.len() != KL_BINS + 2 {
+        return None;
+    }
+    let x = (v.log10() - KL_LO_EXP as f64) * KL_PER_DECADE as f64;
+    let s = (x.round() as i64 + 1).clamp(1, KL_BINS as i64 + 1) as usize;
+    let n: u64 = hist.total();
+    let above: u64 = hist.counts[s..].iter().sum();
+    if n == 0 {
+        return None;
+    }
+    let (nf, f) = (n as f64, above as f64 / n as f64);
+    let ss = (tail.sq[s] as f64 - 2.0 * f * tail.cross[s] as f64 + f * f * n_sq).max(0.0);
+    let g = groups as f64;
+    let h = crate::stats::Z95 * (g / (g - 1.0) * ss).sqrt() / nf;
+    let (a, b) = (quantile((q - h).clamp(0.0, 1.0)), quantile((q + h).clamp(0.0, 1.0)));
+    Some([a.min(v), b.max(v)])
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -292,6 +375,54 @@ mod tests {
         }
         let m = b.bins[3].kl_quantile(0.5);
         assert!((m.log10() + 4.0).abs() < 0.1, "{m}");
+    }
+
+    #[test]
+    fn tail_sums_match_a_direct_count() {
+        // Three prompts; for every edge, sum over prompts of c^2 and c*n
+        // computed directly from the values.
+        let prompts: Vec<Vec<f64>> = vec![vec![1e-5, 2e-3, 0.5, 0.0], vec![3e-4; 7], vec![f64::INFINITY, 1e-9]];
+        let mut t = TailSums::default();
+        for (g, vals) in prompts.iter().enumerate() {
+            for &v in vals {
+                t.add(g as u64, v);
+            }
+        }
+        t.finish();
+        for s in 0..KL_BINS + 2 {
+            let (mut sq, mut cross) = (0u64, 0u64);
+            for vals in &prompts {
+                let c = vals.iter().filter(|&&v| log_slot(v, KL_LO_EXP, KL_PER_DECADE, KL_BINS) >= s).count() as u64;
+                sq += c * c;
+                cross += c * vals.len() as u64;
+            }
+            assert_eq!((t.sq[s], t.cross[s]), (sq, cross), "slot {s}");
+        }
+    }
+
+    #[test]
+    fn woodruff_interval_for_independent_values_is_the_binomial_one() {
+        // One position per prompt (independent values): the share at or below
+        // the q-quantile has standard error sqrt(q(1-q)/n) (binomial, common
+        // practice), so the interval is [Q(q - z se), Q(q + z se)]. Values
+        // 10^(-6 + 4u) for u evenly spaced: Q(p) = 10^(-6 + 4p).
+        let n = 20000usize;
+        let (mut h, mut t) = (KlHistogram::default(), TailSums::default());
+        let vals: Vec<f64> = (0..n).map(|i| 10f64.powf(-6.0 + 4.0 * (i as f64 + 0.5) / n as f64)).collect();
+        for (g, &v) in vals.iter().enumerate() {
+            h.add(v);
+            t.add(g as u64, v);
+        }
+        t.finish();
+        let q = 0.9;
+        let quant = |p: f64| 10f64.powf(-6.0 + 4.0 * p);
+        let ci = quantile_interval(&h, &t, n as f64, n, q, quant(q), quant).unwrap();
+        let se = (q * (1.0 - q) / n as f64).sqrt();
+        let want = [quant(q - crate::stats::Z95 * se), quant(q + crate::stats::Z95 * se)];
+        for k in 0..2 {
+            // The share is read at the nearest edge, not at the quantile itself.
+            assert!((ci[k].log10() - want[k].log10()).abs() < 2e-3, "{ci:?} vs {want:?}");
+        }
     }
 
     #[test]

@@ -294,3 +294,47 @@ fn degenerate_inputs_still_make_a_well_formed_page() {
     assert!(page.contains("no targets"));
     assert!(page.contains("every row counts as its own prompt"));
 }
+
+#[test]
+fn merged_shards_carry_the_plot_data_and_the_p99_interval() {
+    // The binned kl, the position profile and the tail sums travel in the
+    // partial results: a merged report has the same histogram and bins as a
+    // single run, and an interval for p99.
+    let dir = tempdir::Dir::new();
+    let (r, c, _) = fixture(dir.path(), "cand");
+    let single = dir.path().join("single.json");
+    klgauge(&["compare", s(&r), s(&c), "--json", s(&single)]);
+    let mut parts = Vec::new();
+    for i in 0..3 {
+        let p = dir.path().join(format!("part{i}.json"));
+        let out = klgauge(&["compare", s(&r), s(&c), "--shard", &format!("{i}/3"), "--partial", s(&p)]);
+        assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+        parts.push(p);
+    }
+    let merged = dir.path().join("merged.json");
+    let html = dir.path().join("merged.html");
+    let mut args = vec!["merge"];
+    args.extend(parts.iter().map(|p| s(p)));
+    args.extend(["--json", s(&merged), "--html", s(&html)]);
+    let out = klgauge(&args);
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let (a, b) = (json(&single), json(&merged));
+    let (a, b) = (&a["candidates"][0], &b["candidates"][0]);
+    assert_eq!(a["kl_histogram"], b["kl_histogram"]);
+    let (pa, pb) = (a["kl_by_position"].as_array().unwrap(), b["kl_by_position"].as_array().unwrap());
+    assert_eq!(pa.len(), pb.len());
+    for (x, y) in pa.iter().zip(pb) {
+        for k in ["first", "last", "positions", "kl_p50", "kl_p90", "top1_agree"] {
+            assert_eq!(x[k], y[k], "{k}");
+        }
+        let (mx, my) = (x["kl_mean"].as_f64().unwrap(), y["kl_mean"].as_f64().unwrap());
+        assert!((mx - my).abs() <= 1e-12 * mx.abs(), "{mx} vs {my}");
+    }
+    assert!(b["kl_p99_ci95"].is_array(), "{}", b["kl_p99_ci95"]);
+    let page = std::fs::read_to_string(&html).unwrap();
+    assert_self_contained(&page);
+    check_nesting(&page);
+    for class in ["bar", "cumline", "tailline", "band", "meanline"] {
+        assert!(page.contains(&format!(r#"class="{class}""#)), "no {class} marks after merge");
+    }
+}

@@ -224,8 +224,7 @@ pub struct CandidateReport {
     pub skipped: Vec<SkippedRow>,
     pub infinite_kl: u64,
     pub storage_floor: f64,
-    /// Approximate 95% interval of kl.p99 (Woodruff's method, prompts as
-    /// clusters); null after a merge of shards, which keeps no per-prompt values.
+    /// Approximate 95% interval of kl.p99 (Woodruff's method, prompts as clusters).
     pub kl_p99_ci95: Option<[f64; 2]>,
     pub kl_histogram: KlHistogramReport,
     pub kl_by_position: Vec<PositionBinReport>,
@@ -381,8 +380,7 @@ pub struct CandidateSource<'a> {
     pub worst: Vec<ResolvedWorst>,
     /// In nats.
     pub storage_floor: f64,
-    /// The 95% interval of kl's p99, in nats, when the values are at hand
-    /// (see `quantile_interval`); None after a merge.
+    /// The 95% interval of kl's p99, in nats (see `p99_interval`).
     pub kl_p99_ci95: Option<[f64; 2]>,
 }
 
@@ -410,20 +408,20 @@ fn aggregate(acc: &mut CandidateAccum, metric: usize) -> Aggregate {
 
 pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
     let r = inputs.reference;
-    // kl in row order, for the p99 interval (`aggregate` sorts in place).
-    let kl_in_order: Vec<Vec<f64>> = result.candidates.iter().map(|acc| acc.values[KL].clone()).collect();
     let aggregates: Vec<Vec<Aggregate>> =
         result.candidates.iter_mut().map(|acc| (0..NMETRIC).map(|m| aggregate(acc, m)).collect()).collect();
     let mut cands = Vec::new();
-    for (((k, acc), aggregates), in_order) in result.candidates.iter().enumerate().zip(aggregates).zip(kl_in_order) {
+    for ((k, acc), aggregates) in result.candidates.iter().enumerate().zip(aggregates) {
         let file = &inputs.candidates[k];
+        let sorted = &acc.values[KL];
+        let p99_ci = p99_interval(acc, aggregates[KL].p99, |q| crate::stats::percentile(sorted, q));
         cands.push(CandidateSource {
             file: FileSummary::of(file),
             acc,
             aggregates,
             worst: acc.worst.iter().map(|w| resolve_worst(r, file, inputs.cols, inputs.targets, w)).collect(),
             storage_floor: crate::floor::storage_floor(r, file, inputs.cols, FLOOR_SAMPLE_ROWS),
-            kl_p99_ci95: quantile_interval(&in_order, &acc.values[KL], &acc.prompts, 0.99),
+            kl_p99_ci95: p99_ci,
         });
     }
     assemble(&inputs.settings(), &FileSummary::of(r), cands, &result.pairs, result.seconds, result.rows_processed)
@@ -569,36 +567,13 @@ pub fn display_name(file: &FileSummary) -> String {
     }
 }
 
-/// Woodruff's interval for a quantile (Woodruff 1952, JASA 47 "Confidence
-/// intervals for medians and other position measures"; cited from memory,
-/// common practice in survey statistics): take the 95% interval of the
-/// fraction of positions at or below the estimated quantile, computed with
-/// prompts as clusters, and read the quantile function at its two ends.
-/// `in_order` holds the values in row order, so that consecutive runs of
-/// `prompts[g].n` values belong to prompt g; `sorted` the same values sorted.
-pub fn quantile_interval(in_order: &[f64], sorted: &[f64], prompts: &[engine::PromptSums], q: f64) -> Option<[f64; 2]> {
-    let total: f64 = prompts.iter().map(|p| p.n).sum();
-    if sorted.len() < 2 || total as usize != in_order.len() || in_order.len() != sorted.len() {
-        return None;
-    }
-    let v = crate::stats::percentile(sorted, q);
-    let mut groups = Vec::with_capacity(prompts.len());
-    let mut at = 0usize;
-    for p in prompts {
-        let n = p.n as usize;
-        let below = in_order[at..at + n].iter().filter(|&&x| x <= v).count();
-        groups.push((p.n, below as f64));
-        at += n;
-    }
-    let (f, ci) = cluster_mean(groups.iter().copied());
-    let [lo, hi] = ci?;
-    let h = 0.5 * (hi - lo);
-    if !f.is_finite() || !h.is_finite() {
-        return None;
-    }
-    let a = crate::stats::percentile(sorted, (q - h).clamp(0.0, 1.0));
-    let b = crate::stats::percentile(sorted, (q + h).clamp(0.0, 1.0));
-    Some([a.min(v), b.max(v)])
+/// The 95% interval of kl's p99 (`histo::quantile_interval`), from the
+/// accumulated tail sums; `quantile` reads kl's quantile function (exact
+/// values in a single run, the sketch after a merge).
+pub fn p99_interval(acc: &CandidateAccum, p99: f64, quantile: impl Fn(f64) -> f64) -> Option<[f64; 2]> {
+    let counted = acc.prompts.iter().filter(|p| p.n > 0.0);
+    let n_sq: f64 = counted.clone().map(|p| p.n * p.n).sum();
+    crate::histo::quantile_interval(&acc.kl_hist, &acc.kl_tail, n_sq, counted.count(), 0.99, p99, quantile)
 }
 
 fn histogram_report(h: &crate::histo::KlHistogram, scale: f64) -> KlHistogramReport {
