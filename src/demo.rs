@@ -382,13 +382,22 @@ pub fn run(dir: &Path, threads: Option<usize>) -> Result<(DemoFiles, Outcome)> {
 
 /// The story told before the report.
 pub fn preface() -> String {
-    let broken: Vec<String> = BROKEN_PROMPTS.iter().map(|&g| format!("{g} (\"{}\")", PROMPT_TITLES[g])).collect();
+    let broken: Vec<String> = BROKEN_PROMPTS.iter().map(|&g| format!("      prompt {g:>2}: {}", PROMPT_TITLES[g])).collect();
     format!(
         "An invented scenario: the fictional Fenmarrow Computing Guild compressed its model Wren-7 to 8 and 4 bits\n\
          and kept the logits of all three on {PROMPTS} prompts of {LENGTH} tokens (vocabulary {VOCAB}). The data are synthetic.\n\
-         By construction the 4-bit variant falls into a repetition loop from position {BREAK_AT} of prompts {},\n\
-         its error grows along each prompt, and one of its rows (row {NAN_ROW}) holds a NaN.\n",
-        broken.join(", ")
+         By construction the 4-bit variant\n\
+         \x20 - drifts further from the reference the longer the context,\n\
+         \x20 - falls into a repetition loop from position {BREAK_AT} of {} number-heavy prompts:\n{}\n\
+         \x20 - has one row holding a NaN (row {NAN_ROW}: prompt {}, position {}).\n\
+         Gates: mean kl at most {} nats, p99 of kl at most {} nats, top-1 agreement at least {}.\n\n",
+        BROKEN_PROMPTS.len(),
+        broken.join("\n"),
+        NAN_ROW / LENGTH,
+        NAN_ROW % LENGTH,
+        GATES.max_kl_mean.unwrap(),
+        GATES.max_kl_p99.unwrap(),
+        GATES.min_top1.unwrap()
     )
 }
 
@@ -441,7 +450,7 @@ pub fn vocabulary() -> Vec<String> {
     let syl = ["ka", "ren", "tor", "mi", "lo", "sen", "dru", "fel", "ith", "bra", "nal", "vey", "quo", "zim", "or", "ul"];
     let mut i = 0usize;
     while v.len() < VOCAB {
-        let w = format!("{sp}{}{}{}", syl[i % 16], syl[(i / 16 + 3) % 16], if i % 3 == 0 { "n" } else { "" });
+        let w = format!("{sp}{}{}{}", syl[i % 16], syl[(i / 16 + 3) % 16], if i.is_multiple_of(3) { "n" } else { "" });
         if !v.contains(&w) {
             v.push(w);
         }

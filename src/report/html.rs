@@ -535,9 +535,9 @@ fn distribution(out: &mut String, r: &Report, cands: &[Cand]) {
     let sy = Scale::lin(0.0, ymax, y0, y1);
     let sc = Scale::lin(0.0, 1.0, y0, y1);
 
-    out.push_str(&format!(
-        r#"<section id="distribution"><h2>How kl is distributed over positions</h2><p class="lead">Bars: share of positions per bin (10 bins per factor of ten, left axis). Line: share of positions at or below that kl (right axis). Vertical marks: mean, 99th percentile, gate limits; the grey zone left of the storage floor is what rounding of the stored logits alone would produce. All panels share their axes.</p><div class="panels">"#
-    ));
+    out.push_str(
+        r#"<section id="distribution"><h2>How kl is distributed over positions</h2><p class="lead">Bars: share of positions per bin (10 bins per factor of ten, left axis). Line: share of positions at or below that kl (right axis). Vertical marks: mean, 99th percentile, gate limits; the grey zone left of the storage floor is what rounding of the stored logits alone would produce. All panels share their axes.</p><div class="panels">"#,
+    );
     for k in cands {
         let c = k.c;
         let n = c.positions.max(1) as f64;
@@ -992,7 +992,7 @@ fn chip(text: Option<&str>, id: u32, class: &str) -> String {
 fn top_list(t: &[TokenProb], other: &[TokenProb]) -> String {
     let mut s = String::from(r#"<div class="tops">"#);
     for x in t {
-        let shared = other.first().map_or(false, |o| o.id == x.id);
+        let shared = other.first().is_some_and(|o| o.id == x.id);
         let _ = write!(
             s,
             r#"<div class="topr">{}<span class="pbar"><span style="width:{:.1}%"></span></span><span class="p">{:.3}</span></div>"#,
