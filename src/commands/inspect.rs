@@ -160,7 +160,7 @@ pub struct InspectReport {
     pub notes: Vec<String>,
 }
 
-pub const FLOOR_BASIS: &str = "comparison with another file stored the same way: both sides rounded at this dtype, rounding errors independent";
+pub const FLOOR_BASIS: &str = "against another file stored the same way: both sides rounded at this dtype, with independent rounding errors";
 
 /// The files a path stands for: itself, or the shards of a directory in
 /// lexical order (the rule of `LogitFile::open`).
@@ -518,8 +518,8 @@ const SHARDS_SHOWN: usize = 3;
 /// The terminal summary.
 pub fn write_text(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()> {
     let total: u64 = r.files.iter().map(|f| f.bytes).sum();
-    let shards = if r.files.len() == 1 { "1 file".to_string() } else { format!("{} shards", r.files.len()) };
-    writeln!(out, "{}: {} file, {shards}, {}", r.path, if r.kind == "logits" { "logit" } else { "log-probability" }, size(total))?;
+    let shards = if r.files.len() == 1 { "one file".to_string() } else { format!("{} shards", r.files.len()) };
+    writeln!(out, "{}: {} file ({shards}, {})", r.path, if r.kind == "logits" { "logit" } else { "log-probability" }, size(total))?;
     for (i, f) in r.files.iter().enumerate() {
         if i == SHARDS_SHOWN && r.files.len() > SHARDS_SHOWN + 1 {
             writeln!(out, "  ... {} more shards (all listed in --json)", r.files.len() - SHARDS_SHOWN)?;
@@ -556,7 +556,7 @@ pub fn write_text(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()>
     if let Some(v) = &r.values {
         writeln!(
             out,
-            "  values ({} sampled rows): min {} max {} mean {}, -inf {:.3}%, mean row max {}, mean row log-sum-exp {} -> look {}",
+            "  values ({} sampled rows): min {} max {} mean {}, -inf {:.3}%, mean row max {}, mean row log-sum-exp {} -> looks {}",
             v.rows_sampled,
             sci(v.min),
             sci(v.max),
@@ -568,7 +568,7 @@ pub fn write_text(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()>
         )?;
     }
     if let Some(f) = &r.storage_floor {
-        writeln!(out, "  storage floor: {} nats per position ({} at {})", sci(f.nats), f.basis, f.dtype)?;
+        writeln!(out, "  storage floor ({}): {} nats per position, {}", f.dtype, sci(f.nats), f.basis)?;
         if let Some(c) = f.if_centered {
             writeln!(out, "    stored minus the row maximum at the same dtype: {} nats", sci(c))?;
         }
