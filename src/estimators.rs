@@ -111,10 +111,11 @@ pub fn draw_tokens(
 ///
 /// A position whose exact divergence is infinite (the other model gives zero
 /// probability to a token this one allows) cannot be set beside an estimate:
-/// its error is inf - inf. Such positions are counted in `infinite` and left
-/// out of every sum, so one of them does not turn the whole block into NaN;
-/// the report counts them again in `infinite_kl` and warns. An estimate can
-/// only be infinite where the exact value is, so nothing finite is dropped.
+/// its error is inf - inf. Such positions are left out of every sum, so one
+/// of them does not turn the whole block into NaN; the block's `positions`
+/// (= `n`) then falls short of the counted positions by their number, and the
+/// report counts them in `infinite_kl` and warns. An estimate can only be
+/// infinite where the exact value is, so nothing finite is dropped.
 #[derive(Debug, Clone, Default, Serialize, Deserialize, PartialEq)]
 pub struct EstimatorSums {
     pub n: f64,
@@ -123,15 +124,11 @@ pub struct EstimatorSums {
     pub sum: [f64; 3],
     pub sum_sq: [f64; 3],
     pub sum_err_sq: [f64; 3],
-    /// Positions left out because the exact value or an estimate is not finite.
-    #[serde(default)]
-    pub infinite: f64,
 }
 
 impl EstimatorSums {
     pub fn add(&mut self, exact: f64, est: &[f64; 3]) {
         if !exact.is_finite() || est.iter().any(|e| !e.is_finite()) {
-            self.infinite += 1.0;
             return;
         }
         self.n += 1.0;
@@ -146,7 +143,6 @@ impl EstimatorSums {
     pub fn merge(&mut self, o: &EstimatorSums) {
         self.n += o.n;
         self.exact += o.exact;
-        self.infinite += o.infinite;
         for k in 0..3 {
             self.sum[k] += o.sum[k];
             self.sum_sq[k] += o.sum_sq[k];
@@ -305,14 +301,13 @@ mod tests {
     }
 
     #[test]
-    fn infinite_positions_are_counted_apart() {
+    fn infinite_positions_are_left_out() {
         let mut s = EstimatorSums::default();
         s.add(0.5, &[0.4, 0.6, 0.5]);
         s.add(0.7, &[0.8, 0.6, 0.7]);
         s.add(f64::INFINITY, &[0.1, 0.1, 0.1]);
         s.add(f64::INFINITY, &[f64::INFINITY; 3]);
         assert_eq!(s.n, 2.0);
-        assert_eq!(s.infinite, 2.0);
         let k = s.summary(2, 1.0);
         assert!((k.mean - 0.6).abs() < 1e-12 && k.bias.abs() < 1e-12 && k.rmse == 0.0);
     }

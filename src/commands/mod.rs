@@ -4,3 +4,4 @@
 pub mod compare;
 pub mod estimate;
 pub mod inspect;
+pub mod merge;
