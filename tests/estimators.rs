@@ -394,10 +394,14 @@ fn estimate_counts_faulty_and_infinite_draws() {
     let fp = d.path().join("lp.safetensors");
     let lp = vec![-1.0f32, -2.0, f32::NAN, -0.5, f32::NEG_INFINITY, -1.5];
     let lq = vec![-1.1f32, -1.9, -1.0, f32::NEG_INFINITY, -1.0, -1.4];
-    write(&fp, vec![("logprob_ref", floats(Dtype::F32, &[6], &lp)), ("logprob_cand", floats(Dtype::F32, &[6], &lq))], None);
+    let meta = std::collections::HashMap::from([("model_ref".to_string(), "Wren-7".to_string()), ("model_cand".to_string(), "Wren-7 int4".to_string())]);
+    write(&fp, vec![("logprob_ref", floats(Dtype::F32, &[6], &lp)), ("logprob_cand", floats(Dtype::F32, &[6], &lq))], Some(meta));
     let j = d.path().join("e.json");
-    run_ok(&["estimate", s(&fp), "--json", s(&j)]);
+    let out = run_ok(&["estimate", s(&fp), "--json", s(&j)]);
+    assert!(String::from_utf8_lossy(&out.stdout).contains("\"Wren-7 int4\" against \"Wren-7\""));
     let v = json(&j);
+    assert_eq!(v["file"]["model"], "Wren-7 int4");
+    assert_eq!(v["file"]["model_ref"], "Wren-7");
     assert_eq!(v["skipped"], 2);
     assert_eq!(v["skipped_draws"][0]["index"], 2);
     assert_eq!(v["skipped_draws"][1]["index"], 4);

@@ -220,11 +220,13 @@ fn shards_logprob_files_and_declared_forms() {
         vec![
             ("logprob_ref", floats(Dtype::F32, &[4], &[-1.0, -2.0, -0.5, -3.0])),
             ("logprob_cand", floats(Dtype::F32, &[4], &[-1.1, f32::NEG_INFINITY, -0.4, -2.0])),
+            ("tokens", i64s(&[4], &[3, 1, 4, 1])),
         ],
-        None,
+        Some(HashMap::from([("model_ref".to_string(), "Wren-7".to_string()), ("model_cand".to_string(), "Wren-7 int4".to_string())])),
     );
     let v = inspect_json(&lp, d.path());
     assert_eq!(v["kind"], "logprobs");
+    assert!(!notes(&v).iter().any(|x| x.contains("not part of the layout") || x.contains("no `model`")), "{:?}", notes(&v));
     assert_eq!(v["logprobs"]["draws"], 4);
     assert_eq!(v["logprobs"]["infinite"], 1);
     assert_eq!(v["logprobs"]["logprob_ref"]["min"].as_f64().unwrap(), -3.0);

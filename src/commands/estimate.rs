@@ -23,7 +23,9 @@
 //!   "units": "nats" | "bits",
 //!   "tool": {"name", "version"},
 //!   "file": {"path", "draws", "counted", "prompts",
-//!            "grouping": "offsets" | "rows", "model": string | null},
+//!            "grouping": "offsets" | "rows",
+//!            "model": string | null,       // metadata `model`, else `model_cand`
+//!            "model_ref": string | null},  // metadata `model_ref`
 //!   "direction": "forward",         // KL(p||q), tokens drawn from the reference
 //!   "k1" | "k2" | "k3": {
 //!     "mean",                        // mean over counted draws
@@ -78,7 +80,9 @@ pub struct EstimateFileInfo {
     pub counted: u64,
     pub prompts: u64,
     pub grouping: &'static str,
+    /// Metadata `model` (or `model_cand`), and `model_ref`.
     pub model: Option<String>,
+    pub model_ref: Option<String>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -274,7 +278,8 @@ pub fn build(f: &LogprobFile, bits: bool) -> EstimateReport {
                 Grouping::Offsets => "offsets",
                 _ => "rows",
             },
-            model: f.metadata.get("model").cloned(),
+            model: f.metadata.get("model").or_else(|| f.metadata.get("model_cand")).cloned(),
+            model_ref: f.metadata.get("model_ref").cloned(),
         },
         direction: "forward",
         k1,
@@ -316,7 +321,12 @@ fn sci(v: f64) -> String {
 
 /// The terminal summary.
 pub fn write_text(r: &EstimateReport, out: &mut dyn Write) -> std::io::Result<()> {
-    let m = r.file.model.as_deref().map(|m| format!("  \"{m}\"")).unwrap_or_default();
+    let m = match (&r.file.model_ref, &r.file.model) {
+        (Some(a), Some(b)) => format!("  \"{b}\" against \"{a}\""),
+        (None, Some(b)) => format!("  \"{b}\""),
+        (Some(a), None) => format!("  reference \"{a}\""),
+        (None, None) => String::new(),
+    };
     writeln!(out, "log-probabilities: {}{m}", r.file.path)?;
     writeln!(
         out,

@@ -60,7 +60,8 @@ pub const SAMPLE_ROWS: usize = 64;
 const LOGPROB_LSE: f64 = 0.02;
 
 const LOGIT_TENSORS: [&str; 4] = ["logits", "targets", "mask", "prompt_offsets"];
-const LOGPROB_TENSORS: [&str; 3] = ["logprob_ref", "logprob_cand", "prompt_offsets"];
+/// `tokens` (the drawn token ids, I64 [n]) is optional and informational.
+const LOGPROB_TENSORS: [&str; 4] = ["logprob_ref", "logprob_cand", "prompt_offsets", "tokens"];
 
 #[derive(Debug, Clone, Default)]
 pub struct InspectArgs {
@@ -257,7 +258,7 @@ pub fn build(path: &Path) -> Result<InspectReport> {
             format!("holds neither `logits` (a logit file) nor `logprob_ref`/`logprob_cand` (a log-probability file); found: {found}"),
         ));
     }
-    if !report.metadata.contains_key("model") {
+    if !["model", "model_ref", "model_cand"].iter().any(|k| report.metadata.contains_key(*k)) {
         report.notes.push("no `model` in the metadata: reports will name this file by its path only".into());
     }
     Ok(report)

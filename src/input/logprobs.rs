@@ -7,6 +7,7 @@
 //! | `logprob_ref` | yes | F32 | `[n]` | log p(x_i) of the reference at draw i, x_i ~ p |
 //! | `logprob_cand` | yes | F32 | `[n]` | log q(x_i) of the candidate at the same token |
 //! | `prompt_offsets` | no | I64 | `[prompts + 1]` | first draw of each prompt, from 0 to `n` |
+//! | `tokens` | no | I64 | `[n]` | the drawn token ids (informational, not read) |
 //!
 //! The header is validated as strictly as a logit file's (the same
 //! `MappedFile`), and so are shapes, dtypes and offsets. Values are checked
