@@ -11,6 +11,13 @@
 //! counter-based generator keyed by (seed, row, direction, draw), and tokens
 //! by inverse CDF over the row, walking the block sums the normalising pass
 //! already left behind and then the columns of one block.
+//!
+//! log r is taken from the logits and the kernel's log-sum-exp of each row
+//! (f32 lanes, f64 carry). The constant (lse_q - lse_p) it adds errs by about
+//! 3e-8 rms per row and 1e-9 on average (measured against an f64 log-sum-exp
+//! on random rows of 32k to 152k columns); k1 inherits the average as a bias,
+//! k3 only at second order, since E_p[r] = 1. Both are far below the sampling
+//! noise of any feasible number of positions.
 
 use crate::kernel::NORM_BLOCK;
 use serde::{Deserialize, Serialize};

@@ -218,7 +218,7 @@ pub fn build(f: &LogprobFile, bits: bool) -> EstimateReport {
     let k3 = k_estimate(&groups, 2, &w[2], infinite, scale);
     // 1 - r is finite at every draw (it is 1 where q is 0).
     let (dm, dci) = cluster_mean(groups.iter().map(|g| (g.n, g.s[3])));
-    let agree = dci.map_or(true, |[a, b]| a <= 0.0 && 0.0 <= b);
+    let agree = dci.is_none_or(|[a, b]| a <= 0.0 && 0.0 <= b);
     let diff = Consistency { mean: dm * scale, ci95: dci.map(|[a, b]| [a * scale, b * scale]), agree };
     let prompts = groups.iter().filter(|g| g.n > 0.0).count() as u64;
 
@@ -338,7 +338,7 @@ pub fn write_text(r: &EstimateReport, out: &mut dyn Write) -> std::io::Result<()
         if r.file.grouping == "offsets" { "from prompt_offsets" } else { "no grouping: one per draw" }
     )?;
     writeln!(out, "  sampled estimates of KL(p||q), tokens drawn from the reference p, in {}", r.units)?;
-    writeln!(out, "    {:<8} {:>10}   {:<25} {:>10}   {}", "", "mean", "95% interval", "std/draw", "draws for +-10%")?;
+    writeln!(out, "    {:<8} {:>10}   {:<25} {:>10}   draws for +-10%", "", "mean", "95% interval", "std/draw")?;
     for (name, k, note) in [("k1", &r.k1, ""), ("k2", &r.k2, "  (biased)"), ("k3", &r.k3, "")] {
         let ci = k.ci95.map_or("-".to_string(), |[a, b]| format!("{} .. {}", sci(a), sci(b)));
         let need = k.draws_for_10pct.map_or("-".to_string(), |n| format!("{n:.0}"));

@@ -173,7 +173,7 @@ fn files_of(path: &Path) -> Result<Vec<PathBuf>> {
     let mut v: Vec<PathBuf> = std::fs::read_dir(path)
         .map_err(|e| Error::input(path, format!("cannot list directory: {e}")))?
         .filter_map(|e| e.ok().map(|e| e.path()))
-        .filter(|p| p.is_file() && p.extension().map_or(false, |x| x == "safetensors"))
+        .filter(|p| p.is_file() && p.extension().is_some_and(|x| x == "safetensors"))
         .collect();
     v.sort();
     if v.is_empty() {
@@ -535,8 +535,10 @@ pub fn write_text(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()>
         }
     }
     if !r.metadata.is_empty() {
-        let m: Vec<String> = r.metadata.iter().map(|(k, v)| format!("{k} = {v:?}")).collect();
-        writeln!(out, "  metadata: {}", m.join(", "))?;
+        writeln!(out, "  metadata:")?;
+        for (k, v) in &r.metadata {
+            writeln!(out, "    {k:<22} {v:?}")?;
+        }
     }
     if let Some(l) = &r.logits {
         let mask = match &l.mask {
