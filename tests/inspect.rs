@@ -246,6 +246,7 @@ fn invalid_files_exit_2_with_the_validation_message() {
             "strictly increasing",
         ),
         ("bad-targets", vec![("logits", floats(Dtype::F32, &[3, 4], &good)), ("targets", i64s(&[4], &[0; 4]))], "`targets` has shape"),
+        ("target-range", vec![("logits", floats(Dtype::F32, &[3, 4], &good)), ("targets", i64s(&[3], &[0, 4, 1]))], "outside the vocabulary"),
         ("lp-lengths", vec![("logprob_ref", floats(Dtype::F32, &[3], &[-1.0; 3])), ("logprob_cand", floats(Dtype::F32, &[2], &[-1.0; 2]))], "pair up"),
     ];
     for (name, tensors, needle) in cases {
