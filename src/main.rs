@@ -99,9 +99,34 @@ fn print(report: &klgauge::report::Report) -> Result<(), Error> {
     }
 }
 
+/// On SIGINT, SIGTERM or SIGHUP: remove every half-written report and exit
+/// with 128 + the signal number (130 for Ctrl-C), the shell convention.
+#[cfg(unix)]
+fn install_interrupt_handler() {
+    use signal_hook::consts::{SIGHUP, SIGINT, SIGTERM};
+    let Ok(mut signals) = signal_hook::iterator::Signals::new([SIGINT, SIGTERM, SIGHUP]) else {
+        return;
+    };
+    let _ = std::thread::Builder::new().name("interrupt".into()).spawn(move || {
+        if let Some(sig) = signals.forever().next() {
+            klgauge::output::abandon_all();
+            let _ = writeln!(std::io::stderr(), "klgauge: interrupted, no report written");
+            std::process::exit(128 + sig);
+        }
+    });
+}
+
+#[cfg(not(unix))]
+fn install_interrupt_handler() {}
+
 fn run(cli: Cli) -> Result<ExitCode, Error> {
     match cli.command {
         Command::Compare(c) => {
+            let outputs: Vec<&std::path::Path> =
+                [&c.json, &c.csv, &c.html, &c.partial].into_iter().flatten().map(|p| p.as_path()).collect();
+            let inputs: Vec<&std::path::Path> =
+                std::iter::once(&c.reference).chain(&c.candidates).chain(&c.tokenizer).map(|p| p.as_path()).collect();
+            klgauge::output::check_destinations(&outputs, &inputs)?;
             let args = CompareArgs {
                 reference: c.reference,
                 candidates: c.candidates,
@@ -138,11 +163,13 @@ fn main() -> ExitCode {
             return ExitCode::from(code);
         }
     };
+    install_interrupt_handler();
     match run(cli) {
         Ok(code) => code,
         Err(e) => {
             klgauge::output::remove_temps();
-            eprintln!("klgauge: error: {e}");
+            // Not eprintln!: it panics when stderr is closed.
+            let _ = writeln!(std::io::stderr(), "klgauge: error: {e}");
             ExitCode::from(e.exit_code() as u8)
         }
     }
