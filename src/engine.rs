@@ -203,14 +203,12 @@ pub fn check_alignment<'a>(reference: &'a LogitFile, candidates: &'a [LogitFile]
         // mean the files were cut from different prompt sets.
         let explicit = |f: &LogitFile| !matches!(f.grouping, crate::input::Grouping::PerRow);
         if explicit(reference) && explicit(c) && c.prompt_starts != reference.prompt_starts {
-            let i = reference.prompt_starts.iter().zip(&c.prompt_starts).position(|(a, b)| a != b).unwrap_or(0);
+            let (a, b) = (&reference.prompt_starts, &c.prompt_starts);
+            let i = a.iter().zip(b).position(|(x, y)| x != y).unwrap_or(a.len().min(b.len()));
+            let at = |v: &[usize]| v.get(i).map_or("does not exist".to_string(), |r| format!("starts at row {r}"));
             return Err(Error::input(
                 &c.path,
-                format!(
-                    "prompt boundaries differ from the reference's ({} vs {} prompts; first difference at prompt {i}): the dumps are not aligned",
-                    c.prompts(),
-                    reference.prompts()
-                ),
+                format!("prompt boundaries differ from the reference's: prompt {i} {} here, {} there; the dumps are not aligned", at(b), at(a)),
             ));
         }
     }

@@ -76,7 +76,7 @@ impl MappedFile {
             use safetensors::SafeTensorError as E;
             let why = match e {
                 E::InvalidHeader(_) => "invalid safetensors header: not UTF-8 text".to_string(),
-                E::InvalidHeaderDeserialization(j) => format!("invalid safetensors header: not a JSON tensor table ({j})"),
+                E::InvalidHeaderDeserialization(j) => explain_json(header, &j.to_string()),
                 E::HeaderTooLarge => format!("invalid safetensors header: {declared} bytes, more than the format allows"),
                 E::MetadataIncompleteBuffer
                 | E::TensorInvalidInfo
@@ -145,6 +145,18 @@ impl MappedFile {
             Dtype::F32 => Ok(self.bytes(t).chunks_exact(4).map(|c| f32::from_le_bytes(c.try_into().unwrap())).collect()),
             d => Err(Error::input(&self.path, format!("tensor `{name}` has dtype {d}, expected F32"))),
         }
+    }
+}
+
+/// Words for a header that the crate could not deserialize: not JSON at all,
+/// JSON of the wrong kind, or one malformed entry (serde's own detail, cut
+/// before its list of every known dtype, follows in parentheses).
+fn explain_json(header: &[u8], detail: &str) -> String {
+    let detail = detail.split(", expected one of").next().unwrap_or(detail);
+    match serde_json::from_slice::<serde_json::Value>(header) {
+        Err(_) => format!("invalid safetensors header: not JSON ({detail})"),
+        Ok(serde_json::Value::Object(_)) => format!("invalid safetensors header: a malformed entry ({detail})"),
+        Ok(_) => "invalid safetensors header: JSON, but not an object of named tensors".to_string(),
     }
 }
 
