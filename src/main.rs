@@ -79,6 +79,9 @@ struct CompareCli {
     min_top1: Option<f64>,
 }
 
+/// Most draws per position `--samples` accepts.
+const MAX_SAMPLES: usize = 1 << 20;
+
 fn parse_shard(s: &str) -> Result<(usize, usize), Error> {
     let bad = || Error::usage(format!("--shard {s}: expected I/N with 0 <= I < N, e.g. 0/8"));
     let (i, n) = s.split_once('/').ok_or_else(bad)?;
@@ -127,6 +130,11 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
             let inputs: Vec<&std::path::Path> =
                 std::iter::once(&c.reference).chain(&c.candidates).chain(&c.tokenizer).map(|p| p.as_path()).collect();
             klgauge::output::check_destinations(&outputs, &inputs)?;
+            // Every worker keeps its draws in memory: an absurd count would end
+            // in an allocation failure (an abort), not in a clear message.
+            if let Some(n) = c.samples.iter().find(|&&n| n > MAX_SAMPLES) {
+                return Err(Error::usage(format!("--samples {n}: at most {MAX_SAMPLES} draws per position")));
+            }
             let args = CompareArgs {
                 reference: c.reference,
                 candidates: c.candidates,

@@ -622,3 +622,22 @@ fn an_interrupted_run_leaves_nothing_behind() {
     assert!(err.contains("interrupted"), "{err}");
     assert_eq!(listing(d), inputs, "a report or temporary was left");
 }
+
+#[test]
+fn absurd_options_are_usage_errors_not_aborts() {
+    let p = random_pair(10, 16, 2, 0.2, 25);
+    for (args, says) in [
+        (vec!["--samples", "100000000000"], "--samples"),
+        (vec!["--samples=-1"], "--samples"),
+        (vec!["--threads", "0"], "--threads"),
+        (vec!["--vocab", "0"], "--vocab"),
+        (vec!["--top", "x"], "--top"),
+    ] {
+        let mut a = vec!["compare", s(&p.reference), s(&p.candidate)];
+        a.extend(args.iter().copied());
+        let out = run_limited(&a, Duration::from_secs(60));
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{args:?}: {err}");
+        assert!(err.contains(says) && !err.contains("panicked"), "{args:?}: {err}");
+    }
+}
