@@ -38,7 +38,7 @@ for t in $targets; do
     cargo fuzz run -a -s "$sanitizer" "$t" "fuzz/corpus/$t" -- \
         -max_total_time="$secs" -dict=fuzz/safetensors.dict -max_len=4096 \
         -timeout=10 -rss_limit_mb=2048 -print_final_stats=1 2>&1 |
-        grep -E "^(#[0-9]+ +(DONE|INITED)|stat::number_of_executed_units|stat::peak_rss|==[0-9]+==ERROR|SUMMARY|thread .* panicked|artifact_prefix|Test unit written)" || true
+        grep -E "^(#[0-9]+[[:space:]]+(DONE|INITED)|stat::number_of_executed_units|stat::peak_rss|==[0-9]+==ERROR|SUMMARY|thread .* panicked|artifact_prefix|Test unit written)" || true
     after=$(find "fuzz/artifacts/$t" -type f | wc -l)
     corpus=$(find "fuzz/corpus/$t" -type f | wc -l)
     echo "== $t: corpus $corpus inputs, $((after - before)) new findings in fuzz/artifacts/$t"
