@@ -7,6 +7,8 @@ pub mod kernel;
 pub mod engine;
 pub mod estimators;
 pub mod stats;
+pub mod sketch;
+pub mod partial;
 pub mod floor;
 pub mod output;
 pub mod report;

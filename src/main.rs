@@ -2,7 +2,8 @@
 //! turns the outcome into SPEC's exit code. All work happens in the library.
 
 use clap::{Args, Parser, Subcommand};
-use klgauge::commands::compare::{compare, CompareArgs};
+use klgauge::commands::compare::{compare, compare_shard, CompareArgs};
+use klgauge::commands::merge::{merge, MergeArgs};
 use klgauge::error::Error;
 use klgauge::report::{text::Text, Format, GateLimits};
 use std::io::{IsTerminal, Write};
@@ -20,6 +21,39 @@ struct Cli {
 enum Command {
     /// Exact metrics of each candidate against the reference, estimators, worst positions, gates
     Compare(CompareCli),
+    /// Combine the partial results of a sharded run (`compare --shard I/N --partial FILE`) into one report
+    Merge(MergeCli),
+}
+
+#[derive(Args)]
+struct MergeCli {
+    /// Partial results, one per shard, in any order
+    #[arg(required = true, value_name = "PARTIAL")]
+    partials: Vec<PathBuf>,
+    /// Write the full report as JSON
+    #[arg(long, value_name = "FILE")]
+    json: Option<PathBuf>,
+    /// Write a self-contained HTML report
+    #[arg(long, value_name = "FILE")]
+    html: Option<PathBuf>,
+    /// Number of worst positions and prompts listed (default: what the shards kept)
+    #[arg(long, value_name = "N")]
+    top: Option<usize>,
+    /// A tokenizer.json, to show token text
+    #[arg(long, value_name = "FILE")]
+    tokenizer: Option<PathBuf>,
+    /// Report divergences and entropies in bits instead of nats
+    #[arg(long)]
+    bits: bool,
+    /// Gate: fail when the mean kl exceeds X (in the report's units)
+    #[arg(long, value_name = "X")]
+    max_kl_mean: Option<f64>,
+    /// Gate: fail when the 99th percentile of kl exceeds X
+    #[arg(long, value_name = "X")]
+    max_kl_p99: Option<f64>,
+    /// Gate: fail when top-1 agreement falls below X (a fraction, 0..1)
+    #[arg(long, value_name = "X")]
+    min_top1: Option<f64>,
 }
 
 #[derive(Args)]
@@ -122,6 +156,15 @@ fn install_interrupt_handler() {
 #[cfg(not(unix))]
 fn install_interrupt_handler() {}
 
+fn print_text(s: &str) -> Result<(), Error> {
+    let mut out = std::io::stdout().lock();
+    match out.write_all(s.as_bytes()).and_then(|_| out.flush()) {
+        Ok(()) => Ok(()),
+        Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => Ok(()),
+        Err(e) => Err(Error::output(std::path::Path::new("<stdout>"), e)),
+    }
+}
+
 fn run(cli: Cli) -> Result<ExitCode, Error> {
     match cli.command {
         Command::Compare(c) => {
@@ -154,7 +197,29 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
                 gates: GateLimits { max_kl_mean: c.max_kl_mean, max_kl_p99: c.max_kl_p99, min_top1: c.min_top1 },
                 progress: std::io::stderr().is_terminal(),
             };
+            if args.shard.is_some() || args.partial.is_some() {
+                let shard = compare_shard(&args)?;
+                print_text(&shard.summary())?;
+                return Ok(ExitCode::from(0));
+            }
             let outcome = compare(&args)?;
+            print(&outcome.report)?;
+            Ok(ExitCode::from(if outcome.gate_failed { 1 } else { 0 }))
+        }
+        Command::Merge(m) => {
+            let outputs: Vec<&std::path::Path> = [&m.json, &m.html].into_iter().flatten().map(|p| p.as_path()).collect();
+            let inputs: Vec<&std::path::Path> = m.partials.iter().chain(&m.tokenizer).map(|p| p.as_path()).collect();
+            klgauge::output::check_destinations(&outputs, &inputs)?;
+            let args = MergeArgs {
+                partials: m.partials,
+                json: m.json,
+                html: m.html,
+                top: m.top,
+                tokenizer: m.tokenizer,
+                bits: m.bits,
+                gates: GateLimits { max_kl_mean: m.max_kl_mean, max_kl_p99: m.max_kl_p99, min_top1: m.min_top1 },
+            };
+            let outcome = merge(&args)?;
             print(&outcome.report)?;
             Ok(ExitCode::from(if outcome.gate_failed { 1 } else { 0 }))
         }

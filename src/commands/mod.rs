@@ -2,3 +2,4 @@
 //! only parses arguments, calls these and prints.
 
 pub mod compare;
+pub mod merge;

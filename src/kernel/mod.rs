@@ -181,15 +181,20 @@ fn pair_terms(x: f32, y: f32, lr: f32, lc: f32, c: f32) -> (f32, f32, f32) {
     let small = d.abs() < 0.5;
     let fwd_direct = p * d + (q - p);
     let rev_direct = (p - q) - q * d;
-    let fwd_series = p * (d2 * g_over_d2(d));
+    let gd = d2 * g_over_d2(d);
+    let fwd_series = p * gd;
     let rev_series = q * (d2 * g_over_d2(-d));
+    // |p - q| = p |e^-d - 1| = p |g(d) - d|: for close rows this avoids
+    // subtracting two separately rounded probabilities.
+    let tv = if small { p * (gd - d).abs() } else { (p - q).abs() };
     let fwd = if small { fwd_series } else { fwd_direct };
     let rev = if small { rev_series } else { rev_direct };
     // Where one side has no mass the sum picks up the other side's mass
     // (SPEC: "+ candidate mass where p is zero"); both zero gives 0.
     let fwd = if p == 0.0 { q } else { fwd };
     let rev = if q == 0.0 { p } else { rev };
-    (fwd, rev, (p - q).abs())
+    let tv = if p == 0.0 || q == 0.0 { (p - q).abs() } else { tv };
+    (fwd, rev, tv)
 }
 
 #[inline(always)]

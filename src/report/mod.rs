@@ -5,9 +5,9 @@ pub mod csv;
 pub mod json;
 pub mod text;
 
-use crate::engine::{self, CandidateAccum, EngineResult, PairAccum, SkippedRow, KL, KL_REV, NMETRIC};
+use crate::engine::{self, CandidateAccum, EngineResult, PairAccum, SkippedRow, WorstPosition, KL, KL_REV, NMETRIC};
 use crate::estimators::KSummary;
-use crate::input::{Grouping, LogitFile};
+use crate::input::{Grouping, LogitFile, StoredDtype};
 use crate::stats::{cluster_mean, Aggregate};
 use serde::Serialize;
 use std::io::Write;
@@ -62,6 +62,9 @@ pub struct Settings {
     pub top: usize,
     pub js: bool,
     pub shard: Option<String>,
+    /// How p50 .. p999 were found: "exact" (sorted values), or from merged
+    /// sketches of a sharded run, with their relative accuracy.
+    pub percentiles: String,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -200,6 +203,115 @@ pub struct BuildInputs<'a> {
     pub targets: Option<&'a [i64]>,
 }
 
+impl<'a> BuildInputs<'a> {
+    pub fn settings(&self) -> ReportSettings<'a> {
+        ReportSettings {
+            cols: self.cols,
+            bits: self.bits,
+            samples: self.samples.clone(),
+            seed: self.seed,
+            top: self.top,
+            js: self.js,
+            shard: self.shard.clone(),
+            percentiles: "exact".into(),
+            gates: self.gates.clone(),
+            vocabulary: self.vocabulary,
+        }
+    }
+}
+
+/// The settings a report shows and applies, with no input file at hand.
+#[derive(Debug, Clone)]
+pub struct ReportSettings<'a> {
+    pub cols: usize,
+    pub bits: bool,
+    pub samples: Vec<usize>,
+    pub seed: u64,
+    pub top: usize,
+    pub js: bool,
+    pub shard: Option<String>,
+    /// See `Settings::percentiles`.
+    pub percentiles: String,
+    pub gates: GateLimits,
+    pub vocabulary: Option<&'a crate::tokens::Vocabulary>,
+}
+
+/// What a report says about an input file: read from the open file, or
+/// from the identity a partial result carries (`merge` has no files).
+#[derive(Debug, Clone, PartialEq)]
+pub struct FileSummary {
+    pub path: String,
+    pub dtype: StoredDtype,
+    pub rows: u64,
+    pub vocab: u64,
+    pub prompts: u64,
+    /// "sequences", "offsets" or "rows".
+    pub grouping: &'static str,
+    pub model: Option<String>,
+}
+
+impl FileSummary {
+    pub fn of(f: &LogitFile) -> FileSummary {
+        FileSummary {
+            path: f.path.display().to_string(),
+            dtype: f.dtype,
+            rows: f.rows as u64,
+            vocab: f.vocab as u64,
+            prompts: f.prompts() as u64,
+            grouping: grouping_name(&f.grouping),
+            model: f.metadata.get("model").cloned(),
+        }
+    }
+}
+
+/// A worst position with what needs the files already read.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ResolvedWorst {
+    pub at: WorstPosition,
+    /// The five most likely tokens of each model, (id, probability).
+    pub ref_top: Vec<(u32, f64)>,
+    pub cand_top: Vec<(u32, f64)>,
+    /// The tokens before the position (targets of the rows before it within
+    /// the prompt, up to 8); None without targets.
+    pub context: Option<Vec<i64>>,
+}
+
+/// Reads the top tokens and context of a worst position from the files.
+pub fn resolve_worst(reference: &LogitFile, candidate: &LogitFile, cols: usize, targets: Option<&[i64]>, w: &WorstPosition) -> ResolvedWorst {
+    let row = w.row as usize;
+    ResolvedWorst {
+        at: w.clone(),
+        ref_top: engine::top_tokens(reference, row, cols, 5),
+        cand_top: engine::top_tokens(candidate, row, cols, 5),
+        context: context_ids(targets, row, w.position as usize),
+    }
+}
+
+/// The input tokens before a position: the input token at row r is the
+/// target of row r - 1 within the prompt; up to 8 of them.
+pub fn context_ids(targets: Option<&[i64]>, row: usize, position: usize) -> Option<Vec<i64>> {
+    let t = targets?;
+    let first = row - position;
+    let lo = (row + 1).saturating_sub(8).max(first + 1);
+    Some(if lo <= row { t[lo - 1..row].to_vec() } else { Vec::new() })
+}
+
+/// One candidate's results with everything that needs the input files
+/// already resolved: `build` reads them from the files, `merge` from the
+/// partial results.
+#[derive(Debug, Clone)]
+pub struct CandidateSource<'a> {
+    pub file: FileSummary,
+    /// Positions, per-prompt sums, estimator sums, skips (its `values` and
+    /// `worst` are not read here).
+    pub acc: &'a CandidateAccum,
+    /// One aggregate per metric slot, in nats.
+    pub aggregates: Vec<Aggregate>,
+    pub worst: Vec<ResolvedWorst>,
+    /// In nats.
+    pub storage_floor: f64,
+}
+
 fn grouping_name(g: &Grouping) -> &'static str {
     match g {
         Grouping::Sequences { .. } => "sequences",
@@ -207,6 +319,9 @@ fn grouping_name(g: &Grouping) -> &'static str {
         Grouping::PerRow => "rows",
     }
 }
+
+/// Rows sampled, evenly spaced, for the storage floor (partial results sample the same ones).
+pub const FLOOR_SAMPLE_ROWS: usize = 64;
 
 /// Fewer counted positions than this and the report says the numbers are thin.
 pub const FEW_POSITIONS: u64 = 1000;
@@ -220,40 +335,63 @@ fn aggregate(acc: &mut CandidateAccum, metric: usize) -> Aggregate {
 }
 
 pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
-    let scale = if inputs.bits { 1.0 / std::f64::consts::LN_2 } else { 1.0 };
     let r = inputs.reference;
+    let aggregates: Vec<Vec<Aggregate>> =
+        result.candidates.iter_mut().map(|acc| (0..NMETRIC).map(|m| aggregate(acc, m)).collect()).collect();
     let mut cands = Vec::new();
-    for (k, acc) in result.candidates.iter_mut().enumerate() {
+    for ((k, acc), aggregates) in result.candidates.iter().enumerate().zip(aggregates) {
         let file = &inputs.candidates[k];
-        cands.push(candidate_report(inputs, file, acc, scale, result.seconds));
+        cands.push(CandidateSource {
+            file: FileSummary::of(file),
+            acc,
+            aggregates,
+            worst: acc.worst.iter().map(|w| resolve_worst(r, file, inputs.cols, inputs.targets, w)).collect(),
+            storage_floor: crate::floor::storage_floor(r, file, inputs.cols, FLOOR_SAMPLE_ROWS),
+        });
     }
-    let comparisons = result.pairs.iter().map(|p| pair_report(p, scale)).collect();
+    assemble(&inputs.settings(), &FileSummary::of(r), cands, &result.pairs, result.seconds, result.rows_processed)
+}
+
+/// The report from resolved results; `build` and `merge` both end here.
+pub fn assemble(
+    settings: &ReportSettings,
+    reference: &FileSummary,
+    candidates: Vec<CandidateSource>,
+    pairs: &[PairAccum],
+    seconds: f64,
+    rows_processed: u64,
+) -> Report {
+    let scale = if settings.bits { 1.0 / std::f64::consts::LN_2 } else { 1.0 };
+    let cands = candidates.into_iter().map(|c| candidate_report(settings, reference, c, scale, seconds)).collect();
+    let comparisons = pairs.iter().map(|p| pair_report(p, scale)).collect();
+    let r = reference;
     Report {
         schema: SCHEMA,
-        units: if inputs.bits { "bits" } else { "nats" },
+        units: if settings.bits { "bits" } else { "nats" },
         tool: ToolInfo { name: "klgauge", version: env!("CARGO_PKG_VERSION") },
         reference: FileInfo {
-            path: r.path.display().to_string(),
+            path: r.path.clone(),
             dtype: r.dtype.name(),
-            rows: r.rows as u64,
-            vocab: r.vocab as u64,
-            prompts: r.prompts() as u64,
-            grouping: grouping_name(&r.grouping),
-            model: r.metadata.get("model").cloned(),
+            rows: r.rows,
+            vocab: r.vocab,
+            prompts: r.prompts,
+            grouping: r.grouping,
+            model: r.model.clone(),
         },
         settings: Settings {
-            compared_vocab: inputs.cols as u64,
-            samples: inputs.samples.clone(),
-            seed: inputs.seed,
-            top: inputs.top,
-            js: inputs.js,
-            shard: inputs.shard.clone(),
+            compared_vocab: settings.cols as u64,
+            samples: settings.samples.clone(),
+            seed: settings.seed,
+            top: settings.top,
+            js: settings.js,
+            shard: settings.shard.clone(),
+            percentiles: settings.percentiles.clone(),
         },
         candidates: cands,
         comparisons,
         timing: Timing {
-            exact_pass_seconds: result.seconds,
-            rows_per_second: if result.seconds > 0.0 { result.rows_processed as f64 / result.seconds } else { 0.0 },
+            exact_pass_seconds: seconds,
+            rows_per_second: if seconds > 0.0 { rows_processed as f64 / seconds } else { 0.0 },
         },
         notice: DISCLAIMER,
     }
@@ -277,9 +415,8 @@ pub fn pair_report(p: &PairAccum, scale: f64) -> PairReport {
     }
 }
 
-fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateAccum, scale: f64, seconds: f64) -> CandidateReport {
-    let r = inputs.reference;
-    let mut agg: Vec<Aggregate> = (0..NMETRIC).map(|m| aggregate(acc, m)).collect();
+fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSource, scale: f64, seconds: f64) -> CandidateReport {
+    let CandidateSource { file, acc, aggregates: mut agg, worst, storage_floor: floor_nats } = c;
     let n = acc.positions;
     let has_nll = agg[engine::NLL_REF].n > 0;
     let top1 = agg[engine::TOP1].mean;
@@ -296,11 +433,10 @@ fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateA
     for m in [engine::KL, engine::KL_REV, engine::JS, engine::ENT_REF, engine::ENT_CAND, engine::NLL_REF, engine::NLL_CAND] {
         agg[m] = agg[m].scaled(scale);
     }
-    let floor_nats = crate::floor::storage_floor(r, file, inputs.cols, 64);
     let floor = floor_nats * scale;
 
     let mut estimators = Vec::new();
-    for (b, &ns) in inputs.samples.iter().enumerate() {
+    for (b, &ns) in settings.samples.iter().enumerate() {
         for (dir, name) in [(0usize, "forward"), (1, "reverse")] {
             let e = &acc.estimators[b][dir];
             if e.n == 0.0 {
@@ -318,20 +454,17 @@ fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateA
         }
     }
     let sampling_cost = SamplingCost {
-        sampled_bytes_per_position: inputs.samples.iter().map(|&s| (s, 8 * s as u64)).collect(),
-        full_logit_bytes_per_position: (inputs.cols * (r.dtype.size() + file.dtype.size())) as u64,
+        sampled_bytes_per_position: settings.samples.iter().map(|&s| (s, 8 * s as u64)).collect(),
+        full_logit_bytes_per_position: (settings.cols * (r.dtype.size() + file.dtype.size())) as u64,
         exact_pass_seconds: seconds,
     };
 
-    let vocab = inputs.vocabulary;
-    let tok = |id: u32, p: f64| TokenProb { id, p, text: vocab.and_then(|v| v.text(id)) };
-    let worst_positions = acc
-        .worst
+    let vocab = settings.vocabulary;
+    let tok = |&(id, p): &(u32, f64)| TokenProb { id, p, text: vocab.and_then(|v| v.text(id)) };
+    let worst_positions = worst
         .iter()
-        .map(|w| {
-            let row = w.row as usize;
-            let ref_top = engine::top_tokens(r, row, inputs.cols, 5).into_iter().map(|(i, p)| tok(i, p)).collect();
-            let cand_top = engine::top_tokens(file, row, inputs.cols, 5).into_iter().map(|(i, p)| tok(i, p)).collect();
+        .map(|rw| {
+            let w = &rw.at;
             WorstPositionReport {
                 row: w.row,
                 prompt: w.prompt,
@@ -342,9 +475,9 @@ fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateA
                     (Some(v), Some(t)) => v.text(t as u32),
                     _ => None,
                 },
-                ref_top,
-                cand_top,
-                context: context_text(inputs, row, w.position as usize),
+                ref_top: rw.ref_top.iter().map(tok).collect(),
+                cand_top: rw.cand_top.iter().map(tok).collect(),
+                context: context_text(vocab, rw.context.as_deref()),
             }
         })
         .collect();
@@ -352,22 +485,22 @@ fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateA
     prompts.sort_by(|a, b| (b.sum[KL] / b.n).total_cmp(&(a.sum[KL] / a.n)).then(a.prompt.cmp(&b.prompt)));
     let worst_prompts = prompts
         .iter()
-        .take(inputs.top)
+        .take(settings.top)
         .map(|p| WorstPromptReport { prompt: p.prompt, positions: p.n as u64, kl_mean: p.sum[KL] / p.n * scale, kl_max: p.max_kl * scale })
         .collect();
 
     let kl = agg[KL].clone();
-    let gates = evaluate_gates(&inputs.gates, &kl, top1, &acc.prompts);
-    let warnings = warnings(inputs, file, acc, &kl, floor, n, has_nll);
+    let gates = evaluate_gates(&settings.gates, &kl, top1, &acc.prompts);
+    let warnings = warnings(settings, r, &file, acc, &kl, floor, n, has_nll);
     CandidateReport {
-        path: file.path.display().to_string(),
+        path: file.path.clone(),
         dtype: file.dtype.name(),
-        model: file.metadata.get("model").cloned(),
+        model: file.model.clone(),
         positions: n,
         kl,
         kl_reverse: agg[KL_REV].clone(),
         tv: agg[engine::TV].clone(),
-        js: if inputs.js { Some(agg[engine::JS].clone()) } else { None },
+        js: if settings.js { Some(agg[engine::JS].clone()) } else { None },
         entropy_ref: agg[engine::ENT_REF].clone(),
         entropy_cand: agg[engine::ENT_CAND].clone(),
         nll_ref: if has_nll { Some(agg[engine::NLL_REF].clone()) } else { None },
@@ -389,16 +522,11 @@ fn candidate_report(inputs: &BuildInputs, file: &LogitFile, acc: &mut CandidateA
     }
 }
 
-/// The tokens before a position, from the targets (targets[row - 1] is the
-/// token at this row's position), up to 8 of them.
-fn context_text(inputs: &BuildInputs, row: usize, position: usize) -> Option<String> {
-    let (v, t) = (inputs.vocabulary?, inputs.targets?);
-    // The input token at row r is the target of row r - 1 within the prompt.
-    let first = row - position;
-    let lo = (row + 1).saturating_sub(8).max(first + 1);
+/// The context tokens as text (with a tokenizer and targets).
+fn context_text(v: Option<&crate::tokens::Vocabulary>, ids: Option<&[i64]>) -> Option<String> {
+    let (v, ids) = (v?, ids?);
     let mut s = String::new();
-    for r in lo..=row {
-        let id = t[r - 1];
+    for &id in ids {
         if id >= 0 {
             s.push_str(&v.text(id as u32).unwrap_or_else(|| format!("<{id}>")));
         }
@@ -424,16 +552,17 @@ pub fn evaluate_gates(limits: &GateLimits, kl: &Aggregate, top1: f64, prompts: &
     g
 }
 
-fn warnings(inputs: &BuildInputs, file: &LogitFile, acc: &CandidateAccum, kl: &Aggregate, floor: f64, n: u64, has_nll: bool) -> Vec<String> {
+#[allow(clippy::too_many_arguments)]
+fn warnings(settings: &ReportSettings, reference: &FileSummary, file: &FileSummary, acc: &CandidateAccum, kl: &Aggregate, floor: f64, n: u64, has_nll: bool) -> Vec<String> {
     let mut w = Vec::new();
-    let units = if inputs.bits { "bits" } else { "nats" };
+    let units = if settings.bits { "bits" } else { "nats" };
     if n == 0 {
         w.push("no position was counted: every row is masked or skipped, so there is nothing to judge".into());
     } else if n < FEW_POSITIONS {
         w.push(format!("only {n} positions were counted: percentiles and intervals are rough; use more prompts before deciding"));
     }
     let prompts = acc.prompts.iter().filter(|p| p.n > 0.0).count() as u64;
-    if matches!(inputs.reference.grouping, Grouping::PerRow) {
+    if reference.grouping == "rows" {
         w.push("no prompt grouping in the input (neither 3-D logits nor prompt_offsets): every row counts as its own prompt, so intervals ignore the correlation within a prompt and are too narrow".into());
     } else if prompts > 0 && prompts < FEW_PROMPTS {
         w.push(format!("only {prompts} prompts: the 95% intervals rest on few clusters and are unreliable"));
@@ -449,7 +578,7 @@ fn warnings(inputs: &BuildInputs, file: &LogitFile, acc: &CandidateAccum, kl: &A
             "mean kl {:.3e} {units} is within 10x of the storage floor {:.3e} {units} ({} / {}): part of what is measured is rounding of the stored logits, not the model; store centered logits or a wider dtype",
             kl.mean,
             floor,
-            inputs.reference.dtype.name(),
+            reference.dtype.name(),
             file.dtype.name()
         ));
     }
