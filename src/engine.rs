@@ -130,6 +130,12 @@ pub struct CandidateAccum {
     pub infinite_kl: u64,
     /// [budget][direction]
     pub estimators: Vec<[EstimatorSums; 2]>,
+    /// Log-spaced histogram of kl (plots; mergeable).
+    pub kl_hist: crate::histo::KlHistogram,
+    /// kl binned by position index within the prompt (plots; mergeable).
+    pub by_position: crate::histo::PositionProfile,
+    /// Per-prompt tail counts behind the interval of kl's percentiles (mergeable).
+    pub kl_tail: crate::histo::TailSums,
 }
 
 /// Paired kl differences (a - b) per prompt, over positions counted in both.
@@ -483,6 +489,7 @@ pub fn run(
     res.seconds = start.elapsed().as_secs_f64();
     for acc in res.candidates.iter_mut() {
         acc.worst.sort_by(worst_order);
+        acc.kl_tail.finish();
     }
     Ok(res)
 }
@@ -516,6 +523,9 @@ fn fold_position(acc: &mut CandidateAccum, co: &CandOut, opts: &EngineOptions, r
     if m[KL].is_infinite() {
         acc.infinite_kl += 1;
     }
+    acc.kl_hist.add(m[KL]);
+    acc.by_position.add(position as u64, m[KL], m[TOP1]);
+    acc.kl_tail.add(prompt as u64, m[KL]);
     for (b, e) in co.est.iter().enumerate() {
         acc.estimators[b][0].add(m[KL], &e[0]);
         acc.estimators[b][1].add(m[KL_REV], &e[1]);

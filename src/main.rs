@@ -21,8 +21,45 @@ struct Cli {
 enum Command {
     /// Exact metrics of each candidate against the reference, estimators, worst positions, gates
     Compare(CompareCli),
+    /// Sampled estimators k1, k2, k3 from per-token log-probabilities (logprob_ref, logprob_cand)
+    Estimate(EstimateCli),
+    /// Tensors, dtypes, shapes, layout problems and the storage-dtype floor of a file
+    Inspect(InspectCli),
     /// Combine the partial results of a sharded run (`compare --shard I/N --partial FILE`) into one report
     Merge(MergeCli),
+    /// Make an invented example scenario (the fictional model Wren-7 and two compressed variants) and compare it, writing every report
+    Demo(DemoCli),
+}
+
+#[derive(Args)]
+struct DemoCli {
+    /// Directory for the generated logit files and the reports
+    #[arg(long, default_value = "demo/out", value_name = "DIR")]
+    out: PathBuf,
+    /// Worker threads (default: one per core)
+    #[arg(long, value_name = "N")]
+    threads: Option<usize>,
+}
+
+#[derive(Args)]
+struct EstimateCli {
+    /// A safetensors file with `logprob_ref`, `logprob_cand` (F32 [n]) and optionally `prompt_offsets`
+    file: PathBuf,
+    /// Write the estimates as JSON
+    #[arg(long, value_name = "FILE")]
+    json: Option<PathBuf>,
+    /// Report in bits instead of nats
+    #[arg(long)]
+    bits: bool,
+}
+
+#[derive(Args)]
+struct InspectCli {
+    /// A logit file (safetensors file or directory of shards) or a log-probability file
+    file: PathBuf,
+    /// Write the findings as JSON
+    #[arg(long, value_name = "FILE")]
+    json: Option<PathBuf>,
 }
 
 #[derive(Args)]
@@ -128,8 +165,12 @@ fn parse_shard(s: &str) -> Result<(usize, usize), Error> {
 
 /// Prints to stdout; a closed pipe (`| head`) is not an error worth a word.
 fn print(report: &klgauge::report::Report) -> Result<(), Error> {
+    print_with(|out| Text.write(report, out))
+}
+
+fn print_with(f: impl FnOnce(&mut dyn Write) -> std::io::Result<()>) -> Result<(), Error> {
     let mut out = std::io::stdout().lock();
-    match Text.write(report, &mut out).and_then(|_| out.flush()) {
+    match f(&mut out).and_then(|_| out.flush()) {
         Ok(()) => Ok(()),
         Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => Ok(()),
         Err(e) => Err(Error::output(std::path::Path::new("<stdout>"), e)),
@@ -205,6 +246,33 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
             let outcome = compare(&args)?;
             print(&outcome.report)?;
             Ok(ExitCode::from(if outcome.gate_failed { 1 } else { 0 }))
+        }
+        Command::Estimate(c) => {
+            use klgauge::commands::estimate::{estimate, write_text, EstimateArgs};
+            let r = estimate(&EstimateArgs { file: c.file, json: c.json, bits: c.bits })?;
+            print_with(|out| write_text(&r, out))?;
+            Ok(ExitCode::SUCCESS)
+        }
+        Command::Inspect(c) => {
+            use klgauge::commands::inspect::{inspect, write_text, InspectArgs};
+            let r = inspect(&InspectArgs { file: c.file, json: c.json })?;
+            print_with(|out| write_text(&r, out))?;
+            Ok(ExitCode::SUCCESS)
+        }
+        Command::Demo(d) => {
+            print_text(&klgauge::demo::preface())?;
+            let (files, outcome) = klgauge::demo::run(&d.out, d.threads)?;
+            print(&outcome.report)?;
+            let dir = files.dir.display();
+            print_text(&format!(
+                "\nwrote {dir}/report.html, {dir}/report.json and {dir}/positions.csv (open the HTML file in a browser)\n\
+                 the same comparison as a command, which exits {} because a gate {}:\n  {}\n",
+                if outcome.gate_failed { 1 } else { 0 },
+                if outcome.gate_failed { "failed" } else { "did not fail" },
+                klgauge::demo::compare_command(&files)
+            ))?;
+            // The demo ran as designed whatever the verdicts: exit 0.
+            Ok(ExitCode::SUCCESS)
         }
         Command::Merge(m) => {
             let outputs: Vec<&std::path::Path> = [&m.json, &m.html].into_iter().flatten().map(|p| p.as_path()).collect();

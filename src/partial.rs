@@ -241,6 +241,13 @@ pub struct CandidateRecord {
     pub estimators: Vec<EstimatorRecord>,
     pub worst_positions: Vec<WorstRecord>,
     pub storage_floor: FloorRecord,
+    /// The binned kl of the plots (empty in partials written before them).
+    #[serde(default)]
+    pub kl_histogram: crate::histo::KlHistogram,
+    #[serde(default)]
+    pub kl_by_position: crate::histo::PositionProfile,
+    #[serde(default)]
+    pub kl_tail: crate::histo::TailSums,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -488,6 +495,9 @@ pub fn from_run(run: &ShardRun, result: EngineResult) -> Partial {
                 .collect(),
             worst_positions,
             storage_floor: FloorRecord { sum: Num(fsum), rows: frows },
+            kl_histogram: acc.kl_hist.clone(),
+            kl_by_position: acc.by_position.clone(),
+            kl_tail: acc.kl_tail.clone(),
         });
     }
     let pairs = result
@@ -605,6 +615,16 @@ fn check_one(p: &Partial) -> std::result::Result<(), String> {
         let counted: u64 = c.prompts.iter().map(|p| p.n).sum();
         if counted != c.positions || c.sketches[engine::KL].count > c.positions {
             return Err(at(format!("{} positions, but its prompts count {counted} and its kl sketch {}", c.positions, c.sketches[engine::KL].count)));
+        }
+        let binned = c.kl_histogram.total();
+        let by_pos: u64 = c.kl_by_position.bins.iter().map(|b| b.n).sum();
+        if (binned != 0 && binned != c.positions) || (by_pos != 0 && by_pos != c.positions) {
+            return Err(at(format!("{} positions, but its kl histogram holds {binned} and its position bins {by_pos}", c.positions)));
+        }
+        let slots = crate::histo::KL_BINS + 2;
+        let t = &c.kl_tail;
+        if t.sq.len() != t.cross.len() || !(t.sq.is_empty() || t.sq.len() == slots) || (!t.sq.is_empty() && c.kl_histogram.counts.len() != slots) {
+            return Err(at(format!("kl_tail holds {} and {} sums, expected {slots} each, beside a kl histogram", t.sq.len(), t.cross.len())));
         }
         if c.worst_positions.len() > p.settings.top {
             return Err(at(format!("{} worst positions, more than top {}", c.worst_positions.len(), p.settings.top)));
@@ -804,6 +824,9 @@ pub fn merge(parts: Vec<(PathBuf, Partial)>) -> Result<Merged> {
             }));
             floor_sum += c.storage_floor.sum.0;
             floor_rows += c.storage_floor.rows;
+            acc.kl_hist.merge(&c.kl_histogram);
+            acc.by_position.merge(&c.kl_by_position);
+            acc.kl_tail.merge(&c.kl_tail);
         }
         // Every shard kept its own `top` worst, so the union holds the global ones.
         worst.sort_by(|a, b| engine::worst_order(&a.at, &b.at));
@@ -867,13 +890,15 @@ pub fn report(m: &Merged, top: usize, bits: bool, gates: report::GateLimits, voc
         .candidates
         .iter()
         .map(|c| {
-            let aggregates = (0..NMETRIC).map(|metric| sketch_aggregate(&c.sketches[metric], c.acc.prompts.iter().map(move |p| (p.count(metric), p.sum[metric])))).collect();
+            let aggregates: Vec<Aggregate> = (0..NMETRIC).map(|metric| sketch_aggregate(&c.sketches[metric], c.acc.prompts.iter().map(move |p| (p.count(metric), p.sum[metric])))).collect();
+            let p99_ci = report::p99_interval(&c.acc, aggregates[engine::KL].p99, |q| c.sketches[engine::KL].quantile(q));
             CandidateSource {
                 file: c.file.clone(),
                 acc: &c.acc,
                 aggregates,
                 worst: c.worst.iter().take(top).cloned().collect(),
                 storage_floor: if c.floor_rows > 0 { c.floor_sum / c.floor_rows as f64 } else { f64::NAN },
+                kl_p99_ci95: p99_ci,
             }
         })
         .collect();

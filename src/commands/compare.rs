@@ -140,8 +140,8 @@ pub fn write_reports(report: &Report, json: Option<&PathBuf>, html: Option<&Path
     if let Some(p) = json {
         write_atomic(p, |w| report::json::Json.write(report, w))?;
     }
-    if let Some(_p) = html {
-        return Err(Error::usage("--html is not available in this build"));
+    if let Some(p) = html {
+        write_atomic(p, |w| report::html::Html.write(report, w))?;
     }
     Ok(())
 }

@@ -2,6 +2,7 @@
 //! one module per output format behind the small `Format` trait.
 
 pub mod csv;
+pub mod html;
 pub mod json;
 pub mod text;
 
@@ -32,6 +33,8 @@ pub struct Report {
     pub candidates: Vec<CandidateReport>,
     /// Paired differences of mean kl between candidates (a minus b).
     pub comparisons: Vec<PairReport>,
+    /// Candidates ordered by mean kl, lowest first.
+    pub ranking: Vec<RankEntry>,
     pub timing: Timing,
     pub notice: &'static str,
 }
@@ -92,9 +95,10 @@ pub struct WorstPositionReport {
     pub target_text: Option<String>,
     pub ref_top: Vec<TokenProb>,
     pub cand_top: Vec<TokenProb>,
-    /// The tokens before the position (with a tokenizer and targets).
+    /// Text of up to 8 tokens before the position, oldest first (with a
+    /// tokenizer and targets).
     #[serde(skip_serializing_if = "Option::is_none")]
-    pub context: Option<String>,
+    pub context: Option<Vec<String>>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -135,10 +139,70 @@ pub struct Gate {
     /// The limit lies inside the value's 95% interval: the verdict could flip
     /// with another prompt sample.
     pub uncertain: bool,
+    /// The 95% interval of the value that `uncertain` was judged against.
+    pub interval: Option<[f64; 2]>,
+}
+
+/// One finite bin of the kl histogram (edges in the report's units).
+#[derive(Debug, Clone, Serialize)]
+pub struct HistBin {
+    pub lo: f64,
+    pub hi: f64,
+    pub count: u64,
+}
+
+/// The log-spaced histogram of per-position kl.
+#[derive(Debug, Clone, Serialize)]
+pub struct KlHistogramReport {
+    pub bins_per_decade: usize,
+    /// Positions with kl below `lowest_edge` (exact zeros included).
+    pub below: u64,
+    pub lowest_edge: f64,
+    /// Positions with kl at or above `highest_edge` (infinite kl included).
+    pub above: u64,
+    pub highest_edge: f64,
+    /// The bins that hold any position, in increasing order.
+    pub bins: Vec<HistBin>,
+}
+
+/// kl over the positions whose index within the prompt lies in first..=last.
+#[derive(Debug, Clone, Serialize)]
+pub struct PositionBinReport {
+    pub first: u64,
+    pub last: u64,
+    pub positions: u64,
+    /// Mean over the finite values of the bin.
+    pub kl_mean: f64,
+    /// Approximate quantiles (from a histogram with 10 bins per decade).
+    pub kl_p50: f64,
+    pub kl_p90: f64,
+    pub top1_agree: f64,
+    pub infinite_kl: u64,
+}
+
+/// A place in the ranking by mean kl.
+#[derive(Debug, Clone, Serialize)]
+pub struct RankEntry {
+    pub rank: usize,
+    /// Index into `candidates`.
+    pub candidate: usize,
+    pub name: String,
+    pub kl_mean: f64,
+    pub kl_ci95: Option<[f64; 2]>,
+    pub kl_p99: f64,
+    pub top1_agree: f64,
+    /// "pass", "fail" or "no gates".
+    pub gates: &'static str,
+    /// The paired difference to the next candidate in the ranking, in which
+    /// this one is lower: "lower" when its 95% interval excludes zero,
+    /// "not distinguishable" otherwise; null for the last place.
+    pub vs_next: Option<&'static str>,
 }
 
 #[derive(Debug, Clone, Serialize)]
 pub struct CandidateReport {
+    /// The display name: the `model` metadata, else the file name.
+    pub name: String,
     pub path: String,
     pub dtype: &'static str,
     pub model: Option<String>,
@@ -160,6 +224,10 @@ pub struct CandidateReport {
     pub skipped: Vec<SkippedRow>,
     pub infinite_kl: u64,
     pub storage_floor: f64,
+    /// Approximate 95% interval of kl.p99 (Woodruff's method, prompts as clusters).
+    pub kl_p99_ci95: Option<[f64; 2]>,
+    pub kl_histogram: KlHistogramReport,
+    pub kl_by_position: Vec<PositionBinReport>,
     pub estimators: Vec<EstimatorBlock>,
     pub sampling_cost: SamplingCost,
     pub worst_positions: Vec<WorstPositionReport>,
@@ -172,6 +240,8 @@ pub struct CandidateReport {
 pub struct PairReport {
     pub a: usize,
     pub b: usize,
+    pub a_name: String,
+    pub b_name: String,
     pub positions: u64,
     /// Mean of kl_a - kl_b over positions counted in both.
     pub kl_mean_diff: f64,
@@ -310,6 +380,8 @@ pub struct CandidateSource<'a> {
     pub worst: Vec<ResolvedWorst>,
     /// In nats.
     pub storage_floor: f64,
+    /// The 95% interval of kl's p99, in nats (see `p99_interval`).
+    pub kl_p99_ci95: Option<[f64; 2]>,
 }
 
 fn grouping_name(g: &Grouping) -> &'static str {
@@ -341,12 +413,15 @@ pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
     let mut cands = Vec::new();
     for ((k, acc), aggregates) in result.candidates.iter().enumerate().zip(aggregates) {
         let file = &inputs.candidates[k];
+        let sorted = &acc.values[KL];
+        let p99_ci = p99_interval(acc, aggregates[KL].p99, |q| crate::stats::percentile(sorted, q));
         cands.push(CandidateSource {
             file: FileSummary::of(file),
             acc,
             aggregates,
             worst: acc.worst.iter().map(|w| resolve_worst(r, file, inputs.cols, inputs.targets, w)).collect(),
             storage_floor: crate::floor::storage_floor(r, file, inputs.cols, FLOOR_SAMPLE_ROWS),
+            kl_p99_ci95: p99_ci,
         });
     }
     assemble(&inputs.settings(), &FileSummary::of(r), cands, &result.pairs, result.seconds, result.rows_processed)
@@ -362,8 +437,10 @@ pub fn assemble(
     rows_processed: u64,
 ) -> Report {
     let scale = if settings.bits { 1.0 / std::f64::consts::LN_2 } else { 1.0 };
-    let cands = candidates.into_iter().map(|c| candidate_report(settings, reference, c, scale, seconds)).collect();
-    let comparisons = pairs.iter().map(|p| pair_report(p, scale)).collect();
+    let cands: Vec<CandidateReport> = candidates.into_iter().map(|c| candidate_report(settings, reference, c, scale, seconds)).collect();
+    let mut comparisons: Vec<PairReport> = pairs.iter().map(|p| pair_report(p, scale)).collect();
+    name_pairs(&mut comparisons, &cands);
+    let ranking = ranking(&cands, &comparisons);
     let r = reference;
     Report {
         schema: SCHEMA,
@@ -389,6 +466,7 @@ pub fn assemble(
         },
         candidates: cands,
         comparisons,
+        ranking,
         timing: Timing {
             exact_pass_seconds: seconds,
             rows_per_second: if seconds > 0.0 { rows_processed as f64 / seconds } else { 0.0 },
@@ -408,6 +486,8 @@ pub fn pair_report(p: &PairAccum, scale: f64) -> PairReport {
     PairReport {
         a: p.a,
         b: p.b,
+        a_name: String::new(),
+        b_name: String::new(),
         positions: n as u64,
         kl_mean_diff: mean * scale,
         ci95: ci.map(|[a, b]| [a * scale, b * scale]),
@@ -415,8 +495,123 @@ pub fn pair_report(p: &PairAccum, scale: f64) -> PairReport {
     }
 }
 
+/// Fills the candidate names into the pair reports.
+pub fn name_pairs(pairs: &mut [PairReport], cands: &[CandidateReport]) {
+    for p in pairs {
+        p.a_name = cands.get(p.a).map(|c| c.name.clone()).unwrap_or_default();
+        p.b_name = cands.get(p.b).map(|c| c.name.clone()).unwrap_or_default();
+    }
+}
+
+/// Candidates ordered by mean kl (lowest first; a NaN mean goes last, ties
+/// keep the command-line order), each with the paired verdict against the
+/// next one.
+pub fn ranking(cands: &[CandidateReport], pairs: &[PairReport]) -> Vec<RankEntry> {
+    let mut order: Vec<usize> = (0..cands.len()).collect();
+    let key = |i: usize| {
+        let m = cands[i].kl.mean;
+        if m.is_nan() {
+            f64::INFINITY
+        } else {
+            m
+        }
+    };
+    order.sort_by(|&a, &b| key(a).total_cmp(&key(b)).then(a.cmp(&b)));
+    order
+        .iter()
+        .enumerate()
+        .map(|(rank, &i)| {
+            let c = &cands[i];
+            let vs_next = order.get(rank + 1).map(|&j| {
+                let p = pairs.iter().find(|p| (p.a, p.b) == (i.min(j), i.max(j)));
+                let lower = match p.map(|p| p.verdict) {
+                    Some("a lower") => p.unwrap().a == i,
+                    Some("b lower") => p.unwrap().b == i,
+                    _ => false,
+                };
+                if lower {
+                    "lower"
+                } else {
+                    "not distinguishable"
+                }
+            });
+            RankEntry {
+                rank: rank + 1,
+                candidate: i,
+                name: c.name.clone(),
+                kl_mean: c.kl.mean,
+                kl_ci95: c.kl.ci95,
+                kl_p99: c.kl.p99,
+                top1_agree: c.top1_agree,
+                gates: if c.gates.is_empty() {
+                    "no gates"
+                } else if c.gates.iter().all(|g| g.pass) {
+                    "pass"
+                } else {
+                    "fail"
+                },
+                vs_next,
+            }
+        })
+        .collect()
+}
+
+/// The display name of a file: its `model` metadata, else its file name.
+pub fn display_name(file: &FileSummary) -> String {
+    match &file.model {
+        Some(m) if !m.trim().is_empty() => m.trim().to_string(),
+        _ => {
+            let base = file.path.rsplit(['/', '\\']).find(|s| !s.is_empty()).unwrap_or(&file.path);
+            base.trim_end_matches(".safetensors").to_string()
+        }
+    }
+}
+
+/// The 95% interval of kl's p99 (`histo::quantile_interval`), from the
+/// accumulated tail sums; `quantile` reads kl's quantile function (exact
+/// values in a single run, the sketch after a merge).
+pub fn p99_interval(acc: &CandidateAccum, p99: f64, quantile: impl Fn(f64) -> f64) -> Option<[f64; 2]> {
+    let counted = acc.prompts.iter().filter(|p| p.n > 0.0);
+    let n_sq: f64 = counted.clone().map(|p| p.n * p.n).sum();
+    crate::histo::quantile_interval(&acc.kl_hist, &acc.kl_tail, n_sq, counted.count(), 0.99, p99, quantile)
+}
+
+fn histogram_report(h: &crate::histo::KlHistogram, scale: f64) -> KlHistogramReport {
+    use crate::histo::{KL_HI_EXP, KL_LO_EXP, KL_PER_DECADE};
+    KlHistogramReport {
+        bins_per_decade: KL_PER_DECADE,
+        below: h.below(),
+        lowest_edge: 10f64.powi(KL_LO_EXP) * scale,
+        above: h.above(),
+        highest_edge: 10f64.powi(KL_HI_EXP) * scale,
+        bins: h.bins().filter(|b| b.2 > 0).map(|(lo, hi, count)| HistBin { lo: lo * scale, hi: hi * scale, count }).collect(),
+    }
+}
+
+fn position_report(p: &crate::histo::PositionProfile, scale: f64) -> Vec<PositionBinReport> {
+    p.bins
+        .iter()
+        .enumerate()
+        .filter(|(_, b)| b.n > 0)
+        .map(|(i, b)| {
+            let (first, last) = crate::histo::position_range(i);
+            PositionBinReport {
+                first,
+                last,
+                positions: b.n,
+                kl_mean: b.kl_mean() * scale,
+                kl_p50: b.kl_quantile(0.5) * scale,
+                kl_p90: b.kl_quantile(0.9) * scale,
+                top1_agree: b.top1_sum / b.n as f64,
+                infinite_kl: b.infinite,
+            }
+        })
+        .collect()
+}
+
 fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSource, scale: f64, seconds: f64) -> CandidateReport {
-    let CandidateSource { file, acc, aggregates: mut agg, worst, storage_floor: floor_nats } = c;
+    let CandidateSource { file, acc, aggregates: mut agg, worst, storage_floor: floor_nats, kl_p99_ci95 } = c;
+    let p99_ci = kl_p99_ci95.map(|[a, b]| [a * scale, b * scale]);
     let n = acc.positions;
     let has_nll = agg[engine::NLL_REF].n > 0;
     let top1 = agg[engine::TOP1].mean;
@@ -490,9 +685,10 @@ fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSour
         .collect();
 
     let kl = agg[KL].clone();
-    let gates = evaluate_gates(&settings.gates, &kl, top1, &acc.prompts);
+    let gates = evaluate_gates(&settings.gates, &kl, p99_ci, top1, &acc.prompts);
     let warnings = warnings(settings, r, &file, acc, &kl, floor, n, has_nll);
     CandidateReport {
+        name: display_name(&file),
         path: file.path.clone(),
         dtype: file.dtype.name(),
         model: file.model.clone(),
@@ -513,6 +709,9 @@ fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSour
         skipped: acc.skipped.clone(),
         infinite_kl: acc.infinite_kl,
         storage_floor: floor,
+        kl_p99_ci95: p99_ci,
+        kl_histogram: histogram_report(&acc.kl_hist, scale),
+        kl_by_position: position_report(&acc.by_position, scale),
         estimators,
         sampling_cost,
         worst_positions,
@@ -523,31 +722,28 @@ fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSour
 }
 
 /// The context tokens as text (with a tokenizer and targets).
-fn context_text(v: Option<&crate::tokens::Vocabulary>, ids: Option<&[i64]>) -> Option<String> {
+fn context_text(v: Option<&crate::tokens::Vocabulary>, ids: Option<&[i64]>) -> Option<Vec<String>> {
     let (v, ids) = (v?, ids?);
-    let mut s = String::new();
-    for &id in ids {
-        if id >= 0 {
-            s.push_str(&v.text(id as u32).unwrap_or_else(|| format!("<{id}>")));
-        }
-    }
-    Some(s)
+    Some(ids.iter().filter(|&&id| id >= 0).map(|&id| v.text(id as u32).unwrap_or_else(|| format!("<{id}>"))).collect())
 }
 
-pub fn evaluate_gates(limits: &GateLimits, kl: &Aggregate, top1: f64, prompts: &[engine::PromptSums]) -> Vec<Gate> {
+/// The gates asked for. `p99_ci` is the interval of kl.p99 (see
+/// `quantile_interval`); a gate is `uncertain` when its limit lies inside the
+/// interval of its value.
+pub fn evaluate_gates(limits: &GateLimits, kl: &Aggregate, p99_ci: Option<[f64; 2]>, top1: f64, prompts: &[engine::PromptSums]) -> Vec<Gate> {
     let mut g = Vec::new();
     let inside = |ci: Option<[f64; 2]>, x: f64| ci.map_or(false, |[a, b]| a <= x && x <= b);
     if let Some(x) = limits.max_kl_mean {
         let v = kl.mean;
-        g.push(Gate { name: "max-kl-mean".into(), limit: x, value: v, pass: v <= x, uncertain: inside(kl.ci95, x) });
+        g.push(Gate { name: "max-kl-mean".into(), limit: x, value: v, pass: v <= x, uncertain: inside(kl.ci95, x), interval: kl.ci95 });
     }
     if let Some(x) = limits.max_kl_p99 {
         let v = kl.p99;
-        g.push(Gate { name: "max-kl-p99".into(), limit: x, value: v, pass: v <= x, uncertain: false });
+        g.push(Gate { name: "max-kl-p99".into(), limit: x, value: v, pass: v <= x, uncertain: inside(p99_ci, x), interval: p99_ci });
     }
     if let Some(x) = limits.min_top1 {
         let (_, ci) = cluster_mean(prompts.iter().map(|p| (p.n, p.sum[engine::TOP1])));
-        g.push(Gate { name: "min-top1".into(), limit: x, value: top1, pass: top1 >= x, uncertain: inside(ci, x) });
+        g.push(Gate { name: "min-top1".into(), limit: x, value: top1, pass: top1 >= x, uncertain: inside(ci, x), interval: ci });
     }
     g
 }
