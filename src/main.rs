@@ -249,12 +249,14 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
         }
         Command::Estimate(c) => {
             use klgauge::commands::estimate::{estimate, write_text, EstimateArgs};
+            klgauge::output::check_destinations(&c.json.iter().map(|p| p.as_path()).collect::<Vec<_>>(), &[c.file.as_path()])?;
             let r = estimate(&EstimateArgs { file: c.file, json: c.json, bits: c.bits })?;
             print_with(|out| write_text(&r, out))?;
             Ok(ExitCode::SUCCESS)
         }
         Command::Inspect(c) => {
             use klgauge::commands::inspect::{inspect, write_text, InspectArgs};
+            klgauge::output::check_destinations(&c.json.iter().map(|p| p.as_path()).collect::<Vec<_>>(), &[c.file.as_path()])?;
             let r = inspect(&InspectArgs { file: c.file, json: c.json })?;
             print_with(|out| write_text(&r, out))?;
             Ok(ExitCode::SUCCESS)
