@@ -147,8 +147,9 @@ impl LogitFile {
             };
             let (rows, v, g) = match logits.shape.as_slice() {
                 [r, v] => (*r, *v, Grouping::PerRow),
-                // The product cannot overflow once the crate has validated the
-                // byte count, except when the vocabulary is 0: check anyway.
+                // The crate's byte-count check multiplies the dimensions from
+                // the left with overflow checks, so this cannot fail today; the
+                // reader does not rely on that detail.
                 [s, l, v] => match s.checked_mul(*l) {
                     Some(r) => (r, *v, Grouping::Sequences { length: *l }),
                     None => return Err(err(format!("`logits` shape {:?} has more rows than can be addressed", logits.shape))),
