@@ -150,6 +150,9 @@ struct CompareCli {
     min_top1: Option<f64>,
 }
 
+/// Most draws per position `--samples` accepts.
+const MAX_SAMPLES: usize = 1 << 20;
+
 fn parse_shard(s: &str) -> Result<(usize, usize), Error> {
     let bad = || Error::usage(format!("--shard {s}: expected I/N with 0 <= I < N, e.g. 0/8"));
     let (i, n) = s.split_once('/').ok_or_else(bad)?;
@@ -174,6 +177,26 @@ fn print_with(f: impl FnOnce(&mut dyn Write) -> std::io::Result<()>) -> Result<(
     }
 }
 
+/// On SIGINT, SIGTERM or SIGHUP: remove every half-written report and exit
+/// with 128 + the signal number (130 for Ctrl-C), the shell convention.
+#[cfg(unix)]
+fn install_interrupt_handler() {
+    use signal_hook::consts::{SIGHUP, SIGINT, SIGTERM};
+    let Ok(mut signals) = signal_hook::iterator::Signals::new([SIGINT, SIGTERM, SIGHUP]) else {
+        return;
+    };
+    let _ = std::thread::Builder::new().name("interrupt".into()).spawn(move || {
+        if let Some(sig) = signals.forever().next() {
+            klgauge::output::abandon_all();
+            let _ = writeln!(std::io::stderr(), "klgauge: interrupted, no report written");
+            std::process::exit(128 + sig);
+        }
+    });
+}
+
+#[cfg(not(unix))]
+fn install_interrupt_handler() {}
+
 fn print_text(s: &str) -> Result<(), Error> {
     let mut out = std::io::stdout().lock();
     match out.write_all(s.as_bytes()).and_then(|_| out.flush()) {
@@ -186,6 +209,16 @@ fn print_text(s: &str) -> Result<(), Error> {
 fn run(cli: Cli) -> Result<ExitCode, Error> {
     match cli.command {
         Command::Compare(c) => {
+            let outputs: Vec<&std::path::Path> =
+                [&c.json, &c.csv, &c.html, &c.partial].into_iter().flatten().map(|p| p.as_path()).collect();
+            let inputs: Vec<&std::path::Path> =
+                std::iter::once(&c.reference).chain(&c.candidates).chain(&c.tokenizer).map(|p| p.as_path()).collect();
+            klgauge::output::check_destinations(&outputs, &inputs)?;
+            // Every worker keeps its draws in memory: an absurd count would end
+            // in an allocation failure (an abort), not in a clear message.
+            if let Some(n) = c.samples.iter().find(|&&n| n > MAX_SAMPLES) {
+                return Err(Error::usage(format!("--samples {n}: at most {MAX_SAMPLES} draws per position")));
+            }
             let args = CompareArgs {
                 reference: c.reference,
                 candidates: c.candidates,
@@ -216,12 +249,14 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
         }
         Command::Estimate(c) => {
             use klgauge::commands::estimate::{estimate, write_text, EstimateArgs};
+            klgauge::output::check_destinations(&c.json.iter().map(|p| p.as_path()).collect::<Vec<_>>(), &[c.file.as_path()])?;
             let r = estimate(&EstimateArgs { file: c.file, json: c.json, bits: c.bits })?;
             print_with(|out| write_text(&r, out))?;
             Ok(ExitCode::SUCCESS)
         }
         Command::Inspect(c) => {
             use klgauge::commands::inspect::{inspect, write_text, InspectArgs};
+            klgauge::output::check_destinations(&c.json.iter().map(|p| p.as_path()).collect::<Vec<_>>(), &[c.file.as_path()])?;
             let r = inspect(&InspectArgs { file: c.file, json: c.json })?;
             print_with(|out| write_text(&r, out))?;
             Ok(ExitCode::SUCCESS)
@@ -242,6 +277,9 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
             Ok(ExitCode::SUCCESS)
         }
         Command::Merge(m) => {
+            let outputs: Vec<&std::path::Path> = [&m.json, &m.html].into_iter().flatten().map(|p| p.as_path()).collect();
+            let inputs: Vec<&std::path::Path> = m.partials.iter().chain(&m.tokenizer).map(|p| p.as_path()).collect();
+            klgauge::output::check_destinations(&outputs, &inputs)?;
             let args = MergeArgs {
                 partials: m.partials,
                 json: m.json,
@@ -268,11 +306,13 @@ fn main() -> ExitCode {
             return ExitCode::from(code);
         }
     };
+    install_interrupt_handler();
     match run(cli) {
         Ok(code) => code,
         Err(e) => {
             klgauge::output::remove_temps();
-            eprintln!("klgauge: error: {e}");
+            // Not eprintln!: it panics when stderr is closed.
+            let _ = writeln!(std::io::stderr(), "klgauge: error: {e}");
             ExitCode::from(e.exit_code() as u8)
         }
     }
