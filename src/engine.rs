@@ -130,6 +130,12 @@ pub struct CandidateAccum {
     pub infinite_kl: u64,
     /// [budget][direction]
     pub estimators: Vec<[EstimatorSums; 2]>,
+    /// Log-spaced histogram of kl (plots; mergeable).
+    pub kl_hist: crate::histo::KlHistogram,
+    /// kl binned by position index within the prompt (plots; mergeable).
+    pub by_position: crate::histo::PositionProfile,
+    /// Per-prompt tail counts behind the interval of kl's percentiles (mergeable).
+    pub kl_tail: crate::histo::TailSums,
 }
 
 /// Paired kl differences (a - b) per prompt, over positions counted in both.
@@ -179,23 +185,40 @@ pub fn compared_columns(reference: &LogitFile, candidates: &[LogitFile], vocab: 
 /// Checks that the candidates line up with the reference (SPEC: same rows,
 /// identical targets when both carry them) and returns the targets to use.
 pub fn check_alignment<'a>(reference: &'a LogitFile, candidates: &'a [LogitFile], cols: usize) -> Result<Option<&'a [i64]>> {
-    let mut targets: Option<&[i64]> = reference.targets.as_deref();
+    // The first file that carries targets sets them; every other file that
+    // carries them must agree (also between candidates when the reference has none).
+    let mut targets: Option<(&[i64], &LogitFile)> = reference.targets.as_deref().map(|t| (t, reference));
     for c in candidates {
         if c.rows != reference.rows {
             return Err(Error::input(&c.path, format!("has {} rows, the reference {} has {}", c.rows, reference.path.display(), reference.rows)));
         }
-        if let (Some(a), Some(b)) = (reference.targets.as_deref(), c.targets.as_deref()) {
-            if let Some(i) = a.iter().zip(b).position(|(x, y)| x != y) {
-                return Err(Error::input(
-                    &c.path,
-                    format!("`targets` differ from the reference's at row {i} ({} vs {}): the dumps are not aligned", b[i], a[i]),
-                ));
+        match (targets, c.targets.as_deref()) {
+            (Some((a, owner)), Some(b)) => {
+                if let Some(i) = a.iter().zip(b).position(|(x, y)| x != y) {
+                    let whose = if std::ptr::eq(owner, reference) { "the reference's".to_string() } else { format!("those of {}", owner.path.display()) };
+                    return Err(Error::input(
+                        &c.path,
+                        format!("`targets` differ from {whose} at row {i} ({} vs {}): the dumps are not aligned", b[i], a[i]),
+                    ));
+                }
             }
+            (None, Some(b)) => targets = Some((b, c)),
+            _ => {}
         }
-        if targets.is_none() {
-            targets = c.targets.as_deref();
+        // Explicit prompt boundaries on both sides must agree: different ones
+        // mean the files were cut from different prompt sets.
+        let explicit = |f: &LogitFile| !matches!(f.grouping, crate::input::Grouping::PerRow);
+        if explicit(reference) && explicit(c) && c.prompt_starts != reference.prompt_starts {
+            let (a, b) = (&reference.prompt_starts, &c.prompt_starts);
+            let i = a.iter().zip(b).position(|(x, y)| x != y).unwrap_or(a.len().min(b.len()));
+            let at = |v: &[usize]| v.get(i).map_or("does not exist".to_string(), |r| format!("starts at row {r}"));
+            return Err(Error::input(
+                &c.path,
+                format!("prompt boundaries differ from the reference's: prompt {i} {} here, {} there; the dumps are not aligned", at(b), at(a)),
+            ));
         }
     }
+    let targets = targets.map(|(t, _)| t);
     if let Some(t) = targets {
         let vocab = reference.vocab.min(candidates.iter().map(|c| c.vocab).min().unwrap_or(usize::MAX));
         if let Some(i) = t.iter().position(|&v| v >= vocab as i64) {
@@ -488,6 +511,7 @@ pub fn run(
     res.seconds = start.elapsed().as_secs_f64();
     for acc in res.candidates.iter_mut() {
         acc.worst.sort_by(worst_order);
+        acc.kl_tail.finish();
     }
     Ok(res)
 }
@@ -521,6 +545,9 @@ fn fold_position(acc: &mut CandidateAccum, co: &CandOut, opts: &EngineOptions, r
     if m[KL].is_infinite() {
         acc.infinite_kl += 1;
     }
+    acc.kl_hist.add(m[KL]);
+    acc.by_position.add(position as u64, m[KL], m[TOP1]);
+    acc.kl_tail.add(prompt as u64, m[KL]);
     for (b, e) in co.est.iter().enumerate() {
         acc.estimators[b][0].add(m[KL], &e[0]);
         acc.estimators[b][1].add(m[KL_REV], &e[1]);

@@ -2,7 +2,8 @@
 //! turns the outcome into SPEC's exit code. All work happens in the library.
 
 use clap::{Args, Parser, Subcommand};
-use klgauge::commands::compare::{compare, CompareArgs};
+use klgauge::commands::compare::{compare, compare_shard, CompareArgs};
+use klgauge::commands::merge::{merge, MergeArgs};
 use klgauge::error::Error;
 use klgauge::report::{text::Text, Format, GateLimits};
 use std::io::{IsTerminal, Write};
@@ -20,6 +21,76 @@ struct Cli {
 enum Command {
     /// Exact metrics of each candidate against the reference, estimators, worst positions, gates
     Compare(CompareCli),
+    /// Sampled estimators k1, k2, k3 from per-token log-probabilities (logprob_ref, logprob_cand)
+    Estimate(EstimateCli),
+    /// Tensors, dtypes, shapes, layout problems and the storage-dtype floor of a file
+    Inspect(InspectCli),
+    /// Combine the partial results of a sharded run (`compare --shard I/N --partial FILE`) into one report
+    Merge(MergeCli),
+    /// Make an invented example scenario (the fictional model Wren-7 and two compressed variants) and compare it, writing every report
+    Demo(DemoCli),
+}
+
+#[derive(Args)]
+struct DemoCli {
+    /// Directory for the generated logit files and the reports
+    #[arg(long, default_value = "demo/out", value_name = "DIR")]
+    out: PathBuf,
+    /// Worker threads (default: one per core)
+    #[arg(long, value_name = "N")]
+    threads: Option<usize>,
+}
+
+#[derive(Args)]
+struct EstimateCli {
+    /// A safetensors file with `logprob_ref`, `logprob_cand` (F32 [n]) and optionally `prompt_offsets`
+    file: PathBuf,
+    /// Write the estimates as JSON
+    #[arg(long, value_name = "FILE")]
+    json: Option<PathBuf>,
+    /// Report in bits instead of nats
+    #[arg(long)]
+    bits: bool,
+}
+
+#[derive(Args)]
+struct InspectCli {
+    /// A logit file (safetensors file or directory of shards) or a log-probability file
+    file: PathBuf,
+    /// Write the findings as JSON
+    #[arg(long, value_name = "FILE")]
+    json: Option<PathBuf>,
+}
+
+#[derive(Args)]
+struct MergeCli {
+    /// Partial results, one per shard, in any order
+    #[arg(required = true, value_name = "PARTIAL")]
+    partials: Vec<PathBuf>,
+    /// Write the full report as JSON
+    #[arg(long, value_name = "FILE")]
+    json: Option<PathBuf>,
+    /// Write a self-contained HTML report
+    #[arg(long, value_name = "FILE")]
+    html: Option<PathBuf>,
+    /// Number of worst positions and prompts listed (default: what the shards kept)
+    #[arg(long, value_name = "N")]
+    top: Option<usize>,
+    /// A tokenizer.json, to show token text
+    #[arg(long, value_name = "FILE")]
+    tokenizer: Option<PathBuf>,
+    /// Report divergences and entropies in bits instead of nats
+    #[arg(long)]
+    bits: bool,
+    /// Gate: fail when the mean kl exceeds X (in the report's units)
+    #[arg(long, value_name = "X")]
+    max_kl_mean: Option<f64>,
+    /// Gate: fail when the 99th percentile of kl exceeds X
+    #[arg(long, value_name = "X")]
+    max_kl_p99: Option<f64>,
+    /// Gate: fail when top-1 agreement falls below X (a fraction, 0..1)
+    #[arg(long, value_name = "X")]
+    min_top1: Option<f64>,
 }
 
 #[derive(Args)]
@@ -79,6 +150,9 @@ struct CompareCli {
     min_top1: Option<f64>,
 }
 
+/// Most draws per position `--samples` accepts.
+const MAX_SAMPLES: usize = 1 << 20;
+
 fn parse_shard(s: &str) -> Result<(usize, usize), Error> {
     let bad = || Error::usage(format!("--shard {s}: expected I/N with 0 <= I < N, e.g. 0/8"));
     let (i, n) = s.split_once('/').ok_or_else(bad)?;
@@ -91,8 +165,41 @@ fn parse_shard(s: &str) -> Result<(usize, usize), Error> {
 
 /// Prints to stdout; a closed pipe (`| head`) is not an error worth a word.
 fn print(report: &klgauge::report::Report) -> Result<(), Error> {
+    print_with(|out| Text.write(report, out))
+}
+
+fn print_with(f: impl FnOnce(&mut dyn Write) -> std::io::Result<()>) -> Result<(), Error> {
     let mut out = std::io::stdout().lock();
-    match Text.write(report, &mut out).and_then(|_| out.flush()) {
+    match f(&mut out).and_then(|_| out.flush()) {
+        Ok(()) => Ok(()),
+        Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => Ok(()),
+        Err(e) => Err(Error::output(std::path::Path::new("<stdout>"), e)),
+    }
+}
+
+/// On SIGINT, SIGTERM or SIGHUP: remove every half-written report and exit
+/// with 128 + the signal number (130 for Ctrl-C), the shell convention.
+#[cfg(unix)]
+fn install_interrupt_handler() {
+    use signal_hook::consts::{SIGHUP, SIGINT, SIGTERM};
+    let Ok(mut signals) = signal_hook::iterator::Signals::new([SIGINT, SIGTERM, SIGHUP]) else {
+        return;
+    };
+    let _ = std::thread::Builder::new().name("interrupt".into()).spawn(move || {
+        if let Some(sig) = signals.forever().next() {
+            klgauge::output::abandon_all();
+            let _ = writeln!(std::io::stderr(), "klgauge: interrupted, no report written");
+            std::process::exit(128 + sig);
+        }
+    });
+}
+
+#[cfg(not(unix))]
+fn install_interrupt_handler() {}
+
+fn print_text(s: &str) -> Result<(), Error> {
+    let mut out = std::io::stdout().lock();
+    match out.write_all(s.as_bytes()).and_then(|_| out.flush()) {
         Ok(()) => Ok(()),
         Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => Ok(()),
         Err(e) => Err(Error::output(std::path::Path::new("<stdout>"), e)),
@@ -102,6 +209,16 @@ fn print(report: &klgauge::report::Report) -> Result<(), Error> {
 fn run(cli: Cli) -> Result<ExitCode, Error> {
     match cli.command {
         Command::Compare(c) => {
+            let outputs: Vec<&std::path::Path> =
+                [&c.json, &c.csv, &c.html, &c.partial].into_iter().flatten().map(|p| p.as_path()).collect();
+            let inputs: Vec<&std::path::Path> =
+                std::iter::once(&c.reference).chain(&c.candidates).chain(&c.tokenizer).map(|p| p.as_path()).collect();
+            klgauge::output::check_destinations(&outputs, &inputs)?;
+            // Every worker keeps its draws in memory: an absurd count would end
+            // in an allocation failure (an abort), not in a clear message.
+            if let Some(n) = c.samples.iter().find(|&&n| n > MAX_SAMPLES) {
+                return Err(Error::usage(format!("--samples {n}: at most {MAX_SAMPLES} draws per position")));
+            }
             let args = CompareArgs {
                 reference: c.reference,
                 candidates: c.candidates,
@@ -121,7 +238,58 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
                 gates: GateLimits { max_kl_mean: c.max_kl_mean, max_kl_p99: c.max_kl_p99, min_top1: c.min_top1 },
                 progress: std::io::stderr().is_terminal(),
             };
+            if args.shard.is_some() || args.partial.is_some() {
+                let shard = compare_shard(&args)?;
+                print_text(&shard.summary())?;
+                return Ok(ExitCode::from(0));
+            }
             let outcome = compare(&args)?;
+            print(&outcome.report)?;
+            Ok(ExitCode::from(if outcome.gate_failed { 1 } else { 0 }))
+        }
+        Command::Estimate(c) => {
+            use klgauge::commands::estimate::{estimate, write_text, EstimateArgs};
+            klgauge::output::check_destinations(&c.json.iter().map(|p| p.as_path()).collect::<Vec<_>>(), &[c.file.as_path()])?;
+            let r = estimate(&EstimateArgs { file: c.file, json: c.json, bits: c.bits })?;
+            print_with(|out| write_text(&r, out))?;
+            Ok(ExitCode::SUCCESS)
+        }
+        Command::Inspect(c) => {
+            use klgauge::commands::inspect::{inspect, write_text, InspectArgs};
+            klgauge::output::check_destinations(&c.json.iter().map(|p| p.as_path()).collect::<Vec<_>>(), &[c.file.as_path()])?;
+            let r = inspect(&InspectArgs { file: c.file, json: c.json })?;
+            print_with(|out| write_text(&r, out))?;
+            Ok(ExitCode::SUCCESS)
+        }
+        Command::Demo(d) => {
+            print_text(&klgauge::demo::preface())?;
+            let (files, outcome) = klgauge::demo::run(&d.out, d.threads)?;
+            print(&outcome.report)?;
+            let dir = files.dir.display();
+            print_text(&format!(
+                "\nwrote {dir}/report.html, {dir}/report.json and {dir}/positions.csv (open the HTML file in a browser)\n\
+                 the same comparison as a command, which exits {} because a gate {}:\n  {}\n",
+                if outcome.gate_failed { 1 } else { 0 },
+                if outcome.gate_failed { "failed" } else { "did not fail" },
+                klgauge::demo::compare_command(&files)
+            ))?;
+            // The demo ran as designed whatever the verdicts: exit 0.
+            Ok(ExitCode::SUCCESS)
+        }
+        Command::Merge(m) => {
+            let outputs: Vec<&std::path::Path> = [&m.json, &m.html].into_iter().flatten().map(|p| p.as_path()).collect();
+            let inputs: Vec<&std::path::Path> = m.partials.iter().chain(&m.tokenizer).map(|p| p.as_path()).collect();
+            klgauge::output::check_destinations(&outputs, &inputs)?;
+            let args = MergeArgs {
+                partials: m.partials,
+                json: m.json,
+                html: m.html,
+                top: m.top,
+                tokenizer: m.tokenizer,
+                bits: m.bits,
+                gates: GateLimits { max_kl_mean: m.max_kl_mean, max_kl_p99: m.max_kl_p99, min_top1: m.min_top1 },
+            };
+            let outcome = merge(&args)?;
             print(&outcome.report)?;
             Ok(ExitCode::from(if outcome.gate_failed { 1 } else { 0 }))
         }
@@ -138,11 +306,13 @@ fn main() -> ExitCode {
             return ExitCode::from(code);
         }
     };
+    install_interrupt_handler();
     match run(cli) {
         Ok(code) => code,
         Err(e) => {
             klgauge::output::remove_temps();
-            eprintln!("klgauge: error: {e}");
+            // Not eprintln!: it panics when stderr is closed.
+            let _ = writeln!(std::io::stderr(), "klgauge: error: {e}");
             ExitCode::from(e.exit_code() as u8)
         }
     }

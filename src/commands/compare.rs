@@ -78,7 +78,7 @@ pub fn compare(args: &CompareArgs) -> Result<Outcome> {
         return Err(Error::usage("compare needs a reference and at least one candidate"));
     }
     if args.shard.is_some() || args.partial.is_some() {
-        return Err(Error::usage("--shard and --partial are not available in this build"));
+        return Err(Error::usage("--shard and --partial write a partial result: use `compare_shard`"));
     }
     // Open and validate everything before any computation or output.
     let reference = LogitFile::open(&args.reference)?;
@@ -140,8 +140,123 @@ pub fn write_reports(report: &Report, json: Option<&PathBuf>, html: Option<&Path
     if let Some(p) = json {
         write_atomic(p, |w| report::json::Json.write(report, w))?;
     }
-    if let Some(_p) = html {
-        return Err(Error::usage("--html is not available in this build"));
+    if let Some(p) = html {
+        write_atomic(p, |w| report::html::Html.write(report, w))?;
     }
     Ok(())
+}
+
+/// What a shard run did, for its terminal summary.
+pub struct ShardOutcome {
+    pub partial: PathBuf,
+    pub index: usize,
+    pub count: usize,
+    pub prompts: std::ops::Range<usize>,
+    pub rows: std::ops::Range<usize>,
+    pub total_prompts: usize,
+    pub total_rows: usize,
+    /// Per candidate: (counted positions, skipped rows).
+    pub counted: Vec<(u64, u64)>,
+}
+
+impl ShardOutcome {
+    pub fn summary(&self) -> String {
+        let mut s = format!(
+            "shard {}/{}: prompts {}..{} of {}, rows {}..{} of {}\n",
+            self.index, self.count, self.prompts.start, self.prompts.end, self.total_prompts, self.rows.start, self.rows.end, self.total_rows
+        );
+        for (k, (n, skipped)) in self.counted.iter().enumerate() {
+            s.push_str(&format!("  candidate {}: {n} positions counted, {skipped} rows skipped\n", k + 1));
+        }
+        s.push_str(&format!(
+            "partial result written to {}; combine all {} with `klgauge merge`\n",
+            self.partial.display(),
+            self.count
+        ));
+        s
+    }
+}
+
+/// `compare --shard I/N --partial FILE`: the rows of one shard, written as a
+/// partial result for `merge`. Without `--shard` the whole input is shard 0/1.
+pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
+    if args.candidates.is_empty() {
+        return Err(Error::usage("compare needs a reference and at least one candidate"));
+    }
+    let partial_path = args
+        .partial
+        .clone()
+        .ok_or_else(|| Error::usage("--shard needs --partial FILE, where the shard writes its partial result"))?;
+    let (index, count) = args.shard.unwrap_or((0, 1));
+    if count == 0 || index >= count {
+        return Err(Error::usage(format!("--shard {index}/{count}: expected I/N with 0 <= I < N")));
+    }
+    if args.json.is_some() || args.html.is_some() {
+        return Err(Error::usage("a shard run writes only its partial result (--partial); make the JSON and HTML reports with `klgauge merge`"));
+    }
+    let g = &args.gates;
+    if g.max_kl_mean.is_some() || g.max_kl_p99.is_some() || g.min_top1.is_some() {
+        return Err(Error::usage("gates judge the whole run: give --max-kl-mean, --max-kl-p99 and --min-top1 to `klgauge merge`, not to a shard"));
+    }
+    let reference = LogitFile::open(&args.reference)?;
+    let candidates = args.candidates.iter().map(|p| LogitFile::open(p)).collect::<Result<Vec<_>>>()?;
+    let cols = engine::compared_columns(&reference, &candidates, args.vocab)?;
+    let targets = engine::check_alignment(&reference, &candidates, cols)?;
+    let (prompts, rows) = crate::partial::shard_range(&reference, index, count);
+    let mut samples = args.samples.clone();
+    samples.sort_unstable();
+    samples.dedup();
+    samples.retain(|&n| n > 0);
+    let opts = EngineOptions {
+        vocab: args.vocab,
+        js: args.js,
+        samples: samples.clone(),
+        seed: args.seed,
+        top: args.top,
+        rows: Some(rows.clone()),
+        block_rows: 64,
+        progress: args.progress,
+    };
+    let result = with_threads(args.threads, || -> Result<engine::EngineResult> {
+        match &args.csv {
+            Some(p) => {
+                let mut sink = CsvSink::create(p, candidates.len(), args.js, args.bits)?;
+                let r = engine::run(&reference, &candidates, &opts, &mut sink)?;
+                sink.finish()?;
+                Ok(r)
+            }
+            None => engine::run(&reference, &candidates, &opts, &mut NoSink),
+        }
+    })??;
+    let counted = result.candidates.iter().map(|c| (c.positions, c.skipped_rows)).collect();
+    let run = crate::partial::ShardRun {
+        reference: &reference,
+        candidates: &candidates,
+        cols,
+        targets,
+        settings: crate::partial::SettingsRecord {
+            compared_vocab: cols as u64,
+            vocab: args.vocab.map(|v| v as u64),
+            samples,
+            seed: args.seed,
+            top: args.top,
+            js: args.js,
+            bits: args.bits,
+            sketch_relative_accuracy: crate::sketch::DEFAULT_RELATIVE_ACCURACY,
+        },
+        index,
+        count,
+    };
+    let partial = crate::partial::from_run(&run, result);
+    crate::partial::write(&partial, &partial_path)?;
+    Ok(ShardOutcome {
+        partial: partial_path,
+        index,
+        count,
+        prompts,
+        rows,
+        total_prompts: reference.prompts(),
+        total_rows: reference.rows,
+        counted,
+    })
 }

@@ -2,3 +2,6 @@
 //! only parses arguments, calls these and prints.
 
 pub mod compare;
+pub mod estimate;
+pub mod inspect;
+pub mod merge;

@@ -10,6 +10,7 @@ use crate::error::{Error, Result};
 use memmap2::Mmap;
 use safetensors::{Dtype, SafeTensors};
 use std::collections::BTreeMap;
+use safetensors::tensor::TensorInfo;
 use std::fs::File;
 use std::path::{Path, PathBuf};
 
@@ -33,12 +34,20 @@ pub struct MappedFile {
 
 impl MappedFile {
     pub fn open(path: &Path) -> Result<MappedFile> {
-        let file = File::open(path).map_err(|e| Error::input(path, format!("cannot open: {e}")))?;
-        let meta = file.metadata().map_err(|e| Error::input(path, format!("cannot stat: {e}")))?;
+        // Stat before opening: opening a FIFO would block until a writer comes,
+        // and a device has no fixed length to map.
+        let meta = std::fs::metadata(path).map_err(|e| Error::input(path, format!("cannot open: {e}")))?;
         if meta.is_dir() {
             return Err(Error::input(path, "is a directory, expected a safetensors file"));
         }
-        let len = meta.len();
+        if !meta.is_file() {
+            return Err(Error::input(path, "is not a regular file (a pipe or device?), expected a safetensors file"));
+        }
+        let file = File::open(path).map_err(|e| Error::input(path, format!("cannot open: {e}")))?;
+        let len = file.metadata().map_err(|e| Error::input(path, format!("cannot stat: {e}")))?.len();
+        if len == 0 {
+            return Err(Error::input(path, "empty file (0 bytes), expected a safetensors file"));
+        }
         if len < 8 {
             return Err(Error::input(
                 path,
@@ -58,11 +67,22 @@ impl MappedFile {
                 ),
             ));
         }
+        if declared < 2 {
+            return Err(Error::input(path, format!("not a safetensors file: header length {declared}, too short for a JSON header")));
+        }
+        let header = &map[8..8 + declared as usize];
+        let data_len = map.len() - 8 - declared as usize;
         let (header_len, metadata) = SafeTensors::read_metadata(&map).map_err(|e| {
+            use safetensors::SafeTensorError as E;
             let why = match e {
-                safetensors::SafeTensorError::MetadataIncompleteBuffer => {
-                    "truncated or padded: the tensor data does not end where the file ends".to_string()
-                }
+                E::InvalidHeader(_) => "invalid safetensors header: not UTF-8 text".to_string(),
+                E::InvalidHeaderDeserialization(j) => explain_json(header, &j.to_string()),
+                E::HeaderTooLarge => format!("invalid safetensors header: {declared} bytes, more than the format allows"),
+                E::MetadataIncompleteBuffer
+                | E::TensorInvalidInfo
+                | E::InvalidOffset(_)
+                | E::ValidationOverflow
+                | E::MisalignedSlice => explain_layout(header, data_len).unwrap_or_else(|| format!("invalid safetensors header: {e}")),
                 other => format!("invalid safetensors header: {other}"),
             };
             Error::input(path, why)
@@ -105,7 +125,16 @@ impl MappedFile {
     /// Reads a U8 or BOOL tensor as flags (non-zero = true).
     pub fn read_flags(&self, name: &str, t: &TensorEntry) -> Result<Vec<bool>> {
         match t.dtype {
-            Dtype::U8 | Dtype::BOOL => Ok(self.bytes(t).iter().map(|&b| b != 0).collect()),
+            Dtype::U8 => Ok(self.bytes(t).iter().map(|&b| b != 0).collect()),
+            // A BOOL byte other than 0 or 1 is not a value the format can hold:
+            // the tensor is corrupt or was written with the wrong dtype.
+            Dtype::BOOL => match self.bytes(t).iter().position(|&b| b > 1) {
+                Some(i) => Err(Error::input(
+                    &self.path,
+                    format!("tensor `{name}` is BOOL but holds byte {} at element {i}; expected 0 or 1", self.bytes(t)[i]),
+                )),
+                None => Ok(self.bytes(t).iter().map(|&b| b != 0).collect()),
+            },
             d => Err(Error::input(&self.path, format!("tensor `{name}` has dtype {d}, expected U8 or BOOL"))),
         }
     }
@@ -117,4 +146,76 @@ impl MappedFile {
             d => Err(Error::input(&self.path, format!("tensor `{name}` has dtype {d}, expected F32"))),
         }
     }
+}
+
+/// Words for a header that the crate could not deserialize: not JSON at all,
+/// JSON of the wrong kind, or one malformed entry (serde's own detail, cut
+/// before its list of every known dtype, follows in parentheses).
+fn explain_json(header: &[u8], detail: &str) -> String {
+    let detail = detail.split(", expected one of").next().unwrap_or(detail);
+    match serde_json::from_slice::<serde_json::Value>(header) {
+        Err(_) => format!("invalid safetensors header: not JSON ({detail})"),
+        Ok(serde_json::Value::Object(_)) => format!("invalid safetensors header: a malformed entry ({detail})"),
+        Ok(_) => "invalid safetensors header: JSON, but not an object of named tensors".to_string(),
+    }
+}
+
+/// Says which tensor breaks the layout and how, after the `safetensors`
+/// crate refused it with a generic reason. `data_len` is the number of bytes
+/// after the header. Returns None when the header cannot be re-read (the
+/// caller then keeps the crate's own wording).
+pub(crate) fn explain_layout(header: &[u8], data_len: usize) -> Option<String> {
+    let table: BTreeMap<String, serde_json::Value> = serde_json::from_slice(header).ok()?;
+    let mut tensors: Vec<(String, TensorInfo)> = Vec::new();
+    for (name, v) in table {
+        if name == "__metadata__" {
+            continue;
+        }
+        tensors.push((name, serde_json::from_value(v).ok()?));
+    }
+    tensors.sort_by_key(|(_, t)| t.data_offsets);
+    let mut end = 0usize;
+    let mut prev: Option<&str> = None;
+    for (name, t) in &tensors {
+        let (s, e) = t.data_offsets;
+        if e < s {
+            return Some(format!("tensor `{name}` has data offsets [{s}, {e}) that run backwards"));
+        }
+        if s < end {
+            let other = prev.unwrap_or("?");
+            return Some(format!("tensor `{name}` data [{s}, {e}) overlaps tensor `{other}` (which ends at {end})"));
+        }
+        if s > end {
+            return Some(format!("tensor `{name}` data starts at {s}, leaving a gap of {} bytes before it", s - end));
+        }
+        let elements = t.shape.iter().try_fold(1usize, |a, &d| a.checked_mul(d));
+        let bits = elements.and_then(|n| n.checked_mul(t.dtype.bitsize()));
+        match bits {
+            None => return Some(format!("tensor `{name}` declares shape {:?}, whose size overflows", t.shape)),
+            Some(b) if b % 8 != 0 => {
+                return Some(format!("tensor `{name}` of {} with shape {:?} does not fill whole bytes", t.dtype, t.shape))
+            }
+            Some(b) if b / 8 != e - s => {
+                return Some(format!(
+                    "tensor `{name}` has shape {:?} of {}, which needs {} bytes, but its data offsets span {}",
+                    t.shape,
+                    t.dtype,
+                    b / 8,
+                    e - s
+                ))
+            }
+            _ => {}
+        }
+        end = e;
+        prev = Some(name);
+    }
+    if end > data_len {
+        return Some(format!(
+            "truncated: the header places tensor data up to byte {end} after it, but only {data_len} bytes follow"
+        ));
+    }
+    if end < data_len {
+        return Some(format!("{} bytes after the end of the last tensor's data (padded or concatenated file?)", data_len - end));
+    }
+    None
 }

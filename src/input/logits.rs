@@ -60,6 +60,17 @@ pub enum Grouping {
     PerRow,
 }
 
+impl Grouping {
+    /// Words for messages: "by sequences of 128 rows", "by `prompt_offsets`", ...
+    pub fn describe(&self) -> String {
+        match self {
+            Grouping::Sequences { length } => format!("by sequences of {length} rows (3-D `logits`)"),
+            Grouping::Offsets => "by `prompt_offsets`".into(),
+            Grouping::PerRow => "not at all (2-D `logits` without `prompt_offsets`)".into(),
+        }
+    }
+}
+
 #[derive(Debug)]
 struct Shard {
     file: MappedFile,
@@ -140,7 +151,13 @@ impl LogitFile {
             };
             let (rows, v, g) = match logits.shape.as_slice() {
                 [r, v] => (*r, *v, Grouping::PerRow),
-                [s, l, v] => (s * l, *v, Grouping::Sequences { length: *l }),
+                // The crate's byte-count check multiplies the dimensions from
+                // the left with overflow checks, so this cannot fail today; the
+                // reader does not rely on that detail.
+                [s, l, v] => match s.checked_mul(*l) {
+                    Some(r) => (r, *v, Grouping::Sequences { length: *l }),
+                    None => return Err(err(format!("`logits` shape {:?} has more rows than can be addressed", logits.shape))),
+                },
                 s => return Err(err(format!("`logits` has rank {} (shape {s:?}), expected [rows, vocab] or [sequences, length, vocab]", s.len()))),
             };
             if v == 0 {
@@ -211,7 +228,7 @@ impl LogitFile {
             match &grouping {
                 None => grouping = Some(g.clone()),
                 Some(g0) if *g0 != g => {
-                    return Err(err(format!("shard groups prompts as {:?}, the first shard as {:?}", g, g0)));
+                    return Err(err(format!("shard groups prompts {}, the first shard {}", g.describe(), g0.describe())));
                 }
                 _ => {}
             }

@@ -3,5 +3,7 @@
 
 pub mod file;
 pub mod logits;
+pub mod logprobs;
 
 pub use logits::{Grouping, LogitFile, StoredDtype};
+pub use logprobs::LogprobFile;

@@ -550,9 +550,12 @@ fn pair_step<const L: u8>(x: &F, y: &F, er: &F, ec: &F, k: &PairConsts, f: &mut 
             let d2 = d[j] * d[j];
             let ev = ma(d2, ma(d2, ma(d2, C[6], C[4]), C[2]), C[0]);
             let od = d[j] * ma(d2, ma(d2, C[5], C[3]), C[1]);
-            f[j] = ma(p * d2, ev + od, f[j]);
+            let gd = d2 * (ev + od);
+            f[j] = ma(p, gd, f[j]);
             b[j] = ma(q * d2, ev - od, b[j]);
-            t[j] += (p - q).abs();
+            // |p - q| = p |e^-d - 1| = p |g(d) - d|, without subtracting two
+            // separately rounded probabilities.
+            t[j] = ma(p, (gd - d[j]).abs(), t[j]);
         }
         return;
     }
@@ -566,16 +569,20 @@ fn pair_step<const L: u8>(x: &F, y: &F, er: &F, ec: &F, k: &PairConsts, f: &mut 
         let od = d * ma(d2, ma(d2, C[5], C[3]), C[1]);
         let pq = p - q;
         let small = d.abs() < SERIES_BELOW;
+        let gd = d2 * (ev + od);
         // Direct forms: p d + (q - p) and (p - q) - q d.
-        let fwd = if small { (p * d2) * (ev + od) } else { ma(p, d, -pq) };
+        let fwd = if small { p * gd } else { ma(p, d, -pq) };
         let rev = if small { (q * d2) * (ev - od) } else { ma(-q, d, pq) };
+        // Close columns: |p - q| = p |g(d) - d| (see the series-only path).
+        let tv = if small { p * (gd - d).abs() } else { pq.abs() };
         // Where one side has no mass the sum picks up the other side's mass
         // (SPEC: "+ candidate mass where p is zero"); both zero gives 0.
         let fwd = if p == 0.0 { q } else { fwd };
         let rev = if q == 0.0 { p } else { rev };
+        let tv = if p == 0.0 || q == 0.0 { pq.abs() } else { tv };
         f[j] += fwd;
         b[j] += rev;
-        t[j] += pq.abs();
+        t[j] += tv;
     }
 }
 

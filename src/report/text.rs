@@ -1,6 +1,6 @@
 //! The terminal summary: a short aligned table per candidate.
 
-use super::{CandidateReport, Format, Report};
+use super::{CandidateReport, Format, Report, TokenProb, WorstPositionReport};
 use crate::stats::Aggregate;
 use std::io::Write;
 
@@ -29,12 +29,44 @@ fn row(out: &mut dyn Write, label: &str, value: String) -> std::io::Result<()> {
     writeln!(out, "  {label:<22} {value}")
 }
 
+/// Worst positions and prompts printed in the terminal; the files list `--top`.
+const TERMINAL_ROWS: usize = 8;
+
+/// A token for the terminal: its text in quotes, or its id.
+fn token(id: u32, text: Option<&str>) -> String {
+    match text {
+        Some(t) => format!("{t:?}"),
+        None => format!("#{id}"),
+    }
+}
+
+fn tops(t: &[TokenProb], k: usize) -> String {
+    t.iter().take(k).map(|x| format!("{} {:.2}", token(x.id, x.text.as_deref()), x.p)).collect::<Vec<_>>().join(", ")
+}
+
+fn worst_position(out: &mut dyn Write, w: &WorstPositionReport) -> std::io::Result<()> {
+    let target = match w.target {
+        Some(t) => format!("  next {}", token(t as u32, w.target_text.as_deref())),
+        None => String::new(),
+    };
+    let context = match &w.context {
+        Some(c) if !c.is_empty() => format!("  after {:?}", c.concat()),
+        _ => String::new(),
+    };
+    writeln!(out, "    {:>9}  row {} (prompt {} position {}){context}{target}", sci(w.kl), w.row, w.prompt, w.position)?;
+    writeln!(out, "               reference: {}", tops(&w.ref_top, 3))?;
+    writeln!(out, "               candidate: {}", tops(&w.cand_top, 3))
+}
+
 fn candidate(out: &mut dyn Write, i: usize, c: &CandidateReport, units: &str) -> std::io::Result<()> {
-    let name = c.model.as_deref().map(|m| format!("  \"{m}\"")).unwrap_or_default();
-    writeln!(out, "\ncandidate {}: {} ({}){name}", i + 1, c.path, c.dtype)?;
+    writeln!(out, "\ncandidate {}: {}  ({}, {})", i + 1, c.name, c.path, c.dtype)?;
     row(out, "positions", format!("{}", c.positions))?;
     row(out, "kl mean", format!("{} {units}   {}", sci(c.kl.mean), interval(&c.kl)))?;
-    row(out, "kl p50 / p90 / p99", format!("{} / {} / {}", sci(c.kl.p50), sci(c.kl.p90), sci(c.kl.p99)))?;
+    let p99 = match c.kl_p99_ci95 {
+        Some([a, b]) => format!("   (p99 95% interval {} .. {})", sci(a), sci(b)),
+        None => String::new(),
+    };
+    row(out, "kl p50 / p90 / p99", format!("{} / {} / {}{p99}", sci(c.kl.p50), sci(c.kl.p90), sci(c.kl.p99)))?;
     row(out, "kl p99.9 / max", format!("{} / {}", sci(c.kl.p999), sci(c.kl.max)))?;
     row(out, "reverse kl mean", format!("{} {units}", sci(c.kl_reverse.mean)))?;
     if let Some(js) = &c.js {
@@ -69,9 +101,27 @@ fn candidate(out: &mut dyn Write, i: usize, c: &CandidateReport, units: &str) ->
             )?;
         }
     }
+    if !c.worst_positions.is_empty() {
+        let n = c.worst_positions.len();
+        let more = if n > TERMINAL_ROWS { format!(" ({TERMINAL_ROWS} of {n} shown; all in --json and --html)") } else { String::new() };
+        writeln!(out, "  worst positions, highest kl first{more}")?;
+        for w in c.worst_positions.iter().take(TERMINAL_ROWS) {
+            worst_position(out, w)?;
+        }
+    }
+    if !c.worst_prompts.is_empty() {
+        writeln!(out, "  worst prompts, highest mean kl first")?;
+        for p in c.worst_prompts.iter().take(TERMINAL_ROWS.min(5)) {
+            writeln!(out, "    prompt {:<6} {:>6} positions  mean {}  max {}", p.prompt, p.positions, sci(p.kl_mean), sci(p.kl_max))?;
+        }
+    }
     for g in &c.gates {
         let verdict = if g.pass { "pass" } else { "FAIL" };
-        let unsure = if g.uncertain { "  (uncertain: the limit lies inside the 95% interval)" } else { "" };
+        let unsure = match (g.uncertain, g.interval) {
+            (true, Some([a, b])) => format!("  (uncertain: the limit lies inside the 95% interval {} .. {})", sci(a), sci(b)),
+            (true, None) => "  (uncertain: the limit lies inside the 95% interval)".into(),
+            _ => String::new(),
+        };
         writeln!(out, "  gate {:<18} {verdict}  value {} limit {}{unsure}", g.name, sci(g.value), sci(g.limit))?;
     }
     for w in &c.warnings {
@@ -91,11 +141,47 @@ impl Format for Text {
         for (i, c) in r.candidates.iter().enumerate() {
             candidate(out, i, c, r.units)?;
         }
+        if r.ranking.len() > 1 {
+            writeln!(out, "\nranking by mean kl (lowest first)")?;
+            let w = r.ranking.iter().map(|e| e.name.chars().count()).max().unwrap_or(4).max(4);
+            writeln!(out, "  {:>4}  {:<w$}  {:>10}  {:>10}  {:>8}  {:<8}  next below", "rank", "name", "kl mean", "kl p99", "top-1", "gates")?;
+            for e in &r.ranking {
+                let next = match e.vs_next {
+                    Some("lower") => "clearly lower",
+                    Some(_) => "not distinguishable",
+                    None => "",
+                };
+                writeln!(
+                    out,
+                    "  {:>4}  {:<w$}  {:>10}  {:>10}  {:>7.2}%  {:<8}  {next}",
+                    e.rank,
+                    e.name,
+                    sci(e.kl_mean),
+                    sci(e.kl_p99),
+                    100.0 * e.top1_agree,
+                    e.gates
+                )?;
+            }
+        }
         if !r.comparisons.is_empty() {
-            writeln!(out, "\npaired differences of mean kl (same positions)")?;
+            writeln!(out, "\npaired differences of mean kl, on the positions both candidates have")?;
             for p in &r.comparisons {
                 let ci = p.ci95.map(|[a, b]| format!("{} .. {}", sci(a), sci(b))).unwrap_or_else(|| "-".into());
-                writeln!(out, "  {} - {}: {} {}  95% {}  -> {}", p.a + 1, p.b + 1, sci(p.kl_mean_diff), r.units, ci, p.verdict)?;
+                let verdict = match p.verdict {
+                    "a lower" => format!("{} is lower", p.a_name),
+                    "b lower" => format!("{} is lower", p.b_name),
+                    _ => "not distinguishable at 95%".into(),
+                };
+                writeln!(
+                    out,
+                    "  {} minus {}: {} {}  95% interval {}  ({} positions) -> {verdict}",
+                    p.a_name,
+                    p.b_name,
+                    sci(p.kl_mean_diff),
+                    r.units,
+                    ci,
+                    p.positions
+                )?;
             }
         }
         writeln!(out, "\nexact pass: {:.2} s, {:.0} rows/s", r.timing.exact_pass_seconds, r.timing.rows_per_second)?;

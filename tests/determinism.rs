@@ -1,0 +1,182 @@
+//! Determinism: the same inputs and seed give byte-identical reports whatever
+//! the thread count, run after run, and however the rows are split into
+//! shards. Only the timing fields (`timing` and
+//! `candidates[].sampling_cost.exact_pass_seconds`) may differ.
+//!
+//! The input spans several engine blocks (64 rows each) with a ragged last
+//! block, three candidates in three dtypes, uneven prompts, masked rows, rows
+//! without a target, rows with NaN (skipped) and an infinite kl, so every
+//! reduction path (per-prompt sums, percentiles, worst lists, estimators,
+//! skipped lists, paired comparisons) is exercised.
+
+mod common;
+
+use common::*;
+use safetensors::tensor::Dtype;
+use std::path::{Path, PathBuf};
+
+fn s(p: &Path) -> &str {
+    p.to_str().unwrap()
+}
+
+const ROWS: usize = 64 * 7 + 37;
+const VOCAB: usize = 700;
+
+struct Inputs {
+    dir: tempdir::Dir,
+    reference: PathBuf,
+    candidates: Vec<PathBuf>,
+    x: Vec<f32>,
+    targets: Vec<i64>,
+    offsets: Vec<i64>,
+    mask: Vec<u8>,
+}
+
+fn inputs() -> Inputs {
+    let dir = tempdir::Dir::new();
+    let mut r = Rng(2024);
+    let x: Vec<f32> = (0..ROWS * VOCAB).map(|_| (2.5 * r.normal()) as f32).collect();
+    let targets: Vec<i64> = (0..ROWS).map(|i| if i % 17 == 5 { -1 } else { (r.uniform() * VOCAB as f64) as i64 }).collect();
+    // Uneven prompts: lengths cycle through 1..=40.
+    let mut offsets = vec![0i64];
+    let mut len = 1;
+    while (*offsets.last().unwrap() as usize) < ROWS {
+        let next = (*offsets.last().unwrap() as usize + len).min(ROWS);
+        offsets.push(next as i64);
+        len = len % 40 + 1;
+    }
+    let mask: Vec<u8> = (0..ROWS).map(|i| (i % 23 != 11) as u8).collect();
+    let reference = dir.path().join("ref.safetensors");
+    write(
+        &reference,
+        vec![
+            ("logits", floats(Dtype::F32, &[ROWS, VOCAB], &x)),
+            ("targets", i64s(&[ROWS], &targets)),
+            ("prompt_offsets", i64s(&[offsets.len()], &offsets)),
+            ("mask", u8s(&[ROWS], &mask)),
+        ],
+        None,
+    );
+    let mut candidates = Vec::new();
+    for (k, (dtype, noise)) in [(Dtype::F32, 0.05), (Dtype::BF16, 0.2), (Dtype::F16, 0.6)].into_iter().enumerate() {
+        let mut y: Vec<f32> = x.iter().map(|&v| (v as f64 + noise * r.normal()) as f32).collect();
+        if k == 2 {
+            // Value faults: two NaN rows and one zero-probability token.
+            y[3 * VOCAB + 10] = f32::NAN;
+            y[200 * VOCAB + 699] = f32::NAN;
+            y[130 * VOCAB + 7] = f32::NEG_INFINITY;
+        }
+        let p = dir.path().join(format!("cand{k}.safetensors"));
+        write(&p, vec![("logits", floats(dtype, &[ROWS, VOCAB], &y)), ("targets", i64s(&[ROWS], &targets))], None);
+        candidates.push(p);
+    }
+    Inputs { dir, reference, candidates, x, targets, offsets, mask }
+}
+
+/// Sets the value of every timing field to 0, leaving every other byte alone.
+fn mask_timing(json: &str) -> String {
+    json.lines()
+        .map(|l| {
+            let t = l.trim_start();
+            if t.starts_with("\"exact_pass_seconds\":") || t.starts_with("\"rows_per_second\":") {
+                let key_end = l.find(':').unwrap();
+                let comma = if l.trim_end().ends_with(',') { "," } else { "" };
+                format!("{} 0{comma}", &l[..=key_end])
+            } else {
+                l.to_string()
+            }
+        })
+        .collect::<Vec<_>>()
+        .join("\n")
+}
+
+/// The text report without its timing line.
+fn mask_text(text: &[u8]) -> String {
+    String::from_utf8_lossy(text).lines().filter(|l| !l.starts_with("exact pass:")).collect::<Vec<_>>().join("\n")
+}
+
+struct Run {
+    json: String,
+    csv: Vec<u8>,
+    text: String,
+}
+
+fn run(inp: &Inputs, reference: &Path, candidates: &[PathBuf], threads: usize, seed: u64, tag: &str) -> Run {
+    let (j, c) = (inp.dir.path().join(format!("{tag}.json")), inp.dir.path().join(format!("{tag}.csv")));
+    let mut args: Vec<String> = vec!["compare".into(), s(reference).into()];
+    args.extend(candidates.iter().map(|p| s(p).to_string()));
+    let seed = seed.to_string();
+    let threads = threads.to_string();
+    args.extend(
+        ["--json", s(&j), "--csv", s(&c), "--js", "--samples", "1,4,16", "--seed", &seed, "--threads", &threads, "--top", "12"]
+            .map(String::from),
+    );
+    let argv: Vec<&str> = args.iter().map(|a| a.as_str()).collect();
+    let out = klgauge(&argv);
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    Run { json: mask_timing(&std::fs::read_to_string(&j).unwrap()), csv: std::fs::read(&c).unwrap(), text: mask_text(&out.stdout) }
+}
+
+#[test]
+fn one_and_two_threads_give_byte_identical_reports() {
+    let inp = inputs();
+    let a = run(&inp, &inp.reference, &inp.candidates, 1, 7, "t1");
+    let b = run(&inp, &inp.reference, &inp.candidates, 2, 7, "t2");
+    let c = run(&inp, &inp.reference, &inp.candidates, 2, 7, "t2-again");
+    // The input did exercise what it was built for.
+    let v: serde_json::Value = serde_json::from_str(&a.json).unwrap();
+    assert_eq!(v["candidates"].as_array().unwrap().len(), 3);
+    assert_eq!(v["candidates"][2]["skipped_rows"], 2);
+    assert_eq!(v["candidates"][2]["infinite_kl"], 1);
+    assert!(v["reference"]["prompts"].as_u64().unwrap() > 20);
+    assert!(v["timing"]["exact_pass_seconds"].is_number());
+    assert_eq!(a.json, b.json, "JSON differs between 1 and 2 threads");
+    assert_eq!(b.json, c.json, "JSON differs between two identical runs");
+    assert!(a.csv == b.csv && b.csv == c.csv, "CSV differs");
+    assert_eq!(a.text, b.text, "terminal report differs");
+    assert!(a.csv.len() > 3 * 400 * 50, "CSV unexpectedly short");
+}
+
+#[test]
+fn the_seed_moves_only_the_estimators() {
+    let inp = inputs();
+    let a = run(&inp, &inp.reference, &inp.candidates[..1], 2, 1, "s1");
+    let b = run(&inp, &inp.reference, &inp.candidates[..1], 2, 2, "s2");
+    let (mut va, mut vb): (serde_json::Value, serde_json::Value) = (serde_json::from_str(&a.json).unwrap(), serde_json::from_str(&b.json).unwrap());
+    assert_eq!(a.csv, b.csv, "per-position metrics do not depend on the seed");
+    assert_ne!(va["candidates"][0]["estimators"], vb["candidates"][0]["estimators"]);
+    for v in [&mut va, &mut vb] {
+        v["candidates"][0].as_object_mut().unwrap().remove("estimators");
+        v["settings"].as_object_mut().unwrap().remove("seed");
+    }
+    assert_eq!(va, vb);
+}
+
+#[test]
+fn shards_in_a_directory_give_the_same_report() {
+    let inp = inputs();
+    // The reference cut into three shards at prompt boundaries, with local offsets.
+    let dir = inp.dir.path().join("ref-shards");
+    std::fs::create_dir_all(&dir).unwrap();
+    let cuts = [0usize, inp.offsets.len() / 3, 2 * inp.offsets.len() / 3, inp.offsets.len() - 1];
+    for w in 0..3 {
+        let (p0, p1) = (cuts[w], cuts[w + 1]);
+        let (r0, r1) = (inp.offsets[p0] as usize, inp.offsets[p1] as usize);
+        let local: Vec<i64> = inp.offsets[p0..=p1].iter().map(|&o| o - r0 as i64).collect();
+        write(
+            &dir.join(format!("part-{w:03}.safetensors")),
+            vec![
+                ("logits", floats(Dtype::F32, &[r1 - r0, VOCAB], &inp.x[r0 * VOCAB..r1 * VOCAB])),
+                ("targets", i64s(&[r1 - r0], &inp.targets[r0..r1])),
+                ("prompt_offsets", i64s(&[local.len()], &local)),
+                ("mask", u8s(&[r1 - r0], &inp.mask[r0..r1])),
+            ],
+            None,
+        );
+    }
+    let a = run(&inp, &inp.reference, &inp.candidates, 2, 3, "whole");
+    let b = run(&inp, &dir, &inp.candidates, 1, 3, "sharded");
+    assert_eq!(a.csv, b.csv);
+    let (whole, sharded) = (s(&inp.reference), s(&dir));
+    assert_eq!(a.json.replace(&format!("\"{whole}\""), "\"REF\""), b.json.replace(&format!("\"{sharded}\""), "\"REF\""));
+}
