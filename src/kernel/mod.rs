@@ -530,6 +530,9 @@ struct PairConsts {
     inv_c: f32,
     /// lse_c - lse_r, so d = (x - y) + cst.
     cst: f32,
+    /// Offsets subtracted from each row before differencing (0 or the row max).
+    sx: f32,
+    sy: f32,
 }
 
 /// Adds 16 columns' contributions to KL(p||q), KL(q||p) and |p - q|.
@@ -539,7 +542,7 @@ fn pair_step<const L: u8>(x: &F, y: &F, er: &F, ec: &F, k: &PairConsts, f: &mut 
     let ma = mul_add::<L>;
     let mut d = [0f32; W];
     for j in 0..W {
-        d[j] = (x[j] - y[j]) + k.cst;
+        d[j] = ((x[j] - k.sx) - (y[j] - k.sy)) + k.cst;
     }
     if all_abs_below::<L>(&d, SERIES_BELOW) {
         // Every column of the chunk in the series range, the common case for
@@ -603,7 +606,18 @@ fn compare_impl<const L: u8>(x: &[f32], y: &[f32], er: &[f32], ec: &[f32], r: &R
     assert!(y.len() == n && er.len() >= n && ec.len() >= n, "compare: row lengths differ");
     // d = (x - lse_r) - (y - lse_c) = (x - y) + (lse_c - lse_r); the constant in f64.
     // Its rounding is a uniform shift of d, to which the sum is insensitive to first order.
-    let k = PairConsts { inv_r: (1.0 / r.sum) as f32, inv_c: (1.0 / c.sum) as f32, cst: (c.lse - r.lse) as f32 };
+    // When both rows sit at about the same level, x - y is exact for close
+    // logits and d = (x - y) + (lse_c - lse_r). When their levels differ (a
+    // raw dump against a centered one, or logits offset by 1e7), x - y would
+    // round away the difference between the models; then each row is first
+    // taken relative to its own maximum, which is exact for every column that
+    // carries mass, and the constant becomes the difference of log sums.
+    let (sx, sy, cst) = if (r.max - c.max).abs() <= 1.0 {
+        (0.0, 0.0, (c.lse - r.lse) as f32)
+    } else {
+        (r.max, c.max, ((c.lse - c.max as f64) - (r.lse - r.max as f64)) as f32)
+    };
+    let k = PairConsts { inv_r: (1.0 / r.sum) as f32, inv_c: (1.0 / c.sum) as f32, cst, sx, sy };
     let mut acc = [[0f64; W]; 5];
     let blocks = x
         .chunks(PAIR_BLOCK)

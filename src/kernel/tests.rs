@@ -502,3 +502,22 @@ fn total_variation_of_close_rows_keeps_relative_precision() {
         }
     }
 }
+
+/// A raw dump (logits near 25) against a centered one (row max subtracted):
+/// the same distribution up to the small perturbation, whatever the levels.
+/// Reference: f64 log-softmax by max subtraction (common practice).
+#[test]
+fn rows_at_different_levels_compare_exactly() {
+    let mut s = 31u64;
+    for &(eps, lift) in &[(1e-3f64, 0.0f64), (1e-2, 0.0), (1e-3, 1.0e4), (3e-2, -500.0)] {
+        let n = 20_000;
+        let x: Vec<f32> = (0..n).map(|_| (25.0 + 3.0 * normal(&mut s)) as f32).collect();
+        let mx = x.iter().cloned().fold(f32::NEG_INFINITY, f32::max) as f64;
+        let y: Vec<f32> = x.iter().map(|&v| (v as f64 - mx + lift + eps * normal(&mut s)) as f32).collect();
+        let (_, _, m) = run(&x, &y);
+        let (kl, kr, tv, _, _) = reference(&x, &y);
+        assert!(close(m.kl, kl, 1e-4, 1e-9), "eps={eps} lift={lift}: kl {} vs {kl}", m.kl);
+        assert!(close(m.kl_reverse, kr, 1e-3, 1e-9), "kl_reverse {} vs {kr}", m.kl_reverse);
+        assert!(close(m.tv, tv, 1e-3, 1e-9), "tv {} vs {tv}", m.tv);
+    }
+}
