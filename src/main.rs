@@ -82,15 +82,8 @@ struct MergeCli {
     /// Report divergences and entropies in bits instead of nats
     #[arg(long)]
     bits: bool,
-    /// Gate: fail when the mean kl exceeds X (in the report's units)
-    #[arg(long, value_name = "X")]
-    max_kl_mean: Option<f64>,
-    /// Gate: fail when the 99th percentile of kl exceeds X
-    #[arg(long, value_name = "X")]
-    max_kl_p99: Option<f64>,
-    /// Gate: fail when top-1 agreement falls below X (a fraction, 0..1)
-    #[arg(long, value_name = "X")]
-    min_top1: Option<f64>,
+    #[command(flatten)]
+    gates: GateCli,
 }
 
 #[derive(Args)]
@@ -139,6 +132,16 @@ struct CompareCli {
     /// Where a shard run writes its partial result
     #[arg(long, value_name = "FILE")]
     partial: Option<PathBuf>,
+    #[command(flatten)]
+    gates: GateCli,
+}
+
+/// Most draws per position `--samples` accepts.
+const MAX_SAMPLES: usize = 1 << 20;
+
+/// The release gates, shared by `compare` and `merge`.
+#[derive(Args)]
+struct GateCli {
     /// Gate: fail when the mean kl exceeds X (in the report's units)
     #[arg(long, value_name = "X")]
     max_kl_mean: Option<f64>,
@@ -150,8 +153,11 @@ struct CompareCli {
     min_top1: Option<f64>,
 }
 
-/// Most draws per position `--samples` accepts.
-const MAX_SAMPLES: usize = 1 << 20;
+impl GateCli {
+    fn limits(&self) -> GateLimits {
+        GateLimits { max_kl_mean: self.max_kl_mean, max_kl_p99: self.max_kl_p99, min_top1: self.min_top1 }
+    }
+}
 
 fn parse_shard(s: &str) -> Result<(usize, usize), Error> {
     let bad = || Error::usage(format!("--shard {s}: expected I/N with 0 <= I < N, e.g. 0/8"));
@@ -235,7 +241,7 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
                 bits: c.bits,
                 shard: c.shard.as_deref().map(parse_shard).transpose()?,
                 partial: c.partial,
-                gates: GateLimits { max_kl_mean: c.max_kl_mean, max_kl_p99: c.max_kl_p99, min_top1: c.min_top1 },
+                gates: c.gates.limits(),
                 progress: std::io::stderr().is_terminal(),
             };
             if args.shard.is_some() || args.partial.is_some() {
@@ -287,7 +293,7 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
                 top: m.top,
                 tokenizer: m.tokenizer,
                 bits: m.bits,
-                gates: GateLimits { max_kl_mean: m.max_kl_mean, max_kl_p99: m.max_kl_p99, min_top1: m.min_top1 },
+                gates: m.gates.limits(),
             };
             let outcome = merge(&args)?;
             print(&outcome.report)?;

@@ -7,18 +7,6 @@ use common::*;
 use safetensors::tensor::Dtype;
 use serde_json::Value;
 
-/// Straightforward float64 KL(p||q) of two logit rows over the first `n`
-/// columns (log-softmax by max subtraction, the textbook definition; common practice).
-fn kl_f64(x: &[f32], y: &[f32]) -> f64 {
-    let lsm = |v: &[f32]| -> Vec<f64> {
-        let m = v.iter().fold(f64::NEG_INFINITY, |a, &b| a.max(b as f64));
-        let s: f64 = v.iter().map(|&b| (b as f64 - m).exp()).sum();
-        v.iter().map(|&b| b as f64 - m - s.ln()).collect()
-    };
-    let (lp, lq) = (lsm(x), lsm(y));
-    lp.iter().zip(&lq).map(|(a, b)| a.exp() * (a - b)).sum()
-}
-
 fn run_ok(args: &[&str]) -> std::process::Output {
     let out = klgauge(args);
     assert_eq!(out.status.code(), Some(0), "stderr: {}", String::from_utf8_lossy(&out.stderr));

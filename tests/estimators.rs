@@ -47,17 +47,6 @@ fn f(v: &Value) -> f64 {
     v.as_f64().unwrap_or_else(|| panic!("not a number: {v}"))
 }
 
-/// Straightforward float64 KL(p||q) of two logit rows (log-softmax by max
-/// subtraction, the textbook definition; common practice).
-fn kl_f64(x: &[f32], y: &[f32]) -> f64 {
-    let lsm = |v: &[f32]| -> Vec<f64> {
-        let m = v.iter().fold(f64::NEG_INFINITY, |a, &b| a.max(b as f64));
-        let s: f64 = v.iter().map(|&b| (b as f64 - m).exp()).sum();
-        v.iter().map(|&b| b as f64 - m - s.ln()).collect()
-    };
-    let (lp, lq) = (lsm(x), lsm(y));
-    lp.iter().zip(&lq).map(|(a, b)| a.exp() * (a - b)).sum()
-}
 
 /// Closed-form mean and variance of k1, k2, k3 for N(0,1) against N(mu,1).
 fn closed_form(mu: f64) -> [(f64, f64); 3] {

@@ -104,17 +104,7 @@ pub fn compare(args: &CompareArgs) -> Result<Outcome> {
     samples.dedup();
     samples.retain(|&n| n > 0);
 
-    let result = with_threads(args.threads, || -> Result<engine::EngineResult> {
-        match &args.csv {
-            Some(p) => {
-                let mut sink = CsvSink::create(p, candidates.len(), args.js, args.bits)?;
-                let r = engine::run(&reference, &candidates, &opts, &mut sink)?;
-                sink.finish()?;
-                Ok(r)
-            }
-            None => engine::run(&reference, &candidates, &opts, &mut NoSink),
-        }
-    })??;
+    let result = run_engine(args, &reference, &candidates, &opts)?;
     let inputs = BuildInputs {
         reference: &reference,
         candidates: &candidates,
@@ -133,6 +123,21 @@ pub fn compare(args: &CompareArgs) -> Result<Outcome> {
     write_reports(&report, args.json.as_ref(), args.html.as_ref())?;
     let gate_failed = report.candidates.iter().any(|c| c.gates.iter().any(|g| !g.pass));
     Ok(Outcome { report, gate_failed })
+}
+
+/// Runs the engine on the requested thread pool, streaming `--csv` if asked.
+fn run_engine(args: &CompareArgs, reference: &LogitFile, candidates: &[LogitFile], opts: &EngineOptions) -> Result<engine::EngineResult> {
+    with_threads(args.threads, || -> Result<engine::EngineResult> {
+        match &args.csv {
+            Some(p) => {
+                let mut sink = CsvSink::create(p, candidates.len(), args.js, args.bits)?;
+                let r = engine::run(reference, candidates, opts, &mut sink)?;
+                sink.finish()?;
+                Ok(r)
+            }
+            None => engine::run(reference, candidates, opts, &mut NoSink),
+        }
+    })?
 }
 
 /// Writes the file reports that were asked for, each atomically.
@@ -217,17 +222,7 @@ pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
         block_rows: 64,
         progress: args.progress,
     };
-    let result = with_threads(args.threads, || -> Result<engine::EngineResult> {
-        match &args.csv {
-            Some(p) => {
-                let mut sink = CsvSink::create(p, candidates.len(), args.js, args.bits)?;
-                let r = engine::run(&reference, &candidates, &opts, &mut sink)?;
-                sink.finish()?;
-                Ok(r)
-            }
-            None => engine::run(&reference, &candidates, &opts, &mut NoSink),
-        }
-    })??;
+    let result = run_engine(args, &reference, &candidates, &opts)?;
     let counted = result.candidates.iter().map(|c| (c.positions, c.skipped_rows)).collect();
     let run = crate::partial::ShardRun {
         reference: &reference,

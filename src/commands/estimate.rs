@@ -307,17 +307,7 @@ pub fn estimate(args: &EstimateArgs) -> Result<EstimateReport> {
     Ok(report)
 }
 
-fn sci(v: f64) -> String {
-    if v.is_nan() {
-        "-".into()
-    } else if v.is_infinite() {
-        if v > 0.0 { "inf".into() } else { "-inf".into() }
-    } else if v == 0.0 {
-        "0".into()
-    } else {
-        format!("{v:.3e}")
-    }
-}
+use crate::report::text::sci;
 
 /// The terminal summary.
 pub fn write_text(r: &EstimateReport, out: &mut dyn Write) -> std::io::Result<()> {

@@ -492,17 +492,7 @@ fn logprob_findings(lp: &LogprobFile, r: &mut InspectReport) {
     notes.push("per-token log-probabilities have no full rows: there is no storage floor to give; `klgauge estimate` computes the estimators".into());
 }
 
-fn sci(v: f64) -> String {
-    if v.is_nan() {
-        "-".into()
-    } else if v.is_infinite() {
-        if v > 0.0 { "inf".into() } else { "-inf".into() }
-    } else if v == 0.0 {
-        "0".into()
-    } else {
-        format!("{v:.3e}")
-    }
-}
+use crate::report::text::sci;
 
 fn size(b: u64) -> String {
     const U: [&str; 5] = ["B", "KiB", "MiB", "GiB", "TiB"];

@@ -122,6 +122,29 @@ impl MappedFile {
         }
     }
 
+    /// Reads and validates `prompt_offsets`: I64 [prompts + 1], starting at 0,
+    /// strictly increasing, ending at `total` (`what` names the count in messages).
+    pub fn read_prompt_offsets(&self, t: &TensorEntry, total: usize, what: &str) -> Result<Vec<i64>> {
+        let err = |m: String| Error::input(&self.path, m);
+        if t.dtype != Dtype::I64 {
+            return Err(err(format!("`prompt_offsets` has dtype {}, expected I64", t.dtype)));
+        }
+        if t.shape.len() != 1 || t.shape[0] < 2 {
+            return Err(err(format!("`prompt_offsets` has shape {:?}, expected [prompts + 1] with at least one prompt", t.shape)));
+        }
+        let o = self.read_ints("prompt_offsets", t)?;
+        if o[0] != 0 {
+            return Err(err(format!("`prompt_offsets` starts at {}, expected 0", o[0])));
+        }
+        if let Some(w) = o.windows(2).position(|w| w[1] <= w[0]) {
+            return Err(err(format!("`prompt_offsets` is not strictly increasing at index {} ({} then {})", w, o[w], o[w + 1])));
+        }
+        if *o.last().unwrap() != total as i64 {
+            return Err(err(format!("`prompt_offsets` ends at {}, expected {what} {total}", o.last().unwrap())));
+        }
+        Ok(o)
+    }
+
     /// Reads a U8 or BOOL tensor as flags (non-zero = true).
     pub fn read_flags(&self, name: &str, t: &TensorEntry) -> Result<Vec<bool>> {
         match t.dtype {

@@ -204,23 +204,7 @@ impl LogitFile {
                     if !matches!(g, Grouping::PerRow) {
                         return Err(err("`prompt_offsets` is only allowed with a 2-D `logits`; a 3-D one groups by sequence".into()));
                     }
-                    if t.dtype != Dtype::I64 {
-                        return Err(err(format!("`prompt_offsets` has dtype {}, expected I64", t.dtype)));
-                    }
-                    if t.shape.len() != 1 || t.shape[0] < 2 {
-                        return Err(err(format!("`prompt_offsets` has shape {:?}, expected [prompts + 1] with at least one prompt", t.shape)));
-                    }
-                    let o = file.read_ints("prompt_offsets", t)?;
-                    if o[0] != 0 {
-                        return Err(err(format!("`prompt_offsets` starts at {}, expected 0", o[0])));
-                    }
-                    if let Some(w) = o.windows(2).position(|w| w[1] <= w[0]) {
-                        return Err(err(format!("`prompt_offsets` is not strictly increasing at index {} ({} then {})", w, o[w], o[w + 1])));
-                    }
-                    if *o.last().unwrap() != rows as i64 {
-                        return Err(err(format!("`prompt_offsets` ends at {}, expected the row count {rows}", o.last().unwrap())));
-                    }
-                    Some(o)
+                    Some(file.read_prompt_offsets(t, rows, "the row count")?)
                 }
                 None => None,
             };

@@ -112,22 +112,7 @@ impl LogprobFile {
         }
         let (grouping, prompt_starts) = match file.tensors.get("prompt_offsets") {
             Some(t) => {
-                if t.dtype != safetensors::Dtype::I64 {
-                    return Err(err(format!("`prompt_offsets` has dtype {}, expected I64", t.dtype)));
-                }
-                if t.shape.len() != 1 || t.shape[0] < 2 {
-                    return Err(err(format!("`prompt_offsets` has shape {:?}, expected [prompts + 1] with at least one prompt", t.shape)));
-                }
-                let o = file.read_ints("prompt_offsets", t)?;
-                if o[0] != 0 {
-                    return Err(err(format!("`prompt_offsets` starts at {}, expected 0", o[0])));
-                }
-                if let Some(w) = o.windows(2).position(|w| w[1] <= w[0]) {
-                    return Err(err(format!("`prompt_offsets` is not strictly increasing at index {} ({} then {})", w, o[w], o[w + 1])));
-                }
-                if *o.last().unwrap() != n as i64 {
-                    return Err(err(format!("`prompt_offsets` ends at {}, expected the number of draws {n}", o.last().unwrap())));
-                }
+                let o = file.read_prompt_offsets(t, n, "the number of draws")?;
                 (Grouping::Offsets, o.iter().map(|&x| x as usize).collect())
             }
             None => (Grouping::PerRow, (0..=n).collect()),

@@ -6,7 +6,8 @@ use std::io::Write;
 
 pub struct Text;
 
-fn sci(v: f64) -> String {
+/// A number for a terminal table: 3 significant digits, `-` when missing.
+pub fn sci(v: f64) -> String {
     if v.is_nan() {
         "-".into()
     } else if v.is_infinite() {
