@@ -12,7 +12,9 @@ use std::hint::black_box;
 use std::time::Instant;
 
 fn lcg(s: &mut u64) -> f64 {
-    *s = s.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+    *s = s
+        .wrapping_mul(6364136223846793005)
+        .wrapping_add(1442695040888963407);
     ((*s >> 11) as f64) / ((1u64 << 53) as f64)
 }
 
@@ -43,27 +45,54 @@ fn time(budget: f64, mut f: impl FnMut()) -> (f64, f64) {
 }
 
 fn main() {
-    let args: Vec<String> = std::env::args().skip(1).filter(|a| !a.starts_with("--")).collect();
+    let args: Vec<String> = std::env::args()
+        .skip(1)
+        .filter(|a| !a.starts_with("--"))
+        .collect();
     let cols: usize = args.iter().find_map(|a| a.parse().ok()).unwrap_or(128_256);
-    let words: Vec<&String> = args.iter().filter(|a| a.parse::<usize>().is_err()).collect();
+    let words: Vec<&String> = args
+        .iter()
+        .filter(|a| a.parse::<usize>().is_err())
+        .collect();
     let keep = |l: Level, f: &str| {
-        let lw: Vec<_> = words.iter().filter(|w| ["avx512", "avx2", "scalar"].contains(&w.as_str())).collect();
-        let fw: Vec<_> = words.iter().filter(|w| !["avx512", "avx2", "scalar"].contains(&w.as_str())).collect();
-        (lw.is_empty() || lw.iter().any(|w| w.as_str() == l.name())) && (fw.is_empty() || fw.iter().any(|w| f.contains(w.as_str())))
+        let lw: Vec<_> = words
+            .iter()
+            .filter(|w| ["avx512", "avx2", "scalar"].contains(&w.as_str()))
+            .collect();
+        let fw: Vec<_> = words
+            .iter()
+            .filter(|w| !["avx512", "avx2", "scalar"].contains(&w.as_str()))
+            .collect();
+        (lw.is_empty() || lw.iter().any(|w| w.as_str() == l.name()))
+            && (fw.is_empty() || fw.iter().any(|w| f.contains(w.as_str())))
     };
     let mut s = 5u64;
     let x: Vec<f32> = (0..cols).map(|_| 2.5 * normal(&mut s)).collect();
     let y: Vec<f32> = x.iter().map(|&v| v + 0.1 * normal(&mut s)).collect();
-    let bf: Vec<u8> = x.iter().flat_map(|v| ((v.to_bits() >> 16) as u16).to_le_bytes()).collect();
-    let hf: Vec<u8> = x.iter().flat_map(|v| half::f16::from_f32(*v).to_bits().to_le_bytes()).collect();
+    let bf: Vec<u8> = x
+        .iter()
+        .flat_map(|v| ((v.to_bits() >> 16) as u16).to_le_bytes())
+        .collect();
+    let hf: Vec<u8> = x
+        .iter()
+        .flat_map(|v| half::f16::from_f32(*v).to_bits().to_le_bytes())
+        .collect();
     let mut er = vec![0f32; cols];
     let mut ec = vec![0f32; cols];
     let mut out = vec![0f32; cols];
     let mut blocks = vec![0f64; kernel::norm_blocks(cols)];
-    println!("kernel benchmark, {cols} columns; detected level {}", kernel::detected_level().name());
-    println!("{:<8} {:<22} {:>10} {:>10} {:>9}", "level", "function", "min us", "median us", "col/ns");
-    let levels: Vec<Level> =
-        [Level::Avx512, Level::Avx2, Level::Scalar].into_iter().filter(|&l| l <= kernel::detected_level()).collect();
+    println!(
+        "kernel benchmark, {cols} columns; detected level {}",
+        kernel::detected_level().name()
+    );
+    println!(
+        "{:<8} {:<22} {:>10} {:>10} {:>9}",
+        "level", "function", "min us", "median us", "col/ns"
+    );
+    let levels: Vec<Level> = [Level::Avx512, Level::Avx2, Level::Scalar]
+        .into_iter()
+        .filter(|&l| l <= kernel::detected_level())
+        .collect();
     let budget = 0.4;
     for &l in &levels {
         let r: RowNorm = kernel::normalise_store_at(l, &x, &mut er, &mut blocks).unwrap();
@@ -74,8 +103,12 @@ fn main() {
                 rows.push((name, time(budget, f)));
             }
         };
-        run("decode_bf16", &mut || kernel::decode_bf16_at(l, black_box(&bf), &mut out));
-        run("decode_f16", &mut || kernel::decode_f16_at(l, black_box(&hf), &mut out));
+        run("decode_bf16", &mut || {
+            kernel::decode_bf16_at(l, black_box(&bf), &mut out)
+        });
+        run("decode_f16", &mut || {
+            kernel::decode_f16_at(l, black_box(&hf), &mut out)
+        });
         run("scan_row", &mut || {
             black_box(kernel::scan_row_at(l, black_box(&x)));
         });
@@ -84,13 +117,32 @@ fn main() {
         });
         let (er2, ec2) = (er.clone(), ec.clone());
         run("compare_stored", &mut || {
-            black_box(kernel::compare_stored_at(l, black_box(&x), &y, &er2, &ec2, &r, &c));
+            black_box(kernel::compare_stored_at(
+                l,
+                black_box(&x),
+                &y,
+                &er2,
+                &ec2,
+                &r,
+                &c,
+            ));
         });
         // The engine's whole row: decode both rows, normalise both, compare,
         // with the engine's separate buffers (its cache footprint).
-        let bfy: Vec<u8> = y.iter().flat_map(|v| ((v.to_bits() >> 16) as u16).to_le_bytes()).collect();
-        let (mut xr, mut xc, mut er3, mut ec3) = (vec![0f32; cols], vec![0f32; cols], vec![0f32; cols], vec![0f32; cols]);
-        let (mut br, mut bc) = (vec![0f64; kernel::norm_blocks(cols)], vec![0f64; kernel::norm_blocks(cols)]);
+        let bfy: Vec<u8> = y
+            .iter()
+            .flat_map(|v| ((v.to_bits() >> 16) as u16).to_le_bytes())
+            .collect();
+        let (mut xr, mut xc, mut er3, mut ec3) = (
+            vec![0f32; cols],
+            vec![0f32; cols],
+            vec![0f32; cols],
+            vec![0f32; cols],
+        );
+        let (mut br, mut bc) = (
+            vec![0f64; kernel::norm_blocks(cols)],
+            vec![0f64; kernel::norm_blocks(cols)],
+        );
         run("whole_row_bf16", &mut || {
             kernel::decode_bf16_at(l, black_box(&bf), &mut xr);
             let r = kernel::normalise_store_at(l, &xr, &mut er3, &mut br).unwrap();
@@ -98,12 +150,22 @@ fn main() {
             let c = kernel::normalise_store_at(l, &xc, &mut ec3, &mut bc).unwrap();
             black_box(kernel::compare_stored_at(l, &xr, &xc, &er3, &ec3, &r, &c));
         });
-        let rd = kernel::Rounding { mantissa_bits: 7, min_exp: -133 };
+        let rd = kernel::Rounding {
+            mantissa_bits: 7,
+            min_exp: -133,
+        };
         run("storage_floor_row", &mut || {
             black_box(kernel::storage_floor_row_at(l, black_box(&x), rd, &y, rd));
         });
         for (name, (mn, med)) in rows {
-            println!("{:<8} {:<22} {:>10.1} {:>10.1} {:>9.2}", l.name(), name, mn * 1e6, med * 1e6, cols as f64 / (mn * 1e9));
+            println!(
+                "{:<8} {:<22} {:>10.1} {:>10.1} {:>9.2}",
+                l.name(),
+                name,
+                mn * 1e6,
+                med * 1e6,
+                cols as f64 / (mn * 1e9)
+            );
         }
     }
 }

@@ -48,7 +48,11 @@ pub const INT4_FILE: &str = "wren-7-int4.safetensors";
 pub const TOKENIZER_FILE: &str = "tokenizer.json";
 
 /// The demo's gates, in nats.
-pub const GATES: GateLimits = GateLimits { max_kl_mean: Some(0.05), max_kl_p99: Some(0.3), min_top1: Some(0.86) };
+pub const GATES: GateLimits = GateLimits {
+    max_kl_mean: Some(0.05),
+    max_kl_p99: Some(0.3),
+    min_top1: Some(0.86),
+};
 
 /// The invented prompt set: what the 48 prompts were meant to be about.
 pub const PROMPT_TITLES: [&str; PROMPTS] = [
@@ -235,7 +239,12 @@ pub fn generate_data() -> DemoData {
             prev = target;
         }
     }
-    DemoData { reference, int8, int4, targets }
+    DemoData {
+        reference,
+        int8,
+        int4,
+        targets,
+    }
 }
 
 fn store_centered(y: &[f64], out: &mut [half::f16]) {
@@ -272,14 +281,19 @@ impl View for &Tensor {
 /// order, so the header JSON is rewritten with sorted keys (same length,
 /// since only the order of the entries changes).
 fn safetensors_bytes(tensors: &[(&str, &Tensor)], metadata: &[(&str, &str)]) -> Result<Vec<u8>> {
-    let meta: HashMap<String, String> = metadata.iter().map(|(k, v)| (k.to_string(), v.to_string())).collect();
-    let mut bytes = safetensors::serialize(tensors.iter().map(|(n, t)| (n.to_string(), *t)), Some(meta))
-        .map_err(|e| Error::usage(format!("demo: cannot serialize: {e}")))?;
+    let meta: HashMap<String, String> = metadata
+        .iter()
+        .map(|(k, v)| (k.to_string(), v.to_string()))
+        .collect();
+    let mut bytes =
+        safetensors::serialize(tensors.iter().map(|(n, t)| (n.to_string(), *t)), Some(meta))
+            .map_err(|e| Error::usage(format!("demo: cannot serialize: {e}")))?;
     let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
     let header: serde_json::Value = serde_json::from_slice(&bytes[8..8 + n])
         .map_err(|e| Error::usage(format!("demo: bad header: {e}")))?;
     // serde_json's map is ordered by key (no preserve_order feature here).
-    let canon = serde_json::to_vec(&header).map_err(|e| Error::usage(format!("demo: bad header: {e}")))?;
+    let canon =
+        serde_json::to_vec(&header).map_err(|e| Error::usage(format!("demo: bad header: {e}")))?;
     if canon.len() > n {
         return Err(Error::usage("demo: header grew when sorted"));
     }
@@ -298,31 +312,62 @@ fn f16_bytes(v: &[half::f16]) -> Vec<u8> {
 pub fn file_bytes() -> Result<Vec<(&'static str, Vec<u8>)>> {
     let d = generate_data();
     let shape = vec![PROMPTS, LENGTH, VOCAB];
-    let targets = Tensor { dtype: Dtype::I64, shape: vec![PROMPTS, LENGTH], bytes: bytemuck::cast_slice(&d.targets).to_vec() };
-    let r = Tensor { dtype: Dtype::F32, shape: shape.clone(), bytes: bytemuck::cast_slice(&d.reference).to_vec() };
-    let q8 = Tensor { dtype: Dtype::F16, shape: shape.clone(), bytes: f16_bytes(&d.int8) };
-    let q4 = Tensor { dtype: Dtype::F16, shape, bytes: f16_bytes(&d.int4) };
+    let targets = Tensor {
+        dtype: Dtype::I64,
+        shape: vec![PROMPTS, LENGTH],
+        bytes: bytemuck::cast_slice(&d.targets).to_vec(),
+    };
+    let r = Tensor {
+        dtype: Dtype::F32,
+        shape: shape.clone(),
+        bytes: bytemuck::cast_slice(&d.reference).to_vec(),
+    };
+    let q8 = Tensor {
+        dtype: Dtype::F16,
+        shape: shape.clone(),
+        bytes: f16_bytes(&d.int8),
+    };
+    let q4 = Tensor {
+        dtype: Dtype::F16,
+        shape,
+        bytes: f16_bytes(&d.int4),
+    };
     let about = "invented demo data: a fictional model of the fictional Fenmarrow Computing Guild";
     Ok(vec![
         (
             REFERENCE_FILE,
             safetensors_bytes(
                 &[("logits", &r), ("targets", &targets)],
-                &[("model", "Wren-7"), ("logits_form", "raw"), ("tokenizer", TOKENIZER_FILE), ("about", about)],
+                &[
+                    ("model", "Wren-7"),
+                    ("logits_form", "raw"),
+                    ("tokenizer", TOKENIZER_FILE),
+                    ("about", about),
+                ],
             )?,
         ),
         (
             INT8_FILE,
             safetensors_bytes(
                 &[("logits", &q8), ("targets", &targets)],
-                &[("model", "Wren-7 int8"), ("logits_form", "centered"), ("tokenizer", TOKENIZER_FILE), ("about", about)],
+                &[
+                    ("model", "Wren-7 int8"),
+                    ("logits_form", "centered"),
+                    ("tokenizer", TOKENIZER_FILE),
+                    ("about", about),
+                ],
             )?,
         ),
         (
             INT4_FILE,
             safetensors_bytes(
                 &[("logits", &q4), ("targets", &targets)],
-                &[("model", "Wren-7 int4"), ("logits_form", "centered"), ("tokenizer", TOKENIZER_FILE), ("about", about)],
+                &[
+                    ("model", "Wren-7 int4"),
+                    ("logits_form", "centered"),
+                    ("tokenizer", TOKENIZER_FILE),
+                    ("about", about),
+                ],
             )?,
         ),
         (TOKENIZER_FILE, tokenizer_json().into_bytes()),
@@ -331,7 +376,8 @@ pub fn file_bytes() -> Result<Vec<(&'static str, Vec<u8>)>> {
 
 /// Writes the scenario's files into `dir` (created if missing).
 pub fn write_files(dir: &Path) -> Result<DemoFiles> {
-    std::fs::create_dir_all(dir).map_err(|e| Error::output(dir, format!("cannot create the directory: {e}")))?;
+    std::fs::create_dir_all(dir)
+        .map_err(|e| Error::output(dir, format!("cannot create the directory: {e}")))?;
     for (name, bytes) in file_bytes()? {
         write_atomic(&dir.join(name), |w| w.write_all(&bytes))?;
     }
@@ -382,7 +428,10 @@ pub fn run(dir: &Path, threads: Option<usize>) -> Result<(DemoFiles, Outcome)> {
 
 /// The story told before the report.
 pub fn preface() -> String {
-    let broken: Vec<String> = BROKEN_PROMPTS.iter().map(|&g| format!("      prompt {g:>2}: {}", PROMPT_TITLES[g])).collect();
+    let broken: Vec<String> = BROKEN_PROMPTS
+        .iter()
+        .map(|&g| format!("      prompt {g:>2}: {}", PROMPT_TITLES[g]))
+        .collect();
     format!(
         "An invented scenario: the fictional Fenmarrow Computing Guild compressed its model Wren-7 to 8 and 4 bits\n\
          and kept the logits of all three on {PROMPTS} prompts of {LENGTH} tokens (vocabulary {VOCAB}). The data are synthetic.\n\
@@ -412,30 +461,251 @@ mod tok {
 /// byte-level BPE vocabularies), and word pieces without one.
 pub fn vocabulary() -> Vec<String> {
     let sp = '\u{0120}';
-    let mut v: Vec<String> = ["<pad>", "<s>", "</s>", "<unk>"].iter().map(|s| s.to_string()).collect();
+    let mut v: Vec<String> = ["<pad>", "<s>", "</s>", "<unk>"]
+        .iter()
+        .map(|s| s.to_string())
+        .collect();
     for p in [".", ",", "\u{010A}", ";"] {
         v.push(p.to_string());
     }
     // ids 8 and 9 are the loop tokens (tok::THE, tok::OF).
     let words = [
-        "the", "of", "and", "to", "a", "in", "is", "that", "for", "it", "on", "was", "with", "as", "by", "at", "from", "or", "an",
-        "be", "this", "which", "but", "not", "are", "all", "were", "when", "we", "there", "can", "one", "their", "has", "its",
-        "river", "lantern", "ferry", "guild", "wren", "heron", "barley", "loaf", "weir", "keeper", "tide", "marsh", "orchid",
-        "salt", "road", "ledger", "wool", "market", "bridge", "kiln", "mill", "pond", "granary", "bell", "hedge", "rope", "knot",
-        "star", "chart", "fog", "winter", "almanac", "berry", "wall", "stone", "fair", "baker", "net", "flood", "sallow",
-        "quell", "valley", "oskel", "tarrow", "fenmarrow", "duneholt", "juniper", "ale", "carthorse", "cartographer", "merchant",
-        "diary", "watch", "night", "festival", "light", "sermon", "patience", "tile", "apprentice", "week", "lock", "toast",
-        "census", "bee", "hollow", "boundary", "glossary", "autumn", "guide", "ringer", "inventory", "sum", "poem", "history",
-        "traveller", "phrase", "care", "letter", "fare", "brew", "seat", "plan", "rule", "survey", "report", "table", "note",
-        "quarrel", "speech", "closing", "first", "long", "east", "west", "north", "south", "old", "new", "small", "great",
-        "copper", "hollow", "dry", "cracked", "smoked", "spring", "quarter", "oil", "price", "field", "engine", "count",
-        "rhyme", "trade", "weather", "rules", "week", "lute", "string", "minutes", "meeting", "legend", "instructions",
-        "water", "boat", "oar", "sail", "harbour", "island", "shore", "reed", "willow", "alder", "ash", "oak", "fern",
-        "morning", "evening", "noon", "day", "year", "hour", "road", "path", "gate", "door", "roof", "hearth", "fire",
-        "bread", "salted", "fish", "eel", "pike", "trout", "grain", "flour", "honey", "wax", "candle", "lamp", "wick",
-        "ink", "quill", "page", "book", "scroll", "map", "compass", "mile", "league", "coin", "penny", "shilling",
-        "said", "went", "came", "made", "took", "gave", "kept", "found", "saw", "knew", "thought", "told", "asked",
-        "should", "would", "could", "might", "must", "shall", "will", "may", "do", "does", "did", "have", "had",
+        "the",
+        "of",
+        "and",
+        "to",
+        "a",
+        "in",
+        "is",
+        "that",
+        "for",
+        "it",
+        "on",
+        "was",
+        "with",
+        "as",
+        "by",
+        "at",
+        "from",
+        "or",
+        "an",
+        "be",
+        "this",
+        "which",
+        "but",
+        "not",
+        "are",
+        "all",
+        "were",
+        "when",
+        "we",
+        "there",
+        "can",
+        "one",
+        "their",
+        "has",
+        "its",
+        "river",
+        "lantern",
+        "ferry",
+        "guild",
+        "wren",
+        "heron",
+        "barley",
+        "loaf",
+        "weir",
+        "keeper",
+        "tide",
+        "marsh",
+        "orchid",
+        "salt",
+        "road",
+        "ledger",
+        "wool",
+        "market",
+        "bridge",
+        "kiln",
+        "mill",
+        "pond",
+        "granary",
+        "bell",
+        "hedge",
+        "rope",
+        "knot",
+        "star",
+        "chart",
+        "fog",
+        "winter",
+        "almanac",
+        "berry",
+        "wall",
+        "stone",
+        "fair",
+        "baker",
+        "net",
+        "flood",
+        "sallow",
+        "quell",
+        "valley",
+        "oskel",
+        "tarrow",
+        "fenmarrow",
+        "duneholt",
+        "juniper",
+        "ale",
+        "carthorse",
+        "cartographer",
+        "merchant",
+        "diary",
+        "watch",
+        "night",
+        "festival",
+        "light",
+        "sermon",
+        "patience",
+        "tile",
+        "apprentice",
+        "week",
+        "lock",
+        "toast",
+        "census",
+        "bee",
+        "hollow",
+        "boundary",
+        "glossary",
+        "autumn",
+        "guide",
+        "ringer",
+        "inventory",
+        "sum",
+        "poem",
+        "history",
+        "traveller",
+        "phrase",
+        "care",
+        "letter",
+        "fare",
+        "brew",
+        "seat",
+        "plan",
+        "rule",
+        "survey",
+        "report",
+        "table",
+        "note",
+        "quarrel",
+        "speech",
+        "closing",
+        "first",
+        "long",
+        "east",
+        "west",
+        "north",
+        "south",
+        "old",
+        "new",
+        "small",
+        "great",
+        "copper",
+        "hollow",
+        "dry",
+        "cracked",
+        "smoked",
+        "spring",
+        "quarter",
+        "oil",
+        "price",
+        "field",
+        "engine",
+        "count",
+        "rhyme",
+        "trade",
+        "weather",
+        "rules",
+        "week",
+        "lute",
+        "string",
+        "minutes",
+        "meeting",
+        "legend",
+        "instructions",
+        "water",
+        "boat",
+        "oar",
+        "sail",
+        "harbour",
+        "island",
+        "shore",
+        "reed",
+        "willow",
+        "alder",
+        "ash",
+        "oak",
+        "fern",
+        "morning",
+        "evening",
+        "noon",
+        "day",
+        "year",
+        "hour",
+        "road",
+        "path",
+        "gate",
+        "door",
+        "roof",
+        "hearth",
+        "fire",
+        "bread",
+        "salted",
+        "fish",
+        "eel",
+        "pike",
+        "trout",
+        "grain",
+        "flour",
+        "honey",
+        "wax",
+        "candle",
+        "lamp",
+        "wick",
+        "ink",
+        "quill",
+        "page",
+        "book",
+        "scroll",
+        "map",
+        "compass",
+        "mile",
+        "league",
+        "coin",
+        "penny",
+        "shilling",
+        "said",
+        "went",
+        "came",
+        "made",
+        "took",
+        "gave",
+        "kept",
+        "found",
+        "saw",
+        "knew",
+        "thought",
+        "told",
+        "asked",
+        "should",
+        "would",
+        "could",
+        "might",
+        "must",
+        "shall",
+        "will",
+        "may",
+        "do",
+        "does",
+        "did",
+        "have",
+        "had",
     ];
     for w in words {
         let t = format!("{sp}{w}");
@@ -443,14 +713,25 @@ pub fn vocabulary() -> Vec<String> {
             v.push(t);
         }
     }
-    for piece in ["ing", "ed", "s", "er", "ly", "ness", "ward", "wick", "holt", "mere", "ford", "ton", "by", "ham"] {
+    for piece in [
+        "ing", "ed", "s", "er", "ly", "ness", "ward", "wick", "holt", "mere", "ford", "ton", "by",
+        "ham",
+    ] {
         v.push(piece.to_string());
     }
     // Fill up with invented names built from syllables.
-    let syl = ["ka", "ren", "tor", "mi", "lo", "sen", "dru", "fel", "ith", "bra", "nal", "vey", "quo", "zim", "or", "ul"];
+    let syl = [
+        "ka", "ren", "tor", "mi", "lo", "sen", "dru", "fel", "ith", "bra", "nal", "vey", "quo",
+        "zim", "or", "ul",
+    ];
     let mut i = 0usize;
     while v.len() < VOCAB {
-        let w = format!("{sp}{}{}{}", syl[i % 16], syl[(i / 16 + 3) % 16], if i.is_multiple_of(3) { "n" } else { "" });
+        let w = format!(
+            "{sp}{}{}{}",
+            syl[i % 16],
+            syl[(i / 16 + 3) % 16],
+            if i.is_multiple_of(3) { "n" } else { "" }
+        );
         if !v.contains(&w) {
             v.push(w);
         }

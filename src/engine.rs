@@ -66,7 +66,15 @@ pub struct PositionValues {
 
 /// Receives every counted position in row order (the CSV writer).
 pub trait PositionSink {
-    fn position(&mut self, cand: usize, row: usize, prompt: usize, position: usize, target: Option<i64>, v: &PositionValues) -> Result<()>;
+    fn position(
+        &mut self,
+        cand: usize,
+        row: usize,
+        prompt: usize,
+        position: usize,
+        target: Option<i64>,
+        v: &PositionValues,
+    ) -> Result<()>;
 }
 
 /// Per-prompt sums: everything behind every mean and interval.
@@ -83,7 +91,13 @@ pub struct PromptSums {
 
 impl PromptSums {
     fn new(prompt: u64) -> PromptSums {
-        PromptSums { prompt, n: 0.0, n_target: 0.0, sum: [0.0; NMETRIC], max_kl: f64::NEG_INFINITY }
+        PromptSums {
+            prompt,
+            n: 0.0,
+            n_target: 0.0,
+            sum: [0.0; NMETRIC],
+            max_kl: f64::NEG_INFINITY,
+        }
     }
     /// Number of positions a metric's sum runs over.
     pub fn count(&self, metric: usize) -> f64 {
@@ -157,13 +171,23 @@ pub struct EngineResult {
 }
 
 /// The columns compared: the common vocabulary or `--vocab`.
-pub fn compared_columns(reference: &LogitFile, candidates: &[LogitFile], vocab: Option<usize>) -> Result<usize> {
+pub fn compared_columns(
+    reference: &LogitFile,
+    candidates: &[LogitFile],
+    vocab: Option<usize>,
+) -> Result<usize> {
     match vocab {
         Some(0) => Err(Error::usage("--vocab must be at least 1")),
         Some(n) => {
             for f in std::iter::once(reference).chain(candidates) {
                 if f.vocab < n {
-                    return Err(Error::input(&f.path, format!("has a vocabulary of {} columns, fewer than --vocab {n}", f.vocab)));
+                    return Err(Error::input(
+                        &f.path,
+                        format!(
+                            "has a vocabulary of {} columns, fewer than --vocab {n}",
+                            f.vocab
+                        ),
+                    ));
                 }
             }
             Ok(n)
@@ -184,18 +208,35 @@ pub fn compared_columns(reference: &LogitFile, candidates: &[LogitFile], vocab: 
 
 /// Checks that the candidates line up with the reference (SPEC: same rows,
 /// identical targets when both carry them) and returns the targets to use.
-pub fn check_alignment<'a>(reference: &'a LogitFile, candidates: &'a [LogitFile], cols: usize) -> Result<Option<&'a [i64]>> {
+pub fn check_alignment<'a>(
+    reference: &'a LogitFile,
+    candidates: &'a [LogitFile],
+    cols: usize,
+) -> Result<Option<&'a [i64]>> {
     // The first file that carries targets sets them; every other file that
     // carries them must agree (also between candidates when the reference has none).
-    let mut targets: Option<(&[i64], &LogitFile)> = reference.targets.as_deref().map(|t| (t, reference));
+    let mut targets: Option<(&[i64], &LogitFile)> =
+        reference.targets.as_deref().map(|t| (t, reference));
     for c in candidates {
         if c.rows != reference.rows {
-            return Err(Error::input(&c.path, format!("has {} rows, the reference {} has {}", c.rows, reference.path.display(), reference.rows)));
+            return Err(Error::input(
+                &c.path,
+                format!(
+                    "has {} rows, the reference {} has {}",
+                    c.rows,
+                    reference.path.display(),
+                    reference.rows
+                ),
+            ));
         }
         match (targets, c.targets.as_deref()) {
             (Some((a, owner)), Some(b)) => {
                 if let Some(i) = a.iter().zip(b).position(|(x, y)| x != y) {
-                    let whose = if std::ptr::eq(owner, reference) { "the reference's".to_string() } else { format!("those of {}", owner.path.display()) };
+                    let whose = if std::ptr::eq(owner, reference) {
+                        "the reference's".to_string()
+                    } else {
+                        format!("those of {}", owner.path.display())
+                    };
                     return Err(Error::input(
                         &c.path,
                         format!("`targets` differ from {whose} at row {i} ({} vs {}): the dumps are not aligned", b[i], a[i]),
@@ -210,8 +251,16 @@ pub fn check_alignment<'a>(reference: &'a LogitFile, candidates: &'a [LogitFile]
         let explicit = |f: &LogitFile| !matches!(f.grouping, crate::input::Grouping::PerRow);
         if explicit(reference) && explicit(c) && c.prompt_starts != reference.prompt_starts {
             let (a, b) = (&reference.prompt_starts, &c.prompt_starts);
-            let i = a.iter().zip(b).position(|(x, y)| x != y).unwrap_or(a.len().min(b.len()));
-            let at = |v: &[usize]| v.get(i).map_or("does not exist".to_string(), |r| format!("starts at row {r}"));
+            let i = a
+                .iter()
+                .zip(b)
+                .position(|(x, y)| x != y)
+                .unwrap_or(a.len().min(b.len()));
+            let at = |v: &[usize]| {
+                v.get(i).map_or("does not exist".to_string(), |r| {
+                    format!("starts at row {r}")
+                })
+            };
             return Err(Error::input(
                 &c.path,
                 format!("prompt boundaries differ from the reference's: prompt {i} {} here, {} there; the dumps are not aligned", at(b), at(a)),
@@ -220,10 +269,26 @@ pub fn check_alignment<'a>(reference: &'a LogitFile, candidates: &'a [LogitFile]
     }
     let targets = targets.map(|(t, _)| t);
     if let Some(t) = targets {
-        let vocab = reference.vocab.min(candidates.iter().map(|c| c.vocab).min().unwrap_or(usize::MAX));
+        let vocab = reference.vocab.min(
+            candidates
+                .iter()
+                .map(|c| c.vocab)
+                .min()
+                .unwrap_or(usize::MAX),
+        );
         if let Some(i) = t.iter().position(|&v| v >= vocab as i64) {
-            let owner = if reference.targets.is_some() { reference } else { candidates.iter().find(|c| c.targets.is_some()).unwrap() };
-            return Err(Error::input(&owner.path, format!("`targets` row {i} holds token {} outside the vocabulary of {vocab}", t[i])));
+            let owner = if reference.targets.is_some() {
+                reference
+            } else {
+                candidates.iter().find(|c| c.targets.is_some()).unwrap()
+            };
+            return Err(Error::input(
+                &owner.path,
+                format!(
+                    "`targets` row {i} holds token {} outside the vocabulary of {vocab}",
+                    t[i]
+                ),
+            ));
         }
     }
     let _ = cols;
@@ -294,7 +359,12 @@ fn log_ratio(xr: &[f32], nr: &RowNorm, xc: &[f32], nc: &RowNorm, t: u32) -> f64 
 }
 
 /// Fills `est[b][dir]` with the mean k-values of the first samples[b] draws.
-fn fold_draws(est: &mut [[[f64; 3]; 2]], dir: usize, samples: &[usize], mut log_r: impl FnMut(usize) -> f64) {
+fn fold_draws(
+    est: &mut [[[f64; 3]; 2]],
+    dir: usize,
+    samples: &[usize],
+    mut log_r: impl FnMut(usize) -> f64,
+) {
     let mut acc = [0f64; 3];
     let mut done = 0usize;
     for (b, &n) in samples.iter().enumerate() {
@@ -312,7 +382,18 @@ fn fold_draws(est: &mut [[[f64; 3]; 2]], dir: usize, samples: &[usize], mut log_
 }
 
 fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
-    let Scratch { xr: xr_buf, xc: xc_buf, er, ec, br, bc, order, tok_p, tok_q, raw } = s;
+    let Scratch {
+        xr: xr_buf,
+        xc: xc_buf,
+        er,
+        ec,
+        br,
+        bc,
+        order,
+        tok_p,
+        tok_q,
+        raw,
+    } = s;
     let cols = xr_buf.len();
     let xr = ctx.reference.load_row(row, xr_buf, raw);
     let nr = match kernel::normalise_store(xr, er, br) {
@@ -325,9 +406,21 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
     out.ref_fault = None;
     let draws = ctx.draws;
     if draws > 0 {
-        draw_tokens(xr, nr.max, br, ctx.opts.seed, row as u64, 0, order, &mut tok_p[..draws]);
+        draw_tokens(
+            xr,
+            nr.max,
+            br,
+            ctx.opts.seed,
+            row as u64,
+            0,
+            order,
+            &mut tok_p[..draws],
+        );
     }
-    let target = ctx.targets.map(|t| t[row]).filter(|&t| t >= 0 && (t as usize) < cols);
+    let target = ctx
+        .targets
+        .map(|t| t[row])
+        .filter(|&t| t >= 0 && (t as usize) < cols);
     for (k, cand) in ctx.candidates.iter().enumerate() {
         let co = &mut out.cands[k];
         let xc = cand.load_row(row, xc_buf, raw);
@@ -344,7 +437,11 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
         m[KL] = pm.kl;
         m[KL_REV] = pm.kl_reverse;
         m[TV] = pm.tv;
-        m[JS] = if ctx.opts.js { kernel::js_divergence(xr, xc, &nr, &nc) } else { f64::NAN };
+        m[JS] = if ctx.opts.js {
+            kernel::js_divergence(xr, xc, &nr, &nc)
+        } else {
+            f64::NAN
+        };
         m[ENT_REF] = nr.entropy;
         m[ENT_CAND] = nc.entropy;
         m[TOP1] = if nr.argmax == nc.argmax { 1.0 } else { 0.0 };
@@ -360,18 +457,33 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
         }
         if draws > 0 {
             let tp = &*tok_p;
-            fold_draws(&mut co.est, 0, &ctx.opts.samples, |j| log_ratio(xr, &nr, xc, &nc, tp[j]));
-            draw_tokens(xc, nc.max, bc, ctx.opts.seed, row as u64, 1 + k as u64, order, &mut tok_q[..draws]);
+            fold_draws(&mut co.est, 0, &ctx.opts.samples, |j| {
+                log_ratio(xr, &nr, xc, &nc, tp[j])
+            });
+            draw_tokens(
+                xc,
+                nc.max,
+                bc,
+                ctx.opts.seed,
+                row as u64,
+                1 + k as u64,
+                order,
+                &mut tok_q[..draws],
+            );
             let tq = &*tok_q;
             // Reverse: x ~ q, log r' = log p(x) - log q(x).
-            fold_draws(&mut co.est, 1, &ctx.opts.samples, |j| -log_ratio(xr, &nr, xc, &nc, tq[j]));
+            fold_draws(&mut co.est, 1, &ctx.opts.samples, |j| {
+                -log_ratio(xr, &nr, xc, &nc, tq[j])
+            });
         }
     }
 }
 
 /// Rows counted at all: not masked out in any file.
 fn counted(row: usize, files: &[&LogitFile]) -> bool {
-    files.iter().all(|f| f.mask.as_ref().map_or(true, |m| m[row]))
+    files
+        .iter()
+        .all(|f| f.mask.as_ref().map_or(true, |m| m[row]))
 }
 
 pub fn run(
@@ -389,11 +501,16 @@ pub fn run(
     samples.sort_unstable();
     samples.dedup();
     samples.retain(|&n| n > 0);
-    let opts = &EngineOptions { samples: samples.clone(), ..opts.clone() };
+    let opts = &EngineOptions {
+        samples: samples.clone(),
+        ..opts.clone()
+    };
     let draws = samples.last().copied().unwrap_or(0);
     let range = opts.rows.clone().unwrap_or(0..reference.rows);
     let prompt_of = reference.prompt_of_rows();
-    let files: Vec<&LogitFile> = std::iter::once(reference).chain(candidates.iter()).collect();
+    let files: Vec<&LogitFile> = std::iter::once(reference)
+        .chain(candidates.iter())
+        .collect();
     let nc = candidates.len();
 
     let mut res = EngineResult::default();
@@ -406,22 +523,40 @@ pub fn run(
         .collect();
     for a in 0..nc {
         for b in a + 1..nc {
-            res.pairs.push(PairAccum { a, b, prompts: Vec::new() });
+            res.pairs.push(PairAccum {
+                a,
+                b,
+                prompts: Vec::new(),
+            });
         }
     }
 
-    let ctx = RowCtx { reference, candidates, targets, opts, draws };
+    let ctx = RowCtx {
+        reference,
+        candidates,
+        targets,
+        opts,
+        draws,
+    };
     let block = opts.block_rows.max(1);
     let blank = RowOut {
         counted: false,
         ref_fault: None,
-        cands: vec![CandOut { fault: None, m: [0.0; NMETRIC], est: vec![[[0.0; 3]; 2]; samples.len()] }; nc],
+        cands: vec![
+            CandOut {
+                fault: None,
+                m: [0.0; NMETRIC],
+                est: vec![[[0.0; 3]; 2]; samples.len()]
+            };
+            nc
+        ],
     };
     let mut outs: Vec<RowOut> = vec![blank; block];
     // One scratch per worker thread, taken by the worker's index, so nothing is
     // allocated per row or per task.
-    let scratch: Vec<std::sync::Mutex<Scratch>> =
-        (0..rayon::current_num_threads().max(1)).map(|_| std::sync::Mutex::new(Scratch::new(cols, draws))).collect();
+    let scratch: Vec<std::sync::Mutex<Scratch>> = (0..rayon::current_num_threads().max(1))
+        .map(|_| std::sync::Mutex::new(Scratch::new(cols, draws)))
+        .collect();
     let bar = progress_bar(opts.progress, range.len() as u64);
     let start = std::time::Instant::now();
     let mut row0 = range.start;
@@ -441,17 +576,20 @@ pub fn run(
             // end of the block.
             const TASK_ROWS: usize = 2;
             let slots = &mut outs[..n];
-            slots.par_chunks_mut(TASK_ROWS).enumerate().for_each(|(ti, task)| {
-                let w = rayon::current_thread_index().unwrap_or(0) % scratch.len();
-                let mut s = scratch[w].lock().unwrap_or_else(|e| e.into_inner());
-                for (i, out) in task.iter_mut().enumerate() {
-                    let row = row0 + ti * TASK_ROWS + i;
-                    out.counted = counted(row, &files);
-                    if out.counted {
-                        compute_row(&ctx, &mut s, row, out);
+            slots
+                .par_chunks_mut(TASK_ROWS)
+                .enumerate()
+                .for_each(|(ti, task)| {
+                    let w = rayon::current_thread_index().unwrap_or(0) % scratch.len();
+                    let mut s = scratch[w].lock().unwrap_or_else(|e| e.into_inner());
+                    for (i, out) in task.iter_mut().enumerate() {
+                        let row = row0 + ti * TASK_ROWS + i;
+                        out.counted = counted(row, &files);
+                        if out.counted {
+                            compute_row(&ctx, &mut s, row, out);
+                        }
                     }
-                }
-            });
+                });
         }
         for (i, out) in outs[..n].iter().enumerate() {
             let row = row0 + i;
@@ -483,7 +621,14 @@ pub fn run(
                 }
                 let co = &out.cands[k];
                 fold_position(acc, co, opts, row, prompt, position, target);
-                sink.position(k, row, prompt, position, target, &PositionValues { m: co.m })?;
+                sink.position(
+                    k,
+                    row,
+                    prompt,
+                    position,
+                    target,
+                    &PositionValues { m: co.m },
+                )?;
             }
             for pair in res.pairs.iter_mut() {
                 let (a, b) = (&out.cands[pair.a], &out.cands[pair.b]);
@@ -521,7 +666,15 @@ pub fn worst_order(a: &WorstPosition, b: &WorstPosition) -> std::cmp::Ordering {
     b.kl.total_cmp(&a.kl).then(a.row.cmp(&b.row))
 }
 
-fn fold_position(acc: &mut CandidateAccum, co: &CandOut, opts: &EngineOptions, row: usize, prompt: usize, position: usize, target: Option<i64>) {
+fn fold_position(
+    acc: &mut CandidateAccum,
+    co: &CandOut,
+    opts: &EngineOptions,
+    row: usize,
+    prompt: usize,
+    position: usize,
+    target: Option<i64>,
+) {
     acc.positions += 1;
     let m = &co.m;
     let ps = match acc.prompts.last_mut() {
@@ -553,7 +706,13 @@ fn fold_position(acc: &mut CandidateAccum, co: &CandOut, opts: &EngineOptions, r
         acc.estimators[b][1].add(m[KL_REV], &e[1]);
     }
     // Keep the `top` worst positions (a small sorted list; top is small).
-    let w = WorstPosition { row: row as u64, prompt: prompt as u64, position: position as u64, kl: m[KL], target };
+    let w = WorstPosition {
+        row: row as u64,
+        prompt: prompt as u64,
+        position: position as u64,
+        kl: m[KL],
+        target,
+    };
     if opts.top > 0 {
         let full = acc.worst.len() >= opts.top;
         if !full || worst_order(&w, acc.worst.last().unwrap()).is_lt() {
@@ -570,7 +729,9 @@ fn progress_bar(enabled: bool, len: u64) -> indicatif::ProgressBar {
     }
     // ProgressBar::new draws to stderr only when it is a terminal.
     let bar = indicatif::ProgressBar::new(len);
-    if let Ok(style) = indicatif::ProgressStyle::with_template("{bar:40} {pos}/{len} rows  {per_sec}  eta {eta}") {
+    if let Ok(style) =
+        indicatif::ProgressStyle::with_template("{bar:40} {pos}/{len} rows  {per_sec}  eta {eta}")
+    {
         bar.set_style(style);
     }
     bar
@@ -582,7 +743,10 @@ pub fn top_tokens(file: &LogitFile, row: usize, cols: usize, k: usize) -> Vec<(u
     file.read_row(row, &mut x);
     let mut blocks = vec![0f64; kernel::norm_blocks(cols)];
     match kernel::normalise(&x, &mut blocks) {
-        Ok(n) => kernel::top_k(&x, k).into_iter().map(|(i, v)| (i, (v as f64 - n.lse).exp())).collect(),
+        Ok(n) => kernel::top_k(&x, k)
+            .into_iter()
+            .map(|(i, v)| (i, (v as f64 - n.lse).exp()))
+            .collect(),
         Err(_) => Vec::new(),
     }
 }

@@ -28,16 +28,25 @@ pub type Result<T> = std::result::Result<T, Error>;
 
 impl Error {
     pub fn usage(message: impl Into<String>) -> Error {
-        Error { kind: ErrorKind::Usage, message: message.into() }
+        Error {
+            kind: ErrorKind::Usage,
+            message: message.into(),
+        }
     }
 
     /// An input problem about one file: the message starts with its path.
     pub fn input(path: &Path, message: impl fmt::Display) -> Error {
-        Error { kind: ErrorKind::Input, message: format!("{}: {}", path.display(), message) }
+        Error {
+            kind: ErrorKind::Input,
+            message: format!("{}: {}", path.display(), message),
+        }
     }
 
     pub fn output(path: &Path, message: impl fmt::Display) -> Error {
-        Error { kind: ErrorKind::Output, message: format!("{}: {}", path.display(), message) }
+        Error {
+            kind: ErrorKind::Output,
+            message: format!("{}: {}", path.display(), message),
+        }
     }
 
     /// The process exit code that SPEC assigns to this error.

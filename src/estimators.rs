@@ -39,7 +39,14 @@ pub fn k_values(log_r: f64) -> [f64; 3] {
 #[inline]
 pub fn k3_value(l: f64) -> f64 {
     if l.abs() < 0.01 {
-        const C: [f64; 6] = [1.0 / 2.0, 1.0 / 6.0, 1.0 / 24.0, 1.0 / 120.0, 1.0 / 720.0, 1.0 / 5040.0];
+        const C: [f64; 6] = [
+            1.0 / 2.0,
+            1.0 / 6.0,
+            1.0 / 24.0,
+            1.0 / 120.0,
+            1.0 / 720.0,
+            1.0 / 5040.0,
+        ];
         let mut y = C[5];
         for c in C[..5].iter().rev() {
             y = y * l + c;
@@ -163,7 +170,13 @@ impl EstimatorSums {
         let n = self.n;
         if n == 0.0 {
             let nan = f64::NAN;
-            return KSummary { mean: nan, bias: nan, std: nan, rmse: nan, positions_for_10pct: nan };
+            return KSummary {
+                mean: nan,
+                bias: nan,
+                std: nan,
+                rmse: nan,
+                positions_for_10pct: nan,
+            };
         }
         let mean = self.sum[k] / n;
         let exact = self.exact / n;
@@ -174,7 +187,11 @@ impl EstimatorSums {
         let var = (self.sum_sq[k] / n - mean * mean).max(0.0) * n / (n - 1.0).max(1.0);
         let std = var.sqrt();
         let rel = 0.1 * exact.abs();
-        let need = if rel > 0.0 { (crate::stats::Z95 * std / rel).powi(2).ceil().max(1.0) } else { f64::INFINITY };
+        let need = if rel > 0.0 {
+            (crate::stats::Z95 * std / rel).powi(2).ceil().max(1.0)
+        } else {
+            f64::INFINITY
+        };
         KSummary {
             mean: mean * scale,
             bias: (mean - exact) * scale,
@@ -226,7 +243,10 @@ mod tests {
                 // l^2/2 is the leading term; relative agreement to l/3 (series).
                 if l.abs() < 1e-3 {
                     let lead = 0.5 * l * l;
-                    assert!((k3 - lead).abs() <= lead * (l.abs() / 2.0) + f64::MIN_POSITIVE, "log r = {l}: {k3}");
+                    assert!(
+                        (k3 - lead).abs() <= lead * (l.abs() / 2.0) + f64::MIN_POSITIVE,
+                        "log r = {l}: {k3}"
+                    );
                 }
             }
             lr *= 0.37;
@@ -260,7 +280,9 @@ mod tests {
         // peak in the last block; grouped frequencies against a chi-square
         // bound (df = 9, P(chi2 > 33.7) < 1e-4; common practice).
         let v = 1000usize;
-        let mut x: Vec<f32> = (0..v).map(|i| ((i * 7919 % 1000) as f32 / 250.0).sin() * 2.0).collect();
+        let mut x: Vec<f32> = (0..v)
+            .map(|i| ((i * 7919 % 1000) as f32 / 250.0).sin() * 2.0)
+            .collect();
         for xi in x.iter_mut().take(320).skip(256) {
             *xi = f32::NEG_INFINITY;
         }
@@ -274,7 +296,10 @@ mod tests {
         let mut out = vec![0u32; n];
         let mut order = Vec::new();
         draw_tokens(&x, mx, &blocks, 7, 3, 0, &mut order, &mut out);
-        assert!(out.iter().all(|&t| !(256..320).contains(&(t as usize))), "drew a token of probability 0");
+        assert!(
+            out.iter().all(|&t| !(256..320).contains(&(t as usize))),
+            "drew a token of probability 0"
+        );
         // Ten groups of 100 columns.
         let mut chi2 = 0.0;
         for g in 0..10 {

@@ -25,12 +25,20 @@ pub fn step(dtype: StoredDtype, x: f32) -> f64 {
 /// Expected KL from storage rounding of one row pair (computed by the
 /// vectorised kernel; `step` gives the same steps one value at a time).
 pub fn row_floor(x: &[f32], xd: StoredDtype, y: &[f32], yd: StoredDtype) -> f64 {
-    let r = |d: StoredDtype| crate::kernel::Rounding { mantissa_bits: d.mantissa_bits(), min_exp: d.min_step().log2() as i32 };
+    let r = |d: StoredDtype| crate::kernel::Rounding {
+        mantissa_bits: d.mantissa_bits(),
+        min_exp: d.min_step().log2() as i32,
+    };
     crate::kernel::storage_floor_row(x, r(xd), y, r(yd))
 }
 
 /// Mean floor over up to `max_rows` evenly spaced rows of the pair.
-pub fn storage_floor(reference: &LogitFile, candidate: &LogitFile, cols: usize, max_rows: usize) -> f64 {
+pub fn storage_floor(
+    reference: &LogitFile,
+    candidate: &LogitFile,
+    cols: usize,
+    max_rows: usize,
+) -> f64 {
     let rows = reference.rows.min(candidate.rows);
     if rows == 0 {
         return f64::NAN;

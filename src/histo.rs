@@ -99,7 +99,11 @@ impl KlHistogram {
 
     /// (lower edge, upper edge, count) of every finite bin, in nats.
     pub fn bins(&self) -> impl Iterator<Item = (f64, f64, u64)> + '_ {
-        let n = if self.counts.len() == KL_BINS + 2 { KL_BINS } else { 0 };
+        let n = if self.counts.len() == KL_BINS + 2 {
+            KL_BINS
+        } else {
+            0
+        };
         (1..=n).map(move |s| {
             let (lo, hi) = log_edges(s, KL_LO_EXP, KL_PER_DECADE);
             (lo, hi, self.counts[s])
@@ -169,7 +173,13 @@ impl PositionBin {
 /// Quantile of a log histogram (slot layout of `log_slot`): the slot holding
 /// rank q*(n-1), interpolated in log space within it. Below the first edge it
 /// returns 0, at or above the last edge +inf.
-pub fn hist_quantile<T: Copy + Into<u64>>(counts: &[T], q: f64, lo_exp: i32, per_decade: usize, bins: usize) -> f64 {
+pub fn hist_quantile<T: Copy + Into<u64>>(
+    counts: &[T],
+    q: f64,
+    lo_exp: i32,
+    per_decade: usize,
+    bins: usize,
+) -> f64 {
     let n: u64 = counts.iter().map(|&c| c.into()).sum();
     if n == 0 || counts.len() != bins + 2 {
         return f64::NAN;
@@ -268,13 +278,17 @@ impl TailSums {
         if self.current.as_ref().is_some_and(|c| c.0 != prompt) {
             self.finish();
         }
-        let cur = self.current.get_or_insert_with(|| (prompt, vec![0; KL_BINS + 2]));
+        let cur = self
+            .current
+            .get_or_insert_with(|| (prompt, vec![0; KL_BINS + 2]));
         cur.1[log_slot(kl, KL_LO_EXP, KL_PER_DECADE, KL_BINS)] += 1;
     }
 
     /// Folds the prompt being filled (call once the last position was added).
     pub fn finish(&mut self) {
-        let Some((_, h)) = self.current.take() else { return };
+        let Some((_, h)) = self.current.take() else {
+            return;
+        };
         if self.sq.is_empty() {
             self.sq = vec![0; KL_BINS + 2];
             self.cross = vec![0; KL_BINS + 2];
@@ -309,8 +323,20 @@ impl TailSums {
 /// `v` (within a factor 10^0.05), where `TailSums` holds what its variance
 /// needs. `n_sq` is the sum over prompts of n_g^2, `groups` the number of
 /// prompts with positions; `quantile` reads the quantile function.
-pub fn quantile_interval(hist: &KlHistogram, tail: &TailSums, n_sq: f64, groups: usize, q: f64, v: f64, quantile: impl Fn(f64) -> f64) -> Option<[f64; 2]> {
-    if !(v > 0.0 && v.is_finite()) || groups < 2 || tail.sq.len() != KL_BINS + 2 || hist.counts.len() != KL_BINS + 2 {
+pub fn quantile_interval(
+    hist: &KlHistogram,
+    tail: &TailSums,
+    n_sq: f64,
+    groups: usize,
+    q: f64,
+    v: f64,
+    quantile: impl Fn(f64) -> f64,
+) -> Option<[f64; 2]> {
+    if !(v > 0.0 && v.is_finite())
+        || groups < 2
+        || tail.sq.len() != KL_BINS + 2
+        || hist.counts.len() != KL_BINS + 2
+    {
         return None;
     }
     let x = (v.log10() - KL_LO_EXP as f64) * KL_PER_DECADE as f64;
@@ -324,7 +350,10 @@ pub fn quantile_interval(hist: &KlHistogram, tail: &TailSums, n_sq: f64, groups:
     let ss = (tail.sq[s] as f64 - 2.0 * f * tail.cross[s] as f64 + f * f * n_sq).max(0.0);
     let g = groups as f64;
     let h = crate::stats::Z95 * (g / (g - 1.0) * ss).sqrt() / nf;
-    let (a, b) = (quantile((q - h).clamp(0.0, 1.0)), quantile((q + h).clamp(0.0, 1.0)));
+    let (a, b) = (
+        quantile((q - h).clamp(0.0, 1.0)),
+        quantile((q + h).clamp(0.0, 1.0)),
+    );
     Some([a.min(v), b.max(v)])
 }
 
@@ -381,7 +410,11 @@ mod tests {
     fn tail_sums_match_a_direct_count() {
         // Three prompts; for every edge, sum over prompts of c^2 and c*n
         // computed directly from the values.
-        let prompts: Vec<Vec<f64>> = vec![vec![1e-5, 2e-3, 0.5, 0.0], vec![3e-4; 7], vec![f64::INFINITY, 1e-9]];
+        let prompts: Vec<Vec<f64>> = vec![
+            vec![1e-5, 2e-3, 0.5, 0.0],
+            vec![3e-4; 7],
+            vec![f64::INFINITY, 1e-9],
+        ];
         let mut t = TailSums::default();
         for (g, vals) in prompts.iter().enumerate() {
             for &v in vals {
@@ -392,7 +425,10 @@ mod tests {
         for s in 0..KL_BINS + 2 {
             let (mut sq, mut cross) = (0u64, 0u64);
             for vals in &prompts {
-                let c = vals.iter().filter(|&&v| log_slot(v, KL_LO_EXP, KL_PER_DECADE, KL_BINS) >= s).count() as u64;
+                let c = vals
+                    .iter()
+                    .filter(|&&v| log_slot(v, KL_LO_EXP, KL_PER_DECADE, KL_BINS) >= s)
+                    .count() as u64;
                 sq += c * c;
                 cross += c * vals.len() as u64;
             }
@@ -408,7 +444,9 @@ mod tests {
         // 10^(-6 + 4u) for u evenly spaced: Q(p) = 10^(-6 + 4p).
         let n = 20000usize;
         let (mut h, mut t) = (KlHistogram::default(), TailSums::default());
-        let vals: Vec<f64> = (0..n).map(|i| 10f64.powf(-6.0 + 4.0 * (i as f64 + 0.5) / n as f64)).collect();
+        let vals: Vec<f64> = (0..n)
+            .map(|i| 10f64.powf(-6.0 + 4.0 * (i as f64 + 0.5) / n as f64))
+            .collect();
         for (g, &v) in vals.iter().enumerate() {
             h.add(v);
             t.add(g as u64, v);
@@ -418,16 +456,24 @@ mod tests {
         let quant = |p: f64| 10f64.powf(-6.0 + 4.0 * p);
         let ci = quantile_interval(&h, &t, n as f64, n, q, quant(q), quant).unwrap();
         let se = (q * (1.0 - q) / n as f64).sqrt();
-        let want = [quant(q - crate::stats::Z95 * se), quant(q + crate::stats::Z95 * se)];
+        let want = [
+            quant(q - crate::stats::Z95 * se),
+            quant(q + crate::stats::Z95 * se),
+        ];
         for k in 0..2 {
             // The share is read at the nearest edge, not at the quantile itself.
-            assert!((ci[k].log10() - want[k].log10()).abs() < 2e-3, "{ci:?} vs {want:?}");
+            assert!(
+                (ci[k].log10() - want[k].log10()).abs() < 2e-3,
+                "{ci:?} vs {want:?}"
+            );
         }
     }
 
     #[test]
     fn merging_equals_one_pass() {
-        let vals: Vec<(u64, f64)> = (0..500).map(|i| (i % 97, 1e-5 * (1 + i % 13) as f64)).collect();
+        let vals: Vec<(u64, f64)> = (0..500)
+            .map(|i| (i % 97, 1e-5 * (1 + i % 13) as f64))
+            .collect();
         let mut one = (KlHistogram::default(), PositionProfile::default());
         let mut a = (KlHistogram::default(), PositionProfile::default());
         let mut b = (KlHistogram::default(), PositionProfile::default());

@@ -11,7 +11,11 @@ use std::path::PathBuf;
 use std::process::ExitCode;
 
 #[derive(Parser)]
-#[command(name = "klgauge", version, about = "How far a compressed language model's next-token distribution moved from the original's")]
+#[command(
+    name = "klgauge",
+    version,
+    about = "How far a compressed language model's next-token distribution moved from the original's"
+)]
 struct Cli {
     #[command(subcommand)]
     command: Command,
@@ -109,7 +113,12 @@ struct CompareCli {
     #[arg(long, value_name = "FILE")]
     tokenizer: Option<PathBuf>,
     /// Draws per position for the sampled estimators, e.g. 1,4,16 (0 = none)
-    #[arg(long, value_delimiter = ',', default_value = "1,4,16", value_name = "N[,N...]")]
+    #[arg(
+        long,
+        value_delimiter = ',',
+        default_value = "1,4,16",
+        value_name = "N[,N...]"
+    )]
     samples: Vec<usize>,
     /// Seed of the estimator draws
     #[arg(long, default_value_t = 0, value_name = "S")]
@@ -155,14 +164,25 @@ struct GateCli {
 
 impl GateCli {
     fn limits(&self) -> GateLimits {
-        GateLimits { max_kl_mean: self.max_kl_mean, max_kl_p99: self.max_kl_p99, min_top1: self.min_top1 }
+        GateLimits {
+            max_kl_mean: self.max_kl_mean,
+            max_kl_p99: self.max_kl_p99,
+            min_top1: self.min_top1,
+        }
     }
 }
 
 fn parse_shard(s: &str) -> Result<(usize, usize), Error> {
-    let bad = || Error::usage(format!("--shard {s}: expected I/N with 0 <= I < N, e.g. 0/8"));
+    let bad = || {
+        Error::usage(format!(
+            "--shard {s}: expected I/N with 0 <= I < N, e.g. 0/8"
+        ))
+    };
     let (i, n) = s.split_once('/').ok_or_else(bad)?;
-    let (i, n): (usize, usize) = (i.trim().parse().map_err(|_| bad())?, n.trim().parse().map_err(|_| bad())?);
+    let (i, n): (usize, usize) = (
+        i.trim().parse().map_err(|_| bad())?,
+        n.trim().parse().map_err(|_| bad())?,
+    );
     if n == 0 || i >= n {
         return Err(bad());
     }
@@ -191,13 +211,15 @@ fn install_interrupt_handler() {
     let Ok(mut signals) = signal_hook::iterator::Signals::new([SIGINT, SIGTERM, SIGHUP]) else {
         return;
     };
-    let _ = std::thread::Builder::new().name("interrupt".into()).spawn(move || {
-        if let Some(sig) = signals.forever().next() {
-            klgauge::output::abandon_all();
-            let _ = writeln!(std::io::stderr(), "klgauge: interrupted, no report written");
-            std::process::exit(128 + sig);
-        }
-    });
+    let _ = std::thread::Builder::new()
+        .name("interrupt".into())
+        .spawn(move || {
+            if let Some(sig) = signals.forever().next() {
+                klgauge::output::abandon_all();
+                let _ = writeln!(std::io::stderr(), "klgauge: interrupted, no report written");
+                std::process::exit(128 + sig);
+            }
+        });
 }
 
 #[cfg(not(unix))]
@@ -215,15 +237,23 @@ fn print_text(s: &str) -> Result<(), Error> {
 fn run(cli: Cli) -> Result<ExitCode, Error> {
     match cli.command {
         Command::Compare(c) => {
-            let outputs: Vec<&std::path::Path> =
-                [&c.json, &c.csv, &c.html, &c.partial].into_iter().flatten().map(|p| p.as_path()).collect();
-            let inputs: Vec<&std::path::Path> =
-                std::iter::once(&c.reference).chain(&c.candidates).chain(&c.tokenizer).map(|p| p.as_path()).collect();
+            let outputs: Vec<&std::path::Path> = [&c.json, &c.csv, &c.html, &c.partial]
+                .into_iter()
+                .flatten()
+                .map(|p| p.as_path())
+                .collect();
+            let inputs: Vec<&std::path::Path> = std::iter::once(&c.reference)
+                .chain(&c.candidates)
+                .chain(&c.tokenizer)
+                .map(|p| p.as_path())
+                .collect();
             klgauge::output::check_destinations(&outputs, &inputs)?;
             // Every worker keeps its draws in memory: an absurd count would end
             // in an allocation failure (an abort), not in a clear message.
             if let Some(n) = c.samples.iter().find(|&&n| n > MAX_SAMPLES) {
-                return Err(Error::usage(format!("--samples {n}: at most {MAX_SAMPLES} draws per position")));
+                return Err(Error::usage(format!(
+                    "--samples {n}: at most {MAX_SAMPLES} draws per position"
+                )));
             }
             let args = CompareArgs {
                 reference: c.reference,
@@ -255,15 +285,28 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
         }
         Command::Estimate(c) => {
             use klgauge::commands::estimate::{estimate, write_text, EstimateArgs};
-            klgauge::output::check_destinations(&c.json.iter().map(|p| p.as_path()).collect::<Vec<_>>(), &[c.file.as_path()])?;
-            let r = estimate(&EstimateArgs { file: c.file, json: c.json, bits: c.bits })?;
+            klgauge::output::check_destinations(
+                &c.json.iter().map(|p| p.as_path()).collect::<Vec<_>>(),
+                &[c.file.as_path()],
+            )?;
+            let r = estimate(&EstimateArgs {
+                file: c.file,
+                json: c.json,
+                bits: c.bits,
+            })?;
             print_with(|out| write_text(&r, out))?;
             Ok(ExitCode::SUCCESS)
         }
         Command::Inspect(c) => {
             use klgauge::commands::inspect::{inspect, write_text, InspectArgs};
-            klgauge::output::check_destinations(&c.json.iter().map(|p| p.as_path()).collect::<Vec<_>>(), &[c.file.as_path()])?;
-            let r = inspect(&InspectArgs { file: c.file, json: c.json })?;
+            klgauge::output::check_destinations(
+                &c.json.iter().map(|p| p.as_path()).collect::<Vec<_>>(),
+                &[c.file.as_path()],
+            )?;
+            let r = inspect(&InspectArgs {
+                file: c.file,
+                json: c.json,
+            })?;
             print_with(|out| write_text(&r, out))?;
             Ok(ExitCode::SUCCESS)
         }
@@ -283,8 +326,17 @@ fn run(cli: Cli) -> Result<ExitCode, Error> {
             Ok(ExitCode::SUCCESS)
         }
         Command::Merge(m) => {
-            let outputs: Vec<&std::path::Path> = [&m.json, &m.html].into_iter().flatten().map(|p| p.as_path()).collect();
-            let inputs: Vec<&std::path::Path> = m.partials.iter().chain(&m.tokenizer).map(|p| p.as_path()).collect();
+            let outputs: Vec<&std::path::Path> = [&m.json, &m.html]
+                .into_iter()
+                .flatten()
+                .map(|p| p.as_path())
+                .collect();
+            let inputs: Vec<&std::path::Path> = m
+                .partials
+                .iter()
+                .chain(&m.tokenizer)
+                .map(|p| p.as_path())
+                .collect();
             klgauge::output::check_destinations(&outputs, &inputs)?;
             let args = MergeArgs {
                 partials: m.partials,

@@ -47,13 +47,21 @@ fn target(dest: &Path) -> Result<Target> {
         return Err(Error::usage("an output path is empty"));
     }
     match std::fs::metadata(dest) {
-        Ok(m) if m.is_dir() => return Err(Error::output(dest, "cannot write a report: it is a directory")),
+        Ok(m) if m.is_dir() => {
+            return Err(Error::output(
+                dest,
+                "cannot write a report: it is a directory",
+            ))
+        }
         Ok(m) if !m.is_file() => return Ok(Target::Direct),
         _ => {}
     }
     let dir = parent_dir(dest);
     if !dir.is_dir() {
-        return Err(Error::output(dest, "cannot write: the directory does not exist"));
+        return Err(Error::output(
+            dest,
+            "cannot write: the directory does not exist",
+        ));
     }
     Ok(Target::Replace(dir))
 }
@@ -68,11 +76,18 @@ impl AtomicFile {
                     .write(true)
                     .open(dest)
                     .map_err(|e| Error::output(dest, format!("cannot write: {e}")))?;
-                return Ok(AtomicFile { dest: dest.to_path_buf(), tmp: None, out: Some(BufWriter::with_capacity(1 << 20, f)) });
+                return Ok(AtomicFile {
+                    dest: dest.to_path_buf(),
+                    tmp: None,
+                    out: Some(BufWriter::with_capacity(1 << 20, f)),
+                });
             }
             Target::Replace(dir) => dir,
         };
-        let name = dest.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_else(|| "report".into());
+        let name = dest
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_else(|| "report".into());
         let tmp = dir.join(format!(
             ".{name}.klgauge-{}-{}.tmp",
             std::process::id(),
@@ -90,7 +105,11 @@ impl AtomicFile {
             temps.push(tmp.clone());
             f
         };
-        Ok(AtomicFile { dest: dest.to_path_buf(), tmp: Some(tmp), out: Some(BufWriter::with_capacity(1 << 20, f)) })
+        Ok(AtomicFile {
+            dest: dest.to_path_buf(),
+            tmp: Some(tmp),
+            out: Some(BufWriter::with_capacity(1 << 20, f)),
+        })
     }
 
     pub fn writer(&mut self) -> &mut BufWriter<File> {
@@ -117,14 +136,18 @@ impl AtomicFile {
     }
 
     fn finish(&mut self, w: BufWriter<File>) -> Result<()> {
-        let f = w.into_inner().map_err(|e| Error::output(&self.dest, format!("write failed: {}", e.error())))?;
+        let f = w
+            .into_inner()
+            .map_err(|e| Error::output(&self.dest, format!("write failed: {}", e.error())))?;
         let Some(tmp) = self.tmp.clone() else {
             return Ok(());
         };
-        f.sync_all().map_err(|e| Error::output(&self.dest, format!("write failed: {e}")))?;
+        f.sync_all()
+            .map_err(|e| Error::output(&self.dest, format!("write failed: {e}")))?;
         drop(f);
         let mut temps = temps();
-        std::fs::rename(&tmp, &self.dest).map_err(|e| Error::output(&self.dest, format!("cannot move into place: {e}")))?;
+        std::fs::rename(&tmp, &self.dest)
+            .map_err(|e| Error::output(&self.dest, format!("cannot move into place: {e}")))?;
         temps.retain(|x| *x != tmp);
         self.tmp = None;
         Ok(())
@@ -148,7 +171,10 @@ impl Drop for AtomicFile {
 }
 
 /// Writes a whole file atomically from a closure.
-pub fn write_atomic(dest: &Path, f: impl FnOnce(&mut dyn Write) -> std::io::Result<()>) -> Result<()> {
+pub fn write_atomic(
+    dest: &Path,
+    f: impl FnOnce(&mut dyn Write) -> std::io::Result<()>,
+) -> Result<()> {
     let mut a = AtomicFile::create(dest)?;
     f(a.writer()).map_err(|e| a.write_err(e))?;
     a.commit()
@@ -166,10 +192,17 @@ pub fn check_destinations(outputs: &[&Path], inputs: &[&Path]) -> Result<()> {
     for (i, o) in outputs.iter().enumerate() {
         target(o)?;
         if let Some(inp) = inputs.iter().find(|p| same(o, p)) {
-            return Err(Error::usage(format!("{}: a report would overwrite the input {}", o.display(), inp.display())));
+            return Err(Error::usage(format!(
+                "{}: a report would overwrite the input {}",
+                o.display(),
+                inp.display()
+            )));
         }
         if outputs[..i].iter().any(|p| same(o, p)) {
-            return Err(Error::usage(format!("{}: given for two reports", o.display())));
+            return Err(Error::usage(format!(
+                "{}: given for two reports",
+                o.display()
+            )));
         }
     }
     Ok(())
@@ -219,7 +252,10 @@ mod tests {
     }
 
     fn entries(d: &Path) -> Vec<String> {
-        let mut v: Vec<String> = std::fs::read_dir(d).unwrap().map(|e| e.unwrap().file_name().to_string_lossy().into_owned()).collect();
+        let mut v: Vec<String> = std::fs::read_dir(d)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .collect();
         v.sort();
         v
     }
@@ -231,7 +267,10 @@ mod tests {
         std::fs::write(&dest, "old").unwrap();
         let e = write_atomic(&dest, |w| {
             w.write_all(b"new, but")?;
-            Err(std::io::Error::new(std::io::ErrorKind::Other, "disk on fire"))
+            Err(std::io::Error::new(
+                std::io::ErrorKind::Other,
+                "disk on fire",
+            ))
         })
         .unwrap_err();
         assert!(e.message.contains("disk on fire"));

@@ -12,7 +12,9 @@
 //! The file format (JSON, `"schema": "klgauge-partial/1"`) is documented
 //! field by field in docs/partial-format.md.
 
-use crate::engine::{self, CandidateAccum, EngineResult, PairAccum, PromptSums, SkippedRow, WorstPosition, NMETRIC};
+use crate::engine::{
+    self, CandidateAccum, EngineResult, PairAccum, PromptSums, SkippedRow, WorstPosition, NMETRIC,
+};
 use crate::error::{Error, ErrorKind, Result};
 use crate::estimators::EstimatorSums;
 use crate::input::{LogitFile, StoredDtype};
@@ -27,7 +29,17 @@ pub const SCHEMA: &str = "klgauge-partial/1";
 
 /// Metric names in the order of every per-metric array of the format (the
 /// engine's metric slots).
-pub const METRICS: [&str; NMETRIC] = ["kl", "kl_reverse", "tv", "js", "entropy_ref", "entropy_cand", "nll_ref", "nll_cand", "top1_agree"];
+pub const METRICS: [&str; NMETRIC] = [
+    "kl",
+    "kl_reverse",
+    "tv",
+    "js",
+    "entropy_ref",
+    "entropy_cand",
+    "nll_ref",
+    "nll_cand",
+    "top1_agree",
+];
 
 /// A float that survives JSON: finite values are numbers (written in the
 /// shortest form that reads back to the same bits), and +inf, -inf and NaN,
@@ -279,11 +291,18 @@ pub struct TimingRecord {
 /// The prompts and rows of shard `index` of `count`: prompts
 /// [index*P/count, (index+1)*P/count), so a prompt is never split and the
 /// shards cover every prompt exactly once.
-pub fn shard_range(reference: &LogitFile, index: usize, count: usize) -> (Range<usize>, Range<usize>) {
+pub fn shard_range(
+    reference: &LogitFile,
+    index: usize,
+    count: usize,
+) -> (Range<usize>, Range<usize>) {
     let p = reference.prompts() as u128;
     let lo = (index as u128 * p / count as u128) as usize;
     let hi = ((index as u128 + 1) * p / count as u128) as usize;
-    (lo..hi, reference.prompt_starts[lo]..reference.prompt_starts[hi])
+    (
+        lo..hi,
+        reference.prompt_starts[lo]..reference.prompt_starts[hi],
+    )
 }
 
 /// FNV-1a, 64 bits (Fowler, Noll and Vo; common practice): a fast
@@ -374,7 +393,12 @@ pub fn input_record(f: &LogitFile) -> InputRecord {
 
 /// The storage floor over the sampled rows that fall in `rows`: (sum, count),
 /// so the merged floor is the mean over the same rows a single run samples.
-fn floor_part(reference: &LogitFile, candidate: &LogitFile, cols: usize, rows: &Range<usize>) -> (f64, u64) {
+fn floor_part(
+    reference: &LogitFile,
+    candidate: &LogitFile,
+    cols: usize,
+    rows: &Range<usize>,
+) -> (f64, u64) {
     let all = reference.rows.min(candidate.rows);
     let (mut x, mut y) = (vec![0f32; cols], vec![0f32; cols]);
     let (mut sum, mut n) = (0f64, 0u64);
@@ -391,11 +415,23 @@ fn floor_part(reference: &LogitFile, candidate: &LogitFile, cols: usize, rows: &
 }
 
 fn sums_record(e: &EstimatorSums) -> SumsRecord {
-    SumsRecord { n: e.n as u64, exact: Num(e.exact), sum: nums(&e.sum), sum_sq: nums(&e.sum_sq), sum_err_sq: nums(&e.sum_err_sq) }
+    SumsRecord {
+        n: e.n as u64,
+        exact: Num(e.exact),
+        sum: nums(&e.sum),
+        sum_sq: nums(&e.sum_sq),
+        sum_err_sq: nums(&e.sum_err_sq),
+    }
 }
 
 fn sums_from(r: &SumsRecord) -> EstimatorSums {
-    EstimatorSums { n: r.n as f64, exact: r.exact.0, sum: floats(&r.sum), sum_sq: floats(&r.sum_sq), sum_err_sq: floats(&r.sum_err_sq) }
+    EstimatorSums {
+        n: r.n as f64,
+        exact: r.exact.0,
+        sum: floats(&r.sum),
+        sum_sq: floats(&r.sum_sq),
+        sum_err_sq: floats(&r.sum_err_sq),
+    }
 }
 
 pub fn sketch_record(s: &Sketch) -> SketchRecord {
@@ -408,8 +444,14 @@ pub fn sketch_record(s: &Sketch) -> SketchRecord {
         neg_inf: p.neg_inf,
         min: Num(p.min),
         max: Num(p.max),
-        positive: StoreRecord { offset: p.positive.offset, counts: p.positive.counts },
-        negative: StoreRecord { offset: p.negative.offset, counts: p.negative.counts },
+        positive: StoreRecord {
+            offset: p.positive.offset,
+            counts: p.positive.counts,
+        },
+        negative: StoreRecord {
+            offset: p.negative.offset,
+            counts: p.negative.counts,
+        },
     }
 }
 
@@ -422,8 +464,14 @@ pub fn sketch_from(r: &SketchRecord) -> std::result::Result<Sketch, String> {
         neg_inf: r.neg_inf,
         min: r.min.0,
         max: r.max.0,
-        positive: Store { offset: r.positive.offset, counts: r.positive.counts.clone() },
-        negative: Store { offset: r.negative.offset, counts: r.negative.counts.clone() },
+        positive: Store {
+            offset: r.positive.offset,
+            counts: r.positive.counts.clone(),
+        },
+        negative: Store {
+            offset: r.negative.offset,
+            counts: r.negative.counts.clone(),
+        },
     })
 }
 
@@ -460,7 +508,11 @@ pub fn from_run(run: &ShardRun, result: EngineResult) -> Partial {
             .iter()
             .map(|w| {
                 let rw = report::resolve_worst(run.reference, file, run.cols, run.targets, w);
-                let toks = |v: &[(u32, f64)]| v.iter().map(|&(id, p)| TokenRecord { id, p: Num(p) }).collect();
+                let toks = |v: &[(u32, f64)]| {
+                    v.iter()
+                        .map(|&(id, p)| TokenRecord { id, p: Num(p) })
+                        .collect()
+                };
                 WorstRecord {
                     row: w.row,
                     prompt: w.prompt,
@@ -483,7 +535,13 @@ pub fn from_run(run: &ShardRun, result: EngineResult) -> Partial {
             prompts: acc
                 .prompts
                 .iter()
-                .map(|p| PromptRecord { prompt: p.prompt, n: p.n as u64, n_target: p.n_target as u64, sum: nums(&p.sum), max_kl: Num(p.max_kl) })
+                .map(|p| PromptRecord {
+                    prompt: p.prompt,
+                    n: p.n as u64,
+                    n_target: p.n_target as u64,
+                    sum: nums(&p.sum),
+                    max_kl: Num(p.max_kl),
+                })
                 .collect(),
             sketches,
             estimators: run
@@ -491,10 +549,17 @@ pub fn from_run(run: &ShardRun, result: EngineResult) -> Partial {
                 .samples
                 .iter()
                 .zip(&acc.estimators)
-                .map(|(&s, e)| EstimatorRecord { samples_per_position: s, forward: sums_record(&e[0]), reverse: sums_record(&e[1]) })
+                .map(|(&s, e)| EstimatorRecord {
+                    samples_per_position: s,
+                    forward: sums_record(&e[0]),
+                    reverse: sums_record(&e[1]),
+                })
                 .collect(),
             worst_positions,
-            storage_floor: FloorRecord { sum: Num(fsum), rows: frows },
+            storage_floor: FloorRecord {
+                sum: Num(fsum),
+                rows: frows,
+            },
             kl_histogram: acc.kl_hist.clone(),
             kl_by_position: acc.by_position.clone(),
             kl_tail: acc.kl_tail.clone(),
@@ -506,12 +571,23 @@ pub fn from_run(run: &ShardRun, result: EngineResult) -> Partial {
         .map(|p| PairRecord {
             a: p.a,
             b: p.b,
-            prompts: p.prompts.iter().map(|&(prompt, n, s)| PairPromptRecord { prompt, n: n as u64, sum_diff: Num(s) }).collect(),
+            prompts: p
+                .prompts
+                .iter()
+                .map(|&(prompt, n, s)| PairPromptRecord {
+                    prompt,
+                    n: n as u64,
+                    sum_diff: Num(s),
+                })
+                .collect(),
         })
         .collect();
     Partial {
         schema: SCHEMA.into(),
-        tool: ToolRecord { name: "klgauge".into(), version: env!("CARGO_PKG_VERSION").into() },
+        tool: ToolRecord {
+            name: "klgauge".into(),
+            version: env!("CARGO_PKG_VERSION").into(),
+        },
         shard: ShardRecord {
             index: run.index,
             count: run.count,
@@ -523,7 +599,10 @@ pub fn from_run(run: &ShardRun, result: EngineResult) -> Partial {
         metrics: METRICS.iter().map(|s| s.to_string()).collect(),
         candidates,
         pairs,
-        timing: TimingRecord { exact_pass_seconds: result.seconds, rows_processed: result.rows_processed },
+        timing: TimingRecord {
+            exact_pass_seconds: result.seconds,
+            rows_processed: result.rows_processed,
+        },
     }
 }
 
@@ -540,12 +619,18 @@ pub fn write(p: &Partial, dest: &Path) -> Result<()> {
 
 /// Reads one partial result and checks that it is well formed on its own.
 pub fn read(path: &Path) -> Result<Partial> {
-    let bytes = std::fs::read(path).map_err(|e| Error::input(path, format!("cannot read partial result: {e}")))?;
+    let bytes = std::fs::read(path)
+        .map_err(|e| Error::input(path, format!("cannot read partial result: {e}")))?;
     #[derive(Deserialize)]
     struct Probe {
         schema: Option<serde_json::Value>,
     }
-    let probe: Probe = serde_json::from_slice(&bytes).map_err(|e| Error::input(path, format!("is not a klgauge partial result (not a JSON object: {e})")))?;
+    let probe: Probe = serde_json::from_slice(&bytes).map_err(|e| {
+        Error::input(
+            path,
+            format!("is not a klgauge partial result (not a JSON object: {e})"),
+        )
+    })?;
     match probe.schema.as_ref().and_then(|s| s.as_str()) {
         Some(SCHEMA) => {}
         Some(other) if other.starts_with("klgauge-partial/") => {
@@ -554,7 +639,8 @@ pub fn read(path: &Path) -> Result<Partial> {
         Some(other) => return Err(Error::input(path, format!("is not a klgauge partial result (its schema is \"{other}\", expected \"{SCHEMA}\")"))),
         None => return Err(Error::input(path, format!("is not a klgauge partial result (no \"schema\": \"{SCHEMA}\")"))),
     }
-    let p: Partial = serde_json::from_slice(&bytes).map_err(|e| Error::input(path, format!("is a damaged partial result: {e}")))?;
+    let p: Partial = serde_json::from_slice(&bytes)
+        .map_err(|e| Error::input(path, format!("is a damaged partial result: {e}")))?;
     check_one(&p).map_err(|m| Error::input(path, format!("is a damaged partial result: {m}")))?;
     Ok(p)
 }
@@ -569,15 +655,32 @@ fn check_one(p: &Partial) -> std::result::Result<(), String> {
     if s.count == 0 || s.index >= s.count {
         return Err(format!("shard {}/{} is not a valid I/N", s.index, s.count));
     }
-    if !(s.prompts[0] <= s.prompts[1] && s.prompts[1] <= p.reference.prompts && s.rows[0] <= s.rows[1] && s.rows[1] <= p.reference.rows) {
-        return Err(format!("shard ranges prompts {:?} rows {:?} do not fit the reference's {} prompts, {} rows", s.prompts, s.rows, p.reference.prompts, p.reference.rows));
+    if !(s.prompts[0] <= s.prompts[1]
+        && s.prompts[1] <= p.reference.prompts
+        && s.rows[0] <= s.rows[1]
+        && s.rows[1] <= p.reference.rows)
+    {
+        return Err(format!(
+            "shard ranges prompts {:?} rows {:?} do not fit the reference's {} prompts, {} rows",
+            s.prompts, s.rows, p.reference.prompts, p.reference.rows
+        ));
     }
-    let (np, i, n) = (p.reference.prompts as u128, s.index as u128, s.count as u128);
+    let (np, i, n) = (
+        p.reference.prompts as u128,
+        s.index as u128,
+        s.count as u128,
+    );
     if s.prompts != [(i * np / n) as u64, ((i + 1) * np / n) as u64] {
-        return Err(format!("shard {}/{} covers prompts {:?}, not the split this build makes", s.index, s.count, s.prompts));
+        return Err(format!(
+            "shard {}/{} covers prompts {:?}, not the split this build makes",
+            s.index, s.count, s.prompts
+        ));
     }
     if dtype_of(&p.reference.dtype).is_none() {
-        return Err(format!("reference dtype `{}` is unknown", p.reference.dtype));
+        return Err(format!(
+            "reference dtype `{}` is unknown",
+            p.reference.dtype
+        ));
     }
     let a = p.settings.sketch_relative_accuracy;
     if !(a > 0.0 && a < 1.0) {
@@ -593,56 +696,106 @@ fn check_one(p: &Partial) -> std::result::Result<(), String> {
             return Err(at(format!("dtype `{}` is unknown", c.input.dtype)));
         }
         if c.sketches.len() != NMETRIC {
-            return Err(at(format!("{} sketches, expected one per metric ({NMETRIC})", c.sketches.len())));
+            return Err(at(format!(
+                "{} sketches, expected one per metric ({NMETRIC})",
+                c.sketches.len()
+            )));
         }
         for (m, sk) in c.sketches.iter().enumerate() {
             if sk.relative_accuracy != a {
-                return Err(at(format!("the {} sketch has relative accuracy {}, the settings say {a}", METRICS[m], sk.relative_accuracy)));
+                return Err(at(format!(
+                    "the {} sketch has relative accuracy {}, the settings say {a}",
+                    METRICS[m], sk.relative_accuracy
+                )));
             }
             sketch_from(sk).map_err(|e| at(format!("{} sketch: {e}", METRICS[m])))?;
         }
-        let ns: Vec<usize> = c.estimators.iter().map(|e| e.samples_per_position).collect();
+        let ns: Vec<usize> = c
+            .estimators
+            .iter()
+            .map(|e| e.samples_per_position)
+            .collect();
         if ns != p.settings.samples {
-            return Err(at(format!("estimators for {ns:?} draws per position, the settings say {:?}", p.settings.samples)));
+            return Err(at(format!(
+                "estimators for {ns:?} draws per position, the settings say {:?}",
+                p.settings.samples
+            )));
         }
         let mut last = None;
         for pr in &c.prompts {
-            if pr.prompt < s.prompts[0] || pr.prompt >= s.prompts[1] || last.is_some_and(|l| pr.prompt <= l) {
-                return Err(at(format!("prompt {} is out of order or outside the shard's prompts {:?}", pr.prompt, s.prompts)));
+            if pr.prompt < s.prompts[0]
+                || pr.prompt >= s.prompts[1]
+                || last.is_some_and(|l| pr.prompt <= l)
+            {
+                return Err(at(format!(
+                    "prompt {} is out of order or outside the shard's prompts {:?}",
+                    pr.prompt, s.prompts
+                )));
             }
             last = Some(pr.prompt);
         }
         let counted: u64 = c.prompts.iter().map(|p| p.n).sum();
         if counted != c.positions || c.sketches[engine::KL].count > c.positions {
-            return Err(at(format!("{} positions, but its prompts count {counted} and its kl sketch {}", c.positions, c.sketches[engine::KL].count)));
+            return Err(at(format!(
+                "{} positions, but its prompts count {counted} and its kl sketch {}",
+                c.positions,
+                c.sketches[engine::KL].count
+            )));
         }
         let binned = c.kl_histogram.total();
         let by_pos: u64 = c.kl_by_position.bins.iter().map(|b| b.n).sum();
         if (binned != 0 && binned != c.positions) || (by_pos != 0 && by_pos != c.positions) {
-            return Err(at(format!("{} positions, but its kl histogram holds {binned} and its position bins {by_pos}", c.positions)));
+            return Err(at(format!(
+                "{} positions, but its kl histogram holds {binned} and its position bins {by_pos}",
+                c.positions
+            )));
         }
         let slots = crate::histo::KL_BINS + 2;
         let t = &c.kl_tail;
-        if t.sq.len() != t.cross.len() || !(t.sq.is_empty() || t.sq.len() == slots) || (!t.sq.is_empty() && c.kl_histogram.counts.len() != slots) {
-            return Err(at(format!("kl_tail holds {} and {} sums, expected {slots} each, beside a kl histogram", t.sq.len(), t.cross.len())));
+        if t.sq.len() != t.cross.len()
+            || !(t.sq.is_empty() || t.sq.len() == slots)
+            || (!t.sq.is_empty() && c.kl_histogram.counts.len() != slots)
+        {
+            return Err(at(format!(
+                "kl_tail holds {} and {} sums, expected {slots} each, beside a kl histogram",
+                t.sq.len(),
+                t.cross.len()
+            )));
         }
         if c.worst_positions.len() > p.settings.top {
-            return Err(at(format!("{} worst positions, more than top {}", c.worst_positions.len(), p.settings.top)));
+            return Err(at(format!(
+                "{} worst positions, more than top {}",
+                c.worst_positions.len(),
+                p.settings.top
+            )));
         }
-        if let Some(w) = c.worst_positions.iter().find(|w| w.row < s.rows[0] || w.row >= s.rows[1]) {
-            return Err(at(format!("worst position at row {} lies outside the shard's rows {:?}", w.row, s.rows)));
+        if let Some(w) = c
+            .worst_positions
+            .iter()
+            .find(|w| w.row < s.rows[0] || w.row >= s.rows[1])
+        {
+            return Err(at(format!(
+                "worst position at row {} lies outside the shard's rows {:?}",
+                w.row, s.rows
+            )));
         }
     }
-    let want: Vec<(usize, usize)> = (0..nc).flat_map(|a| (a + 1..nc).map(move |b| (a, b))).collect();
+    let want: Vec<(usize, usize)> = (0..nc)
+        .flat_map(|a| (a + 1..nc).map(move |b| (a, b)))
+        .collect();
     let have: Vec<(usize, usize)> = p.pairs.iter().map(|x| (x.a, x.b)).collect();
     if have != want {
-        return Err(format!("paired differences for {have:?}, expected {want:?}"));
+        return Err(format!(
+            "paired differences for {have:?}, expected {want:?}"
+        ));
     }
     Ok(())
 }
 
 fn dtype_of(name: &str) -> Option<StoredDtype> {
-    [StoredDtype::F32, StoredDtype::F16, StoredDtype::BF16].into_iter().find(|d| d.name() == name)
+    [StoredDtype::F32, StoredDtype::F16, StoredDtype::BF16]
+        .into_iter()
+        .find(|d| d.name() == name)
 }
 
 fn grouping_static(name: &str) -> &'static str {
@@ -668,7 +821,13 @@ fn summary_of(r: &InputRecord) -> FileSummary {
 /// Why two input records are not the same input (None when they are).
 /// Paths are not compared: a cluster may mount the same files elsewhere.
 fn input_difference(a: &InputRecord, b: &InputRecord) -> Option<String> {
-    if a.fingerprint != b.fingerprint || a.rows != b.rows || a.vocab != b.vocab || a.dtype != b.dtype || a.shape != b.shape || a.prompts != b.prompts {
+    if a.fingerprint != b.fingerprint
+        || a.rows != b.rows
+        || a.vocab != b.vocab
+        || a.dtype != b.dtype
+        || a.shape != b.shape
+        || a.prompts != b.prompts
+    {
         Some(format!(
             "{} ({}, shape {:?}, fingerprint {}) instead of {} ({}, shape {:?}, fingerprint {})",
             b.path, b.dtype, b.shape, b.fingerprint, a.path, a.dtype, a.shape, a.fingerprint
@@ -681,19 +840,33 @@ fn input_difference(a: &InputRecord, b: &InputRecord) -> Option<String> {
 /// Why partial `b` cannot be merged with partial `a` (None when it can).
 fn run_difference(a: &Partial, b: &Partial) -> Option<String> {
     if a.tool.version != b.tool.version {
-        return Some(format!("it was written by klgauge {}, the others by {}", b.tool.version, a.tool.version));
+        return Some(format!(
+            "it was written by klgauge {}, the others by {}",
+            b.tool.version, a.tool.version
+        ));
     }
     if a.shard.count != b.shard.count {
-        return Some(format!("it is one of {} shards, the others of {}", b.shard.count, a.shard.count));
+        return Some(format!(
+            "it is one of {} shards, the others of {}",
+            b.shard.count, a.shard.count
+        ));
     }
     if a.settings != b.settings {
-        return Some(format!("its settings {} differ from the others' {}", settings_text(&b.settings), settings_text(&a.settings)));
+        return Some(format!(
+            "its settings {} differ from the others' {}",
+            settings_text(&b.settings),
+            settings_text(&a.settings)
+        ));
     }
     if let Some(d) = input_difference(&a.reference, &b.reference) {
         return Some(format!("its reference is {d}"));
     }
     if a.candidates.len() != b.candidates.len() {
-        return Some(format!("it has {} candidates, the others {}", b.candidates.len(), a.candidates.len()));
+        return Some(format!(
+            "it has {} candidates, the others {}",
+            b.candidates.len(),
+            a.candidates.len()
+        ));
     }
     for (k, (x, y)) in a.candidates.iter().zip(&b.candidates).enumerate() {
         if let Some(d) = input_difference(&x.input, &y.input) {
@@ -707,7 +880,11 @@ fn settings_text(s: &SettingsRecord) -> String {
     format!(
         "(vocab {}{}, samples {:?}, seed {}, top {}, js {}, bits {}, sketch accuracy {})",
         s.compared_vocab,
-        if s.vocab.is_some() { " via --vocab" } else { "" },
+        if s.vocab.is_some() {
+            " via --vocab"
+        } else {
+            ""
+        },
         s.samples,
         s.seed,
         s.top,
@@ -740,7 +917,10 @@ pub struct MergedCandidate {
 }
 
 fn merge_error(message: String) -> Error {
-    Error { kind: ErrorKind::Input, message }
+    Error {
+        kind: ErrorKind::Input,
+        message,
+    }
 }
 
 /// Checks that the partials are the shards 0..N of one run, each once, and
@@ -751,20 +931,39 @@ pub fn merge(parts: Vec<(PathBuf, Partial)>) -> Result<Merged> {
     };
     for (path, p) in &parts[1..] {
         if let Some(why) = run_difference(first, p) {
-            return Err(Error::input(path, format!("is a partial result of a different run than {}: {why}", first_path.display())));
+            return Err(Error::input(
+                path,
+                format!(
+                    "is a partial result of a different run than {}: {why}",
+                    first_path.display()
+                ),
+            ));
         }
     }
     let n = first.shard.count;
     let mut by_index: Vec<Option<usize>> = vec![None; n];
     for (i, (path, p)) in parts.iter().enumerate() {
         if let Some(j) = by_index[p.shard.index] {
-            return Err(Error::input(path, format!("holds shard {}/{n}, which {} already holds", p.shard.index, parts[j].0.display())));
+            return Err(Error::input(
+                path,
+                format!(
+                    "holds shard {}/{n}, which {} already holds",
+                    p.shard.index,
+                    parts[j].0.display()
+                ),
+            ));
         }
         by_index[p.shard.index] = Some(i);
     }
-    let missing: Vec<String> = (0..n).filter(|&i| by_index[i].is_none()).map(|i| format!("{i}/{n}")).collect();
+    let missing: Vec<String> = (0..n)
+        .filter(|&i| by_index[i].is_none())
+        .map(|i| format!("{i}/{n}"))
+        .collect();
     if !missing.is_empty() {
-        let given: Vec<String> = parts.iter().map(|(path, p)| format!("{} = {}/{n}", path.display(), p.shard.index)).collect();
+        let given: Vec<String> = parts
+            .iter()
+            .map(|(path, p)| format!("{} = {}/{n}", path.display(), p.shard.index))
+            .collect();
         return Err(merge_error(format!(
             "shard{} {} of this run {} missing: no partial result was given for {} (given: {})",
             if missing.len() > 1 { "s" } else { "" },
@@ -784,7 +983,9 @@ pub fn merge(parts: Vec<(PathBuf, Partial)>) -> Result<Merged> {
             estimators: vec![Default::default(); settings.samples.len()],
             ..Default::default()
         };
-        let mut sketches: Vec<Sketch> = (0..NMETRIC).map(|_| Sketch::new(settings.sketch_relative_accuracy)).collect();
+        let mut sketches: Vec<Sketch> = (0..NMETRIC)
+            .map(|_| Sketch::new(settings.sketch_relative_accuracy))
+            .collect();
         let mut worst = Vec::new();
         let (mut floor_sum, mut floor_rows) = (0f64, 0u64);
         for p in &ordered {
@@ -816,7 +1017,13 @@ pub fn merge(parts: Vec<(PathBuf, Partial)>) -> Result<Merged> {
             worst.extend(c.worst_positions.iter().map(|w| {
                 let toks = |v: &[TokenRecord]| v.iter().map(|t| (t.id, t.p.0)).collect();
                 ResolvedWorst {
-                    at: WorstPosition { row: w.row, prompt: w.prompt, position: w.position, kl: w.kl.0, target: w.target },
+                    at: WorstPosition {
+                        row: w.row,
+                        prompt: w.prompt,
+                        position: w.position,
+                        kl: w.kl.0,
+                        target: w.target,
+                    },
                     ref_top: toks(&w.ref_top),
                     cand_top: toks(&w.cand_top),
                     context: w.context.clone(),
@@ -832,7 +1039,14 @@ pub fn merge(parts: Vec<(PathBuf, Partial)>) -> Result<Merged> {
         worst.sort_by(|a, b| engine::worst_order(&a.at, &b.at));
         worst.truncate(settings.top);
         acc.worst = worst.iter().map(|w| w.at.clone()).collect();
-        candidates.push(MergedCandidate { file: summary_of(&first.candidates[k].input), acc, sketches, worst, floor_sum, floor_rows });
+        candidates.push(MergedCandidate {
+            file: summary_of(&first.candidates[k].input),
+            acc,
+            sketches,
+            worst,
+            floor_sum,
+            floor_rows,
+        });
     }
     let pairs = first
         .pairs
@@ -841,7 +1055,15 @@ pub fn merge(parts: Vec<(PathBuf, Partial)>) -> Result<Merged> {
         .map(|(j, pr)| PairAccum {
             a: pr.a,
             b: pr.b,
-            prompts: ordered.iter().flat_map(|p| p.pairs[j].prompts.iter().map(|x| (x.prompt, x.n as f64, x.sum_diff.0))).collect(),
+            prompts: ordered
+                .iter()
+                .flat_map(|p| {
+                    p.pairs[j]
+                        .prompts
+                        .iter()
+                        .map(|x| (x.prompt, x.n as f64, x.sum_diff.0))
+                })
+                .collect(),
         })
         .collect();
     Ok(Merged {
@@ -873,7 +1095,13 @@ pub fn sketch_aggregate(s: &Sketch, groups: impl Iterator<Item = (f64, f64)> + C
 
 /// The report of merged partials, through the builder a single run uses.
 /// `top` may lower the partials' own; `bits` adds to theirs.
-pub fn report(m: &Merged, top: usize, bits: bool, gates: report::GateLimits, vocabulary: Option<&crate::tokens::Vocabulary>) -> report::Report {
+pub fn report(
+    m: &Merged,
+    top: usize,
+    bits: bool,
+    gates: report::GateLimits,
+    vocabulary: Option<&crate::tokens::Vocabulary>,
+) -> report::Report {
     let settings = ReportSettings {
         cols: m.settings.compared_vocab as usize,
         bits: bits || m.settings.bits,
@@ -881,8 +1109,15 @@ pub fn report(m: &Merged, top: usize, bits: bool, gates: report::GateLimits, voc
         seed: m.settings.seed,
         top,
         js: m.settings.js,
-        shard: Some(format!("merged from {} shard{}", m.shards, if m.shards == 1 { "" } else { "s" })),
-        percentiles: format!("sketch: within {} (relative) of the exact value", m.settings.sketch_relative_accuracy),
+        shard: Some(format!(
+            "merged from {} shard{}",
+            m.shards,
+            if m.shards == 1 { "" } else { "s" }
+        )),
+        percentiles: format!(
+            "sketch: within {} (relative) of the exact value",
+            m.settings.sketch_relative_accuracy
+        ),
         gates,
         vocabulary,
     };
@@ -890,19 +1125,42 @@ pub fn report(m: &Merged, top: usize, bits: bool, gates: report::GateLimits, voc
         .candidates
         .iter()
         .map(|c| {
-            let aggregates: Vec<Aggregate> = (0..NMETRIC).map(|metric| sketch_aggregate(&c.sketches[metric], c.acc.prompts.iter().map(move |p| (p.count(metric), p.sum[metric])))).collect();
-            let p99_ci = report::p99_interval(&c.acc, aggregates[engine::KL].p99, |q| c.sketches[engine::KL].quantile(q));
+            let aggregates: Vec<Aggregate> = (0..NMETRIC)
+                .map(|metric| {
+                    sketch_aggregate(
+                        &c.sketches[metric],
+                        c.acc
+                            .prompts
+                            .iter()
+                            .map(move |p| (p.count(metric), p.sum[metric])),
+                    )
+                })
+                .collect();
+            let p99_ci = report::p99_interval(&c.acc, aggregates[engine::KL].p99, |q| {
+                c.sketches[engine::KL].quantile(q)
+            });
             CandidateSource {
                 file: c.file.clone(),
                 acc: &c.acc,
                 aggregates,
                 worst: c.worst.iter().take(top).cloned().collect(),
-                storage_floor: if c.floor_rows > 0 { c.floor_sum / c.floor_rows as f64 } else { f64::NAN },
+                storage_floor: if c.floor_rows > 0 {
+                    c.floor_sum / c.floor_rows as f64
+                } else {
+                    f64::NAN
+                },
                 kl_p99_ci95: p99_ci,
             }
         })
         .collect();
-    let mut r = report::assemble(&settings, &m.reference, sources, &m.pairs, m.seconds, m.rows_processed);
+    let mut r = report::assemble(
+        &settings,
+        &m.reference,
+        sources,
+        &m.pairs,
+        m.seconds,
+        m.rows_processed,
+    );
     let a = m.settings.sketch_relative_accuracy;
     for c in r.candidates.iter_mut() {
         for g in c.gates.iter().filter(|g| g.name == "max-kl-p99") {
@@ -925,7 +1183,17 @@ mod tests {
     fn num_round_trips_every_float_exactly() {
         // serde_json with float_roundtrip reads back the shortest representation
         // exactly; the non-finite values use the strings of the format.
-        let mut xs = vec![0.0, -0.0, 1.0 / 3.0, 1e-310, f64::MAX, f64::MIN_POSITIVE, f64::INFINITY, f64::NEG_INFINITY, 0.1 + 0.2];
+        let mut xs = vec![
+            0.0,
+            -0.0,
+            1.0 / 3.0,
+            1e-310,
+            f64::MAX,
+            f64::MIN_POSITIVE,
+            f64::INFINITY,
+            f64::NEG_INFINITY,
+            0.1 + 0.2,
+        ];
         let mut z = 12345u64;
         for _ in 0..2000 {
             z = crate::estimators::mix64(z);

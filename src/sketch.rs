@@ -124,7 +124,10 @@ impl Default for Sketch {
 impl Sketch {
     /// A sketch whose values are within `relative_accuracy` (0 < a < 1) of the truth.
     pub fn new(relative_accuracy: f64) -> Sketch {
-        assert!(relative_accuracy > 0.0 && relative_accuracy < 1.0, "relative accuracy must lie in (0, 1)");
+        assert!(
+            relative_accuracy > 0.0 && relative_accuracy < 1.0,
+            "relative accuracy must lie in (0, 1)"
+        );
         let gamma = (1.0 + relative_accuracy) / (1.0 - relative_accuracy);
         Sketch {
             alpha: relative_accuracy,
@@ -199,7 +202,10 @@ impl Sketch {
     /// Adds every count of `o`. Both must have the same relative accuracy.
     pub fn merge(&mut self, o: &Sketch) -> Result<(), String> {
         if o.alpha != self.alpha {
-            return Err(format!("sketch relative accuracy {} differs from {}", o.alpha, self.alpha));
+            return Err(format!(
+                "sketch relative accuracy {} differs from {}",
+                o.alpha, self.alpha
+            ));
         }
         if o.count == 0 {
             return Ok(());
@@ -302,17 +308,29 @@ impl Sketch {
         let mut s = Sketch::new(a);
         let (lo, hi) = (s.index(f64::from_bits(1)) - 1, s.index(f64::MAX) + 1);
         for (name, st) in [("positive", &p.positive), ("negative", &p.negative)] {
-            if !st.counts.is_empty() && (st.offset < lo || st.offset as i64 + st.counts.len() as i64 - 1 > hi as i64) {
-                return Err(format!("sketch {name} buckets {}..{} lie outside the possible range {lo}..{hi}", st.offset, st.offset as i64 + st.counts.len() as i64));
+            if !st.counts.is_empty()
+                && (st.offset < lo || st.offset as i64 + st.counts.len() as i64 - 1 > hi as i64)
+            {
+                return Err(format!(
+                    "sketch {name} buckets {}..{} lie outside the possible range {lo}..{hi}",
+                    st.offset,
+                    st.offset as i64 + st.counts.len() as i64
+                ));
             }
         }
         let total = p.positive.total() + p.negative.total() + p.zero + p.pos_inf + p.neg_inf;
         if total != p.count {
-            return Err(format!("sketch counts add up to {total}, but its count is {}", p.count));
+            return Err(format!(
+                "sketch counts add up to {total}, but its count is {}",
+                p.count
+            ));
         }
         // Also refuses a NaN minimum or maximum of a non-empty sketch.
         if p.count > 0 && p.min.partial_cmp(&p.max).is_none_or(|o| o.is_gt()) {
-            return Err(format!("sketch minimum {} is not at most its maximum {}", p.min, p.max));
+            return Err(format!(
+                "sketch minimum {} is not at most its maximum {}",
+                p.min, p.max
+            ));
         }
         s.positive = p.positive;
         s.negative = p.negative;
@@ -333,7 +351,12 @@ mod tests {
 
     /// SplitMix64 stream (Steele, Lea and Flood 2014; common practice) as uniforms in (0, 1).
     fn uniforms(seed: u64, n: usize) -> Vec<f64> {
-        (0..n as u64).map(|i| ((crate::estimators::mix64(seed ^ i.wrapping_mul(0x9E37)) >> 11) as f64 + 0.5) / (1u64 << 53) as f64).collect()
+        (0..n as u64)
+            .map(|i| {
+                ((crate::estimators::mix64(seed ^ i.wrapping_mul(0x9E37)) >> 11) as f64 + 0.5)
+                    / (1u64 << 53) as f64
+            })
+            .collect()
     }
 
     fn rel_err(est: f64, exact: f64) -> f64 {
@@ -369,9 +392,18 @@ mod tests {
     fn log_normal_values_within_the_bound() {
         // Per-position kl spans many decades: log-normal, median 1e-3, sigma 3.
         let u = uniforms(1, 20002);
-        let v: Vec<f64> = u.chunks_exact(2).map(|c| 1e-3 * (3.0 * (-2.0 * c[0].ln()).sqrt() * (std::f64::consts::TAU * c[1]).cos()).exp()).collect();
+        let v: Vec<f64> = u
+            .chunks_exact(2)
+            .map(|c| {
+                1e-3 * (3.0 * (-2.0 * c[0].ln()).sqrt() * (std::f64::consts::TAU * c[1]).cos())
+                    .exp()
+            })
+            .collect();
         let w = check(&v, DEFAULT_RELATIVE_ACCURACY * (1.0 + 1e-9));
-        assert!(w > 0.0, "a sketch that is exact on continuous data is suspicious");
+        assert!(
+            w > 0.0,
+            "a sketch that is exact on continuous data is suspicious"
+        );
     }
 
     #[test]
@@ -420,12 +452,19 @@ mod tests {
         // Normal tiny values: the usual bound.
         for k in 60..99 {
             let (e, x) = (s.value_at_rank(k), sorted[k as usize]);
-            assert!(rel_err(e, x) <= DEFAULT_RELATIVE_ACCURACY * (1.0 + 1e-9), "rank {k}: {e} vs {x}");
+            assert!(
+                rel_err(e, x) <= DEFAULT_RELATIVE_ACCURACY * (1.0 + 1e-9),
+                "rank {k}: {e} vs {x}"
+            );
         }
         // Subnormal ones: the bound or one subnormal step.
         for k in 50..59 {
             let (e, x) = (s.value_at_rank(k), sorted[k as usize]);
-            assert!((e - x).abs() <= (DEFAULT_RELATIVE_ACCURACY * x).max(f64::from_bits(1)) * (1.0 + 1e-9), "rank {k}: {e} vs {x}");
+            assert!(
+                (e - x).abs()
+                    <= (DEFAULT_RELATIVE_ACCURACY * x).max(f64::from_bits(1)) * (1.0 + 1e-9),
+                "rank {k}: {e} vs {x}"
+            );
         }
         // Interpolating towards +inf gives +inf, as the exact rule does.
         assert_eq!(s.quantile(0.999), percentile(&sorted, 0.999));
@@ -443,7 +482,10 @@ mod tests {
         sorted.sort_by(|a, b| a.total_cmp(b));
         for k in [0u64, 1, 10, 500, 1499, 1500, 2500, 2999] {
             let (e, x) = (s.value_at_rank(k), sorted[k as usize]);
-            assert!(rel_err(e, x) <= DEFAULT_RELATIVE_ACCURACY * (1.0 + 1e-9), "rank {k}: {e} vs {x}");
+            assert!(
+                rel_err(e, x) <= DEFAULT_RELATIVE_ACCURACY * (1.0 + 1e-9),
+                "rank {k}: {e} vs {x}"
+            );
         }
         s.add(f64::NEG_INFINITY);
         assert_eq!(s.value_at_rank(0), f64::NEG_INFINITY);

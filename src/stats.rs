@@ -77,7 +77,10 @@ pub struct Aggregate {
 
 impl Aggregate {
     /// From the exact values (sorted in place) and the per-prompt sums.
-    pub fn exact(values: &mut [f64], groups: impl Iterator<Item = (f64, f64)> + Clone) -> Aggregate {
+    pub fn exact(
+        values: &mut [f64],
+        groups: impl Iterator<Item = (f64, f64)> + Clone,
+    ) -> Aggregate {
         values.sort_unstable_by(|a, b| a.total_cmp(b));
         let (mean, ci95) = cluster_mean(groups);
         Aggregate {

@@ -12,9 +12,10 @@ pub struct Vocabulary {
 
 impl Vocabulary {
     pub fn load(path: &Path) -> Result<Vocabulary> {
-        let bytes = std::fs::read(path).map_err(|e| Error::input(path, format!("cannot read tokenizer: {e}")))?;
-        let v: serde_json::Value =
-            serde_json::from_slice(&bytes).map_err(|e| Error::input(path, format!("tokenizer is not JSON: {e}")))?;
+        let bytes = std::fs::read(path)
+            .map_err(|e| Error::input(path, format!("cannot read tokenizer: {e}")))?;
+        let v: serde_json::Value = serde_json::from_slice(&bytes)
+            .map_err(|e| Error::input(path, format!("tokenizer is not JSON: {e}")))?;
         let mut text = HashMap::new();
         match v.pointer("/model/vocab") {
             Some(serde_json::Value::Object(m)) => {
@@ -36,7 +37,10 @@ impl Vocabulary {
         }
         if let Some(serde_json::Value::Array(a)) = v.get("added_tokens") {
             for t in a {
-                if let (Some(id), Some(c)) = (t.get("id").and_then(|x| x.as_u64()), t.get("content").and_then(|x| x.as_str())) {
+                if let (Some(id), Some(c)) = (
+                    t.get("id").and_then(|x| x.as_u64()),
+                    t.get("content").and_then(|x| x.as_str()),
+                ) {
                     text.insert(id as u32, c.to_string());
                 }
             }
@@ -88,7 +92,8 @@ pub fn readable(s: &str) -> String {
 /// themselves, the other 68 to U+0100 onwards, in byte order).
 fn byte_level_decode(ch: char) -> Option<u8> {
     let c = ch as u32;
-    let printable = |b: u32| (33..=126).contains(&b) || (161..=172).contains(&b) || (174..=255).contains(&b);
+    let printable =
+        |b: u32| (33..=126).contains(&b) || (161..=172).contains(&b) || (174..=255).contains(&b);
     if c < 256 && printable(c) {
         return Some(c as u8);
     }

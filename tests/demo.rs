@@ -19,16 +19,29 @@ fn the_demo_files_are_the_same_bytes_on_every_run() {
     let b = tempdir::Dir::new();
     for d in [&a, &b] {
         let out = klgauge(&["demo", "--out", s(d.path()), "--threads", "2"]);
-        assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+        assert_eq!(
+            out.status.code(),
+            Some(0),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
     }
-    for name in [demo::REFERENCE_FILE, demo::INT8_FILE, demo::INT4_FILE, demo::TOKENIZER_FILE] {
+    for name in [
+        demo::REFERENCE_FILE,
+        demo::INT8_FILE,
+        demo::INT4_FILE,
+        demo::TOKENIZER_FILE,
+    ] {
         let x = std::fs::read(a.path().join(name)).unwrap();
         let y = std::fs::read(b.path().join(name)).unwrap();
         assert!(x == y, "{name} differs between runs");
     }
     // And the same as generated in this process.
     for (name, bytes) in demo::file_bytes().unwrap() {
-        assert!(std::fs::read(a.path().join(name)).unwrap() == bytes, "{name}");
+        assert!(
+            std::fs::read(a.path().join(name)).unwrap() == bytes,
+            "{name}"
+        );
     }
     // The reports that do not carry timings are the same too.
     let x = std::fs::read(a.path().join("positions.csv")).unwrap();
@@ -42,13 +55,19 @@ fn the_demo_files_validate_and_tell_the_story() {
     let (files, outcome) = demo::run(dir.path(), None).unwrap();
     // The files follow SPEC's layout.
     let r = LogitFile::open(&files.reference).unwrap();
-    assert_eq!((r.rows, r.vocab, r.prompts()), (demo::PROMPTS * demo::LENGTH, demo::VOCAB, demo::PROMPTS));
+    assert_eq!(
+        (r.rows, r.vocab, r.prompts()),
+        (demo::PROMPTS * demo::LENGTH, demo::VOCAB, demo::PROMPTS)
+    );
     assert_eq!(r.metadata.get("model").map(String::as_str), Some("Wren-7"));
     for p in [&files.int8, &files.int4] {
         let c = LogitFile::open(p).unwrap();
         assert_eq!(c.rows, r.rows);
         assert_eq!(c.targets, r.targets);
-        assert_eq!(c.metadata.get("logits_form").map(String::as_str), Some("centered"));
+        assert_eq!(
+            c.metadata.get("logits_form").map(String::as_str),
+            Some("centered")
+        );
     }
     let rep = &outcome.report;
     let (q8, q4) = (&rep.candidates[0], &rep.candidates[1]);
@@ -57,12 +76,22 @@ fn the_demo_files_validate_and_tell_the_story() {
     // int8 passes every gate; int4 fails only its tail gate, and its top-1
     // verdict is uncertain.
     assert!(q8.gates.iter().all(|g| g.pass), "{:?}", q8.gates);
-    let fails: Vec<&str> = q4.gates.iter().filter(|g| !g.pass).map(|g| g.name.as_str()).collect();
+    let fails: Vec<&str> = q4
+        .gates
+        .iter()
+        .filter(|g| !g.pass)
+        .map(|g| g.name.as_str())
+        .collect();
     assert_eq!(fails, ["max-kl-p99"]);
     assert!(q4.gates.iter().any(|g| g.name == "min-top1" && g.uncertain));
     assert!(outcome.gate_failed);
     // The prompts built to break are exactly the worst ones.
-    let mut worst: Vec<u64> = q4.worst_prompts.iter().take(demo::BROKEN_PROMPTS.len()).map(|p| p.prompt).collect();
+    let mut worst: Vec<u64> = q4
+        .worst_prompts
+        .iter()
+        .take(demo::BROKEN_PROMPTS.len())
+        .map(|p| p.prompt)
+        .collect();
     worst.sort_unstable();
     let broken: Vec<u64> = demo::BROKEN_PROMPTS.iter().map(|&g| g as u64).collect();
     assert_eq!(worst, broken);
@@ -73,8 +102,15 @@ fn the_demo_files_validate_and_tell_the_story() {
     // int4's kl grows along the prompt: the late bins (before the loop
     // starts) have a clearly larger mean than the early ones.
     let mean_between = |lo: u64, hi: u64| {
-        let b: Vec<_> = q4.kl_by_position.iter().filter(|b| b.first >= lo && b.last < hi).collect();
-        b.iter().map(|b| b.kl_mean * b.positions as f64).sum::<f64>() / b.iter().map(|b| b.positions as f64).sum::<f64>()
+        let b: Vec<_> = q4
+            .kl_by_position
+            .iter()
+            .filter(|b| b.first >= lo && b.last < hi)
+            .collect();
+        b.iter()
+            .map(|b| b.kl_mean * b.positions as f64)
+            .sum::<f64>()
+            / b.iter().map(|b| b.positions as f64).sum::<f64>()
     };
     assert!(mean_between(64, 104) > 1.5 * mean_between(0, 32));
     // Every report format was written.
@@ -113,5 +149,8 @@ fn the_int8_mean_matches_the_small_noise_expansion() {
     let dir = tempdir::Dir::new();
     let (_, outcome) = demo::run(dir.path(), None).unwrap();
     let got = outcome.report.candidates[0].kl.mean;
-    assert!((got / expect - 1.0).abs() < 0.05, "mean kl {got} vs expansion {expect}");
+    assert!(
+        (got / expect - 1.0).abs() < 0.05,
+        "mean kl {got} vs expansion {expect}"
+    );
 }

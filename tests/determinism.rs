@@ -35,8 +35,18 @@ struct Inputs {
 fn inputs() -> Inputs {
     let dir = tempdir::Dir::new();
     let mut r = Rng(2024);
-    let x: Vec<f32> = (0..ROWS * VOCAB).map(|_| (2.5 * r.normal()) as f32).collect();
-    let targets: Vec<i64> = (0..ROWS).map(|i| if i % 17 == 5 { -1 } else { (r.uniform() * VOCAB as f64) as i64 }).collect();
+    let x: Vec<f32> = (0..ROWS * VOCAB)
+        .map(|_| (2.5 * r.normal()) as f32)
+        .collect();
+    let targets: Vec<i64> = (0..ROWS)
+        .map(|i| {
+            if i % 17 == 5 {
+                -1
+            } else {
+                (r.uniform() * VOCAB as f64) as i64
+            }
+        })
+        .collect();
     // Uneven prompts: lengths cycle through 1..=40.
     let mut offsets = vec![0i64];
     let mut len = 1;
@@ -58,8 +68,14 @@ fn inputs() -> Inputs {
         None,
     );
     let mut candidates = Vec::new();
-    for (k, (dtype, noise)) in [(Dtype::F32, 0.05), (Dtype::BF16, 0.2), (Dtype::F16, 0.6)].into_iter().enumerate() {
-        let mut y: Vec<f32> = x.iter().map(|&v| (v as f64 + noise * r.normal()) as f32).collect();
+    for (k, (dtype, noise)) in [(Dtype::F32, 0.05), (Dtype::BF16, 0.2), (Dtype::F16, 0.6)]
+        .into_iter()
+        .enumerate()
+    {
+        let mut y: Vec<f32> = x
+            .iter()
+            .map(|&v| (v as f64 + noise * r.normal()) as f32)
+            .collect();
         if k == 2 {
             // Value faults: two NaN rows and one zero-probability token.
             y[3 * VOCAB + 10] = f32::NAN;
@@ -67,10 +83,25 @@ fn inputs() -> Inputs {
             y[130 * VOCAB + 7] = f32::NEG_INFINITY;
         }
         let p = dir.path().join(format!("cand{k}.safetensors"));
-        write(&p, vec![("logits", floats(dtype, &[ROWS, VOCAB], &y)), ("targets", i64s(&[ROWS], &targets))], None);
+        write(
+            &p,
+            vec![
+                ("logits", floats(dtype, &[ROWS, VOCAB], &y)),
+                ("targets", i64s(&[ROWS], &targets)),
+            ],
+            None,
+        );
         candidates.push(p);
     }
-    Inputs { dir, reference, candidates, x, targets, offsets, mask }
+    Inputs {
+        dir,
+        reference,
+        candidates,
+        x,
+        targets,
+        offsets,
+        mask,
+    }
 }
 
 /// Sets the value of every timing field to 0, leaving every other byte alone.
@@ -92,7 +123,11 @@ fn mask_timing(json: &str) -> String {
 
 /// The text report without its timing line.
 fn mask_text(text: &[u8]) -> String {
-    String::from_utf8_lossy(text).lines().filter(|l| !l.starts_with("exact pass:")).collect::<Vec<_>>().join("\n")
+    String::from_utf8_lossy(text)
+        .lines()
+        .filter(|l| !l.starts_with("exact pass:"))
+        .collect::<Vec<_>>()
+        .join("\n")
 }
 
 struct Run {
@@ -101,20 +136,53 @@ struct Run {
     text: String,
 }
 
-fn run(inp: &Inputs, reference: &Path, candidates: &[PathBuf], threads: usize, seed: u64, tag: &str) -> Run {
-    let (j, c) = (inp.dir.path().join(format!("{tag}.json")), inp.dir.path().join(format!("{tag}.csv")));
+fn run(
+    inp: &Inputs,
+    reference: &Path,
+    candidates: &[PathBuf],
+    threads: usize,
+    seed: u64,
+    tag: &str,
+) -> Run {
+    let (j, c) = (
+        inp.dir.path().join(format!("{tag}.json")),
+        inp.dir.path().join(format!("{tag}.csv")),
+    );
     let mut args: Vec<String> = vec!["compare".into(), s(reference).into()];
     args.extend(candidates.iter().map(|p| s(p).to_string()));
     let seed = seed.to_string();
     let threads = threads.to_string();
     args.extend(
-        ["--json", s(&j), "--csv", s(&c), "--js", "--samples", "1,4,16", "--seed", &seed, "--threads", &threads, "--top", "12"]
-            .map(String::from),
+        [
+            "--json",
+            s(&j),
+            "--csv",
+            s(&c),
+            "--js",
+            "--samples",
+            "1,4,16",
+            "--seed",
+            &seed,
+            "--threads",
+            &threads,
+            "--top",
+            "12",
+        ]
+        .map(String::from),
     );
     let argv: Vec<&str> = args.iter().map(|a| a.as_str()).collect();
     let out = klgauge(&argv);
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
-    Run { json: mask_timing(&std::fs::read_to_string(&j).unwrap()), csv: std::fs::read(&c).unwrap(), text: mask_text(&out.stdout) }
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    Run {
+        json: mask_timing(&std::fs::read_to_string(&j).unwrap()),
+        csv: std::fs::read(&c).unwrap(),
+        text: mask_text(&out.stdout),
+    }
 }
 
 #[test]
@@ -142,11 +210,23 @@ fn the_seed_moves_only_the_estimators() {
     let inp = inputs();
     let a = run(&inp, &inp.reference, &inp.candidates[..1], 2, 1, "s1");
     let b = run(&inp, &inp.reference, &inp.candidates[..1], 2, 2, "s2");
-    let (mut va, mut vb): (serde_json::Value, serde_json::Value) = (serde_json::from_str(&a.json).unwrap(), serde_json::from_str(&b.json).unwrap());
-    assert_eq!(a.csv, b.csv, "per-position metrics do not depend on the seed");
-    assert_ne!(va["candidates"][0]["estimators"], vb["candidates"][0]["estimators"]);
+    let (mut va, mut vb): (serde_json::Value, serde_json::Value) = (
+        serde_json::from_str(&a.json).unwrap(),
+        serde_json::from_str(&b.json).unwrap(),
+    );
+    assert_eq!(
+        a.csv, b.csv,
+        "per-position metrics do not depend on the seed"
+    );
+    assert_ne!(
+        va["candidates"][0]["estimators"],
+        vb["candidates"][0]["estimators"]
+    );
     for v in [&mut va, &mut vb] {
-        v["candidates"][0].as_object_mut().unwrap().remove("estimators");
+        v["candidates"][0]
+            .as_object_mut()
+            .unwrap()
+            .remove("estimators");
         v["settings"].as_object_mut().unwrap().remove("seed");
     }
     assert_eq!(va, vb);
@@ -158,15 +238,30 @@ fn shards_in_a_directory_give_the_same_report() {
     // The reference cut into three shards at prompt boundaries, with local offsets.
     let dir = inp.dir.path().join("ref-shards");
     std::fs::create_dir_all(&dir).unwrap();
-    let cuts = [0usize, inp.offsets.len() / 3, 2 * inp.offsets.len() / 3, inp.offsets.len() - 1];
+    let cuts = [
+        0usize,
+        inp.offsets.len() / 3,
+        2 * inp.offsets.len() / 3,
+        inp.offsets.len() - 1,
+    ];
     for w in 0..3 {
         let (p0, p1) = (cuts[w], cuts[w + 1]);
         let (r0, r1) = (inp.offsets[p0] as usize, inp.offsets[p1] as usize);
-        let local: Vec<i64> = inp.offsets[p0..=p1].iter().map(|&o| o - r0 as i64).collect();
+        let local: Vec<i64> = inp.offsets[p0..=p1]
+            .iter()
+            .map(|&o| o - r0 as i64)
+            .collect();
         write(
             &dir.join(format!("part-{w:03}.safetensors")),
             vec![
-                ("logits", floats(Dtype::F32, &[r1 - r0, VOCAB], &inp.x[r0 * VOCAB..r1 * VOCAB])),
+                (
+                    "logits",
+                    floats(
+                        Dtype::F32,
+                        &[r1 - r0, VOCAB],
+                        &inp.x[r0 * VOCAB..r1 * VOCAB],
+                    ),
+                ),
                 ("targets", i64s(&[r1 - r0], &inp.targets[r0..r1])),
                 ("prompt_offsets", i64s(&[local.len()], &local)),
                 ("mask", u8s(&[r1 - r0], &inp.mask[r0..r1])),
@@ -178,5 +273,8 @@ fn shards_in_a_directory_give_the_same_report() {
     let b = run(&inp, &dir, &inp.candidates, 1, 3, "sharded");
     assert_eq!(a.csv, b.csv);
     let (whole, sharded) = (s(&inp.reference), s(&dir));
-    assert_eq!(a.json.replace(&format!("\"{whole}\""), "\"REF\""), b.json.replace(&format!("\"{sharded}\""), "\"REF\""));
+    assert_eq!(
+        a.json.replace(&format!("\"{whole}\""), "\"REF\""),
+        b.json.replace(&format!("\"{sharded}\""), "\"REF\"")
+    );
 }

@@ -39,7 +39,12 @@ fn s(p: &Path) -> &str {
 
 fn run_ok(args: &[&str]) -> std::process::Output {
     let out = klgauge(args);
-    assert_eq!(out.status.code(), Some(0), "stderr: {}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "stderr: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     out
 }
 
@@ -47,11 +52,17 @@ fn f(v: &Value) -> f64 {
     v.as_f64().unwrap_or_else(|| panic!("not a number: {v}"))
 }
 
-
 /// Closed-form mean and variance of k1, k2, k3 for N(0,1) against N(mu,1).
 fn closed_form(mu: f64) -> [(f64, f64); 3] {
     let m2 = mu * mu;
-    [(m2 / 2.0, m2), (m2 / 2.0 + m2 * m2 / 8.0, (2.0 * m2 * m2 + m2 * m2 * m2) / 4.0), (m2 / 2.0, m2.exp() - 1.0 - m2)]
+    [
+        (m2 / 2.0, m2),
+        (
+            m2 / 2.0 + m2 * m2 / 8.0,
+            (2.0 * m2 * m2 + m2 * m2 * m2) / 4.0,
+        ),
+        (m2 / 2.0, m2.exp() - 1.0 - m2),
+    ]
 }
 
 /// The k-value of a draw as a function of x ~ N(0,1).
@@ -100,22 +111,47 @@ fn gaussian_rows(bins: usize, mu: f64) -> Vec<f32> {
 
 fn write_rows(path: &Path, row: &[f32], rows: usize) {
     let all: Vec<f32> = (0..rows).flat_map(|_| row.iter().copied()).collect();
-    write(path, vec![("logits", floats(Dtype::F32, &[rows, row.len()], &all))], None);
+    write(
+        path,
+        vec![("logits", floats(Dtype::F32, &[rows, row.len()], &all))],
+        None,
+    );
 }
 
 #[test]
 fn closed_forms_reproduce_the_published_table() {
     // Published values (Schulman 2020, from memory), rounded as printed.
     // (mu, k, std/KL) and k2's bias/KL.
-    for (mu, k, want, digits) in [(0.1, 0, 20.0, 0.5), (0.1, 1, 1.42, 0.005), (0.1, 2, 1.42, 0.005), (1.0, 0, 2.0, 0.05), (1.0, 1, 1.73, 0.005), (1.0, 2, 1.7, 0.05)] {
+    for (mu, k, want, digits) in [
+        (0.1, 0, 20.0, 0.5),
+        (0.1, 1, 1.42, 0.005),
+        (0.1, 2, 1.42, 0.005),
+        (1.0, 0, 2.0, 0.05),
+        (1.0, 1, 1.73, 0.005),
+        (1.0, 2, 1.7, 0.05),
+    ] {
         let cf = closed_form(mu);
         let kl = mu * mu / 2.0;
         let got = cf[k].1.sqrt() / kl;
-        assert!((got - want).abs() <= digits, "mu {mu} k{}: std/KL {got} vs published {want}", k + 1);
+        assert!(
+            (got - want).abs() <= digits,
+            "mu {mu} k{}: std/KL {got} vs published {want}",
+            k + 1
+        );
         // The closed-form variance agrees with quadrature of the density.
         let (e, c2, _) = moments(k, mu);
-        assert!((e - cf[k].0).abs() < 1e-9 * cf[k].0, "mu {mu} k{} mean {e} vs {}", k + 1, cf[k].0);
-        assert!((c2 - cf[k].1).abs() < 1e-8 * cf[k].1, "mu {mu} k{} var {c2} vs {}", k + 1, cf[k].1);
+        assert!(
+            (e - cf[k].0).abs() < 1e-9 * cf[k].0,
+            "mu {mu} k{} mean {e} vs {}",
+            k + 1,
+            cf[k].0
+        );
+        assert!(
+            (c2 - cf[k].1).abs() < 1e-8 * cf[k].1,
+            "mu {mu} k{} var {c2} vs {}",
+            k + 1,
+            cf[k].1
+        );
     }
     // k2's bias/KL = (mu^4/8)/(mu^2/2) = mu^2/4: 0.0025 at mu = 0.1 (printed 0.002), 0.25 at mu = 1.
     assert!((0.1f64.powi(2) / 4.0 - 0.002).abs() <= 0.0005 + 1e-12);
@@ -138,12 +174,26 @@ fn compare_estimators_match_gaussian_closed_forms() {
         let q_row = gaussian_rows(bins, mu);
         // The discrete rows have the continuous KL (see the module comment).
         let kl = kl_f64(&p_row, &q_row);
-        assert!((kl - mu * mu / 2.0).abs() < 2e-6 * mu * mu / 2.0 + 1e-9, "discrete KL {kl} at mu {mu}");
+        assert!(
+            (kl - mu * mu / 2.0).abs() < 2e-6 * mu * mu / 2.0 + 1e-9,
+            "discrete KL {kl} at mu {mu}"
+        );
         write_rows(&cp, &q_row, rows);
         cands.push(cp);
     }
     let j = d.path().join("r.json");
-    run_ok(&["compare", s(&rp), s(&cands[0]), s(&cands[1]), "--samples", "1,64", "--seed", "3", "--json", s(&j)]);
+    run_ok(&[
+        "compare",
+        s(&rp),
+        s(&cands[0]),
+        s(&cands[1]),
+        "--samples",
+        "1,64",
+        "--seed",
+        "3",
+        "--json",
+        s(&j),
+    ]);
     let v = json(&j);
     let n = rows as f64;
     let mut measured = Vec::new();
@@ -168,19 +218,32 @@ fn compare_estimators_match_gaussian_closed_forms() {
                 // Mean of n positions: standard error sqrt(var_b / n); tolerance 5 of them.
                 let se_mean = (var_b / n).sqrt();
                 let got = f(&e["mean"]);
-                assert!((got - mean).abs() < 5.0 * se_mean, "mu {mu} {name} x{draws} ({}): mean {got} vs {mean} (se {se_mean})", b["direction"]);
+                assert!(
+                    (got - mean).abs() < 5.0 * se_mean,
+                    "mu {mu} {name} x{draws} ({}): mean {got} vs {mean} (se {se_mean})",
+                    b["direction"]
+                );
                 // Bias is measured against the exact mean of the same positions.
                 let bias = f(&e["bias"]);
-                assert!((bias - (mean - kl)).abs() < 5.0 * se_mean + 1e-5 * kl, "mu {mu} {name}: bias {bias}");
+                assert!(
+                    (bias - (mean - kl)).abs() < 5.0 * se_mean + 1e-5 * kl,
+                    "mu {mu} {name}: bias {bias}"
+                );
                 // Sample standard deviation: se ~ sqrt(mu4 - var^2) / (2 sd sqrt(n))
                 // (delta method on the sample variance; common practice).
                 let sd = var_b.sqrt();
                 let se_sd = (c4_b - var_b * var_b).sqrt() / (2.0 * sd * n.sqrt());
                 let got_sd = f(&e["std"]);
-                assert!((got_sd - sd).abs() < 5.0 * se_sd, "mu {mu} {name} x{draws}: std {got_sd} vs {sd} (se {se_sd})");
+                assert!(
+                    (got_sd - sd).abs() < 5.0 * se_sd,
+                    "mu {mu} {name} x{draws}: std {got_sd} vs {sd} (se {se_sd})"
+                );
                 // rmse^2 = std^2 + bias^2 here (every position has the same exact value).
                 let rmse = f(&e["rmse"]);
-                assert!((rmse * rmse - (got_sd * got_sd * (n - 1.0) / n + bias * bias)).abs() < 1e-9 * rmse * rmse + 1e-18);
+                assert!(
+                    (rmse * rmse - (got_sd * got_sd * (n - 1.0) / n + bias * bias)).abs()
+                        < 1e-9 * rmse * rmse + 1e-18
+                );
                 // positions_for_10pct follows from std and the exact mean.
                 let need = f(&e["positions_for_10pct"]);
                 assert_eq!(need, (Z95 * got_sd / (0.1 * exact)).powi(2).ceil().max(1.0));
@@ -216,7 +279,10 @@ fn k3_is_never_negative() {
             let l = sgn * 10f64.powi(-e);
             let k3 = klgauge::estimators::k_values(l)[2];
             assert!(k3 >= 0.0, "log r = {l}");
-            assert!((k3 - 0.5 * l * l).abs() <= 0.5 * l * l * l.abs(), "log r = {l}: {k3}");
+            assert!(
+                (k3 - 0.5 * l * l).abs() <= 0.5 * l * l * l.abs(),
+                "log r = {l}: {k3}"
+            );
         }
     }
 }
@@ -230,25 +296,77 @@ fn k1_and_k3_are_unbiased_on_discrete_rows() {
     let d = tempdir::Dir::new();
     let (rows, vocab) = (20000usize, 7usize);
     let mut rng = Rng(17);
-    let x: Vec<f32> = (0..rows * vocab).map(|_| (1.5 * rng.normal()) as f32).collect();
-    let y: Vec<f32> = x.iter().map(|&v| (v as f64 + 0.6 * rng.normal()) as f32).collect();
-    let (rp, cp) = (d.path().join("r.safetensors"), d.path().join("c.safetensors"));
-    write(&rp, vec![("logits", floats(Dtype::F32, &[rows, vocab], &x))], None);
-    write(&cp, vec![("logits", floats(Dtype::F32, &[rows, vocab], &y))], None);
+    let x: Vec<f32> = (0..rows * vocab)
+        .map(|_| (1.5 * rng.normal()) as f32)
+        .collect();
+    let y: Vec<f32> = x
+        .iter()
+        .map(|&v| (v as f64 + 0.6 * rng.normal()) as f32)
+        .collect();
+    let (rp, cp) = (
+        d.path().join("r.safetensors"),
+        d.path().join("c.safetensors"),
+    );
+    write(
+        &rp,
+        vec![("logits", floats(Dtype::F32, &[rows, vocab], &x))],
+        None,
+    );
+    write(
+        &cp,
+        vec![("logits", floats(Dtype::F32, &[rows, vocab], &y))],
+        None,
+    );
     let j = d.path().join("r.json");
-    run_ok(&["compare", s(&rp), s(&cp), "--samples", "1,4,16", "--json", s(&j)]);
+    run_ok(&[
+        "compare",
+        s(&rp),
+        s(&cp),
+        "--samples",
+        "1,4,16",
+        "--json",
+        s(&j),
+    ]);
     let v = json(&j);
-    let fwd: f64 = (0..rows).map(|r| kl_f64(&x[r * vocab..(r + 1) * vocab], &y[r * vocab..(r + 1) * vocab])).sum::<f64>() / rows as f64;
-    let rev: f64 = (0..rows).map(|r| kl_f64(&y[r * vocab..(r + 1) * vocab], &x[r * vocab..(r + 1) * vocab])).sum::<f64>() / rows as f64;
+    let fwd: f64 = (0..rows)
+        .map(|r| {
+            kl_f64(
+                &x[r * vocab..(r + 1) * vocab],
+                &y[r * vocab..(r + 1) * vocab],
+            )
+        })
+        .sum::<f64>()
+        / rows as f64;
+    let rev: f64 = (0..rows)
+        .map(|r| {
+            kl_f64(
+                &y[r * vocab..(r + 1) * vocab],
+                &x[r * vocab..(r + 1) * vocab],
+            )
+        })
+        .sum::<f64>()
+        / rows as f64;
     for b in v["candidates"][0]["estimators"].as_array().unwrap() {
-        let want = if b["direction"] == "forward" { fwd } else { rev };
+        let want = if b["direction"] == "forward" {
+            fwd
+        } else {
+            rev
+        };
         let exact = f(&b["exact_mean"]);
-        assert!((exact - want).abs() < 1e-5 * want, "exact {exact} vs f64 {want}");
+        assert!(
+            (exact - want).abs() < 1e-5 * want,
+            "exact {exact} vs f64 {want}"
+        );
         for name in ["k1", "k3"] {
             let e = &b[name];
             let se = f(&e["rmse"]) / (rows as f64).sqrt();
             let bias = f(&e["bias"]);
-            assert!(bias.abs() < 5.0 * se, "{} x{} {name}: bias {bias} vs se {se}", b["direction"], b["samples_per_position"]);
+            assert!(
+                bias.abs() < 5.0 * se,
+                "{} x{} {name}: bias {bias} vs se {se}",
+                b["direction"],
+                b["samples_per_position"]
+            );
         }
         assert!(f(&b["k3"]["mean"]) >= 0.0);
     }
@@ -258,8 +376,32 @@ fn k1_and_k3_are_unbiased_on_discrete_rows() {
 fn draws_do_not_depend_on_the_thread_count() {
     let p = random_pair(500, 700, 25, 0.4, 23);
     let (a, b) = (p.dir.path().join("a.json"), p.dir.path().join("b.json"));
-    run_ok(&["compare", s(&p.reference), s(&p.candidate), "--threads", "1", "--samples", "1,4,16", "--seed", "11", "--json", s(&a)]);
-    run_ok(&["compare", s(&p.reference), s(&p.candidate), "--threads", "2", "--samples", "1,4,16", "--seed", "11", "--json", s(&b)]);
+    run_ok(&[
+        "compare",
+        s(&p.reference),
+        s(&p.candidate),
+        "--threads",
+        "1",
+        "--samples",
+        "1,4,16",
+        "--seed",
+        "11",
+        "--json",
+        s(&a),
+    ]);
+    run_ok(&[
+        "compare",
+        s(&p.reference),
+        s(&p.candidate),
+        "--threads",
+        "2",
+        "--samples",
+        "1,4,16",
+        "--seed",
+        "11",
+        "--json",
+        s(&b),
+    ]);
     let (a, b) = (json(&a), json(&b));
     let ea = &a["candidates"][0]["estimators"];
     assert_eq!(ea.as_array().unwrap().len(), 6);
@@ -271,7 +413,15 @@ fn draws_do_not_depend_on_the_thread_count() {
 /// Writes a log-probability file of `n` draws x ~ N(a, 1) with the log
 /// densities of p = N(0, 1) and q = N(mu, 1), grouped `per` draws a prompt
 /// (each draw repeated `rep` times inside its prompt when rep > 1).
-fn gaussian_logprobs(path: &Path, n: usize, per: Option<usize>, mu: f64, a: f64, seed: u64, rep: usize) {
+fn gaussian_logprobs(
+    path: &Path,
+    n: usize,
+    per: Option<usize>,
+    mu: f64,
+    a: f64,
+    seed: u64,
+    rep: usize,
+) {
     let mut rng = Rng(seed);
     let c = -0.5 * (2.0 * std::f64::consts::PI).ln();
     let (mut lp, mut lq) = (Vec::new(), Vec::new());
@@ -284,7 +434,10 @@ fn gaussian_logprobs(path: &Path, n: usize, per: Option<usize>, mu: f64, a: f64,
     }
     lp.truncate(n);
     lq.truncate(n);
-    let mut t = vec![("logprob_ref", floats(Dtype::F32, &[n], &lp)), ("logprob_cand", floats(Dtype::F32, &[n], &lq))];
+    let mut t = vec![
+        ("logprob_ref", floats(Dtype::F32, &[n], &lp)),
+        ("logprob_cand", floats(Dtype::F32, &[n], &lq)),
+    ];
     if let Some(per) = per {
         let mut o: Vec<i64> = (0..n).step_by(per).map(|i| i as i64).collect();
         o.push(n as i64);
@@ -317,19 +470,38 @@ fn estimate_recovers_the_gaussian_kl() {
         let ci = e["ci95"].as_array().unwrap();
         let (lo, hi) = (f(&ci[0]), f(&ci[1]));
         let se = (cf[k].1 / n as f64).sqrt();
-        assert!((mean - cf[k].0).abs() < 5.0 * se, "{name}: {mean} vs {} (se {se})", cf[k].0);
+        assert!(
+            (mean - cf[k].0).abs() < 5.0 * se,
+            "{name}: {mean} vs {} (se {se})",
+            cf[k].0
+        );
         // The interval's half-width is about z * sd / sqrt(n) (independent draws).
         let h = 0.5 * (hi - lo);
-        assert!((h / (Z95 * se) - 1.0).abs() < 0.1, "{name}: half-width {h} vs {}", Z95 * se);
+        assert!(
+            (h / (Z95 * se) - 1.0).abs() < 0.1,
+            "{name}: half-width {h} vs {}",
+            Z95 * se
+        );
         let sd = f(&e["std"]);
-        assert!((sd / cf[k].1.sqrt() - 1.0).abs() < 0.05, "{name}: std {sd} vs {}", cf[k].1.sqrt());
+        assert!(
+            (sd / cf[k].1.sqrt() - 1.0).abs() < 0.05,
+            "{name}: std {sd} vs {}",
+            cf[k].1.sqrt()
+        );
         println!("estimate {name}: {mean:.5e} [{lo:.5e}, {hi:.5e}] std {sd:.4e}; closed form {:.5e} std {:.4e}", cf[k].0, cf[k].1.sqrt());
     }
     // k3 holds the true KL inside its 95% interval (fixed seed).
     let ci = v["k3"]["ci95"].as_array().unwrap();
-    assert!(f(&ci[0]) <= kl && kl <= f(&ci[1]), "k3 interval {ci:?} misses {kl}");
+    assert!(
+        f(&ci[0]) <= kl && kl <= f(&ci[1]),
+        "k3 interval {ci:?} misses {kl}"
+    );
     assert_eq!(v["k1_minus_k3"]["agree"], true);
-    assert!(v["warnings"].as_array().unwrap().iter().all(|w| !w.as_str().unwrap().contains("disagree")));
+    assert!(v["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .all(|w| !w.as_str().unwrap().contains("disagree")));
     // --bits divides by ln 2.
     let jb = d.path().join("b.json");
     run_ok(&["estimate", s(&fp), "--json", s(&jb), "--bits"]);
@@ -348,7 +520,12 @@ fn estimate_warns_when_tokens_are_not_drawn_from_the_reference() {
     let out = run_ok(&["estimate", s(&fp), "--json", s(&j)]);
     let v = json(&j);
     assert_eq!(v["k1_minus_k3"]["agree"], false);
-    let w: Vec<&str> = v["warnings"].as_array().unwrap().iter().map(|x| x.as_str().unwrap()).collect();
+    let w: Vec<&str> = v["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_str().unwrap())
+        .collect();
     assert!(w.iter().any(|x| x.contains("disagree")), "{w:?}");
     assert!(String::from_utf8_lossy(&out.stdout).contains("disagree"));
 }
@@ -359,7 +536,11 @@ fn estimate_interval_respects_prompt_grouping() {
     // sqrt(10) times the one that treats the 10 copies as independent
     // (ratio of the two variance formulas, up to G/(G-1) against N/(N-1)).
     let d = tempdir::Dir::new();
-    let (g, a, b) = (d.path().join("g.safetensors"), d.path().join("g.json"), d.path().join("r.json"));
+    let (g, a, b) = (
+        d.path().join("g.safetensors"),
+        d.path().join("g.json"),
+        d.path().join("r.json"),
+    );
     gaussian_logprobs(&g, 20_000, Some(10), 0.3, 0.0, 8, 10);
     let r = d.path().join("r.safetensors");
     gaussian_logprobs(&r, 20_000, None, 0.3, 0.0, 8, 10);
@@ -372,9 +553,17 @@ fn estimate_interval_respects_prompt_grouping() {
     };
     let (gn, nn) = (2000.0f64, 20000.0f64);
     let want = (10.0 * (gn / (gn - 1.0)) / (nn / (nn - 1.0))).sqrt();
-    assert!((hw(&va) / hw(&vb) - want).abs() < 1e-6 * want, "{} vs {want}", hw(&va) / hw(&vb));
+    assert!(
+        (hw(&va) / hw(&vb) - want).abs() < 1e-6 * want,
+        "{} vs {want}",
+        hw(&va) / hw(&vb)
+    );
     assert!((f(&va["k3"]["mean"]) - f(&vb["k3"]["mean"])).abs() < 1e-12 * f(&vb["k3"]["mean"]));
-    assert!(vb["warnings"].as_array().unwrap().iter().any(|w| w.as_str().unwrap().contains("no prompt grouping")));
+    assert!(vb["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|w| w.as_str().unwrap().contains("no prompt grouping")));
 }
 
 #[test]
@@ -383,8 +572,18 @@ fn estimate_counts_faulty_and_infinite_draws() {
     let fp = d.path().join("lp.safetensors");
     let lp = vec![-1.0f32, -2.0, f32::NAN, -0.5, f32::NEG_INFINITY, -1.5];
     let lq = vec![-1.1f32, -1.9, -1.0, f32::NEG_INFINITY, -1.0, -1.4];
-    let meta = std::collections::HashMap::from([("model_ref".to_string(), "Wren-7".to_string()), ("model_cand".to_string(), "Wren-7 int4".to_string())]);
-    write(&fp, vec![("logprob_ref", floats(Dtype::F32, &[6], &lp)), ("logprob_cand", floats(Dtype::F32, &[6], &lq))], Some(meta));
+    let meta = std::collections::HashMap::from([
+        ("model_ref".to_string(), "Wren-7".to_string()),
+        ("model_cand".to_string(), "Wren-7 int4".to_string()),
+    ]);
+    write(
+        &fp,
+        vec![
+            ("logprob_ref", floats(Dtype::F32, &[6], &lp)),
+            ("logprob_cand", floats(Dtype::F32, &[6], &lq)),
+        ],
+        Some(meta),
+    );
     let j = d.path().join("e.json");
     let out = run_ok(&["estimate", s(&fp), "--json", s(&j)]);
     assert!(String::from_utf8_lossy(&out.stdout).contains("\"Wren-7 int4\" against \"Wren-7\""));
@@ -406,13 +605,48 @@ fn estimate_bad_input_exits_2_naming_the_file() {
     let n = 8usize;
     let good: Vec<f32> = (0..n).map(|i| -(i as f32) * 0.1 - 0.1).collect();
     let cases: Vec<(&str, Vec<(&str, T)>, &str)> = vec![
-        ("missing", vec![("logprob_ref", floats(Dtype::F32, &[n], &good))], "logprob_cand"),
-        ("f16", vec![("logprob_ref", floats(Dtype::F16, &[n], &good)), ("logprob_cand", floats(Dtype::F32, &[n], &good))], "F32"),
-        ("rank2", vec![("logprob_ref", floats(Dtype::F32, &[2, 4], &good)), ("logprob_cand", floats(Dtype::F32, &[n], &good))], "shape"),
-        ("lengths", vec![("logprob_ref", floats(Dtype::F32, &[n], &good)), ("logprob_cand", floats(Dtype::F32, &[4], &good[..4]))], "pair up"),
+        (
+            "missing",
+            vec![("logprob_ref", floats(Dtype::F32, &[n], &good))],
+            "logprob_cand",
+        ),
+        (
+            "f16",
+            vec![
+                ("logprob_ref", floats(Dtype::F16, &[n], &good)),
+                ("logprob_cand", floats(Dtype::F32, &[n], &good)),
+            ],
+            "F32",
+        ),
+        (
+            "rank2",
+            vec![
+                ("logprob_ref", floats(Dtype::F32, &[2, 4], &good)),
+                ("logprob_cand", floats(Dtype::F32, &[n], &good)),
+            ],
+            "shape",
+        ),
+        (
+            "lengths",
+            vec![
+                ("logprob_ref", floats(Dtype::F32, &[n], &good)),
+                ("logprob_cand", floats(Dtype::F32, &[4], &good[..4])),
+            ],
+            "pair up",
+        ),
         (
             "positive",
-            vec![("logprob_ref", floats(Dtype::F32, &[n], &good)), ("logprob_cand", floats(Dtype::F32, &[n], &good.iter().map(|v| -v).collect::<Vec<_>>()))],
+            vec![
+                ("logprob_ref", floats(Dtype::F32, &[n], &good)),
+                (
+                    "logprob_cand",
+                    floats(
+                        Dtype::F32,
+                        &[n],
+                        &good.iter().map(|v| -v).collect::<Vec<_>>(),
+                    ),
+                ),
+            ],
             "positive",
         ),
         (
@@ -424,7 +658,11 @@ fn estimate_bad_input_exits_2_naming_the_file() {
             ],
             "ends at 7",
         ),
-        ("logits", vec![("logits", floats(Dtype::F32, &[2, 4], &good))], "klgauge compare"),
+        (
+            "logits",
+            vec![("logits", floats(Dtype::F32, &[2, 4], &good))],
+            "klgauge compare",
+        ),
     ];
     for (name, tensors, needle) in cases {
         let p = d.path().join(format!("{name}.safetensors"));

@@ -32,17 +32,27 @@ fn f32_bytes(v: &[f32]) -> Vec<u8> {
 }
 
 fn i32s(shape: &[usize], v: &[i32]) -> T {
-    T { dtype: Dtype::I32, shape: shape.to_vec(), data: v.iter().flat_map(|x| x.to_le_bytes()).collect() }
+    T {
+        dtype: Dtype::I32,
+        shape: shape.to_vec(),
+        data: v.iter().flat_map(|x| x.to_le_bytes()).collect(),
+    }
 }
 
 fn bools(shape: &[usize], v: &[u8]) -> T {
-    T { dtype: Dtype::BOOL, shape: shape.to_vec(), data: v.to_vec() }
+    T {
+        dtype: Dtype::BOOL,
+        shape: shape.to_vec(),
+        data: v.to_vec(),
+    }
 }
 
 /// `rows x vocab` F32 logits, deterministic.
 fn logits(rows: usize, vocab: usize, seed: u64) -> Vec<f32> {
     let mut r = Rng(seed);
-    (0..rows * vocab).map(|_| (2.0 * r.normal()) as f32).collect()
+    (0..rows * vocab)
+        .map(|_| (2.0 * r.normal()) as f32)
+        .collect()
 }
 
 fn lg(rows: usize, vocab: usize, seed: u64) -> T {
@@ -51,7 +61,10 @@ fn lg(rows: usize, vocab: usize, seed: u64) -> T {
 
 /// Names in a directory, sorted.
 fn listing(d: &Path) -> Vec<String> {
-    let mut v: Vec<String> = std::fs::read_dir(d).unwrap().map(|e| e.unwrap().file_name().to_string_lossy().into_owned()).collect();
+    let mut v: Vec<String> = std::fs::read_dir(d)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
     v.sort();
     v
 }
@@ -100,12 +113,31 @@ fn check(dir: &Path, c: &Case) {
     let err = String::from_utf8_lossy(&out.stderr);
     // Shown with --nocapture: the whole list of messages, for reading.
     println!("{:<36} {}", c.name, err.trim());
-    assert_eq!(out.status.code(), Some(2), "[{}] exit code; stderr: {err}", c.name);
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "[{}] exit code; stderr: {err}",
+        c.name
+    );
     assert!(!err.contains("panicked"), "[{}] panicked: {err}", c.name);
     let lines = err.lines().count();
-    assert!((1..=3).contains(&lines), "[{}] {lines} lines of stderr: {err}", c.name);
-    assert!(err.contains(&c.culprit.display().to_string()), "[{}] message does not name {}: {err}", c.name, c.culprit.display());
-    assert!(err.to_lowercase().contains(c.says), "[{}] message lacks {:?}: {err}", c.name, c.says);
+    assert!(
+        (1..=3).contains(&lines),
+        "[{}] {lines} lines of stderr: {err}",
+        c.name
+    );
+    assert!(
+        err.contains(&c.culprit.display().to_string()),
+        "[{}] message does not name {}: {err}",
+        c.name,
+        c.culprit.display()
+    );
+    assert!(
+        err.to_lowercase().contains(c.says),
+        "[{}] message lacks {:?}: {err}",
+        c.name,
+        c.says
+    );
     assert_eq!(listing(dir), before, "[{}] files left behind", c.name);
     assert!(out.stdout.is_empty(), "[{}] printed a report", c.name);
 }
@@ -114,7 +146,11 @@ fn check(dir: &Path, c: &Case) {
 fn good(path: &Path, seed: u64) {
     write(
         path,
-        vec![("logits", lg(6, 8, seed)), ("targets", i64s(&[6], &[1, 2, 3, 4, 5, 6])), ("prompt_offsets", i64s(&[3], &[0, 2, 6]))],
+        vec![
+            ("logits", lg(6, 8, seed)),
+            ("targets", i64s(&[6], &[1, 2, 3, 4, 5, 6])),
+            ("prompt_offsets", i64s(&[3], &[0, 2, 6])),
+        ],
         None,
     );
 }
@@ -131,31 +167,72 @@ fn cases(d: &Path) -> Vec<Case> {
     let mut cand = |name: &'static str, says: &'static str, bytes: Vec<u8>| {
         let p = d.join(format!("{name}.safetensors"));
         std::fs::write(&p, bytes).unwrap();
-        v.push(Case { name, culprit: p.clone(), args: vec!["compare".into(), s(&good_ref).into(), s(&p).into()], says });
+        v.push(Case {
+            name,
+            culprit: p.clone(),
+            args: vec!["compare".into(), s(&good_ref).into(), s(&p).into()],
+            says,
+        });
     };
     let good_bytes = std::fs::read(&good_cand).unwrap();
     let data = f32_bytes(&logits(4, 10, 3));
 
     cand("empty", "empty", Vec::new());
-    cand("five-bytes", "shorter than the 8-byte", b"\x01\x02\x03\x04\x05".to_vec());
-    cand("truncated", "truncated", good_bytes[..good_bytes.len() - 10].to_vec());
+    cand(
+        "five-bytes",
+        "shorter than the 8-byte",
+        b"\x01\x02\x03\x04\x05".to_vec(),
+    );
+    cand(
+        "truncated",
+        "truncated",
+        good_bytes[..good_bytes.len() - 10].to_vec(),
+    );
     cand("truncated-in-header", "exceeds", good_bytes[..40].to_vec());
-    cand("padded", "bytes after the end", [good_bytes.clone(), vec![0u8; 16]].concat());
+    cand(
+        "padded",
+        "bytes after the end",
+        [good_bytes.clone(), vec![0u8; 16]].concat(),
+    );
     cand("header-longer-than-file", "header length", {
         let mut b = 1_000_000u64.to_le_bytes().to_vec();
         b.extend_from_slice(b"{}");
         b
     });
-    cand("header-length-huge", "header length", u64::MAX.to_le_bytes().iter().chain(b"{}").copied().collect());
+    cand(
+        "header-length-huge",
+        "header length",
+        u64::MAX
+            .to_le_bytes()
+            .iter()
+            .chain(b"{}")
+            .copied()
+            .collect(),
+    );
     cand("header-length-zero", "header length 0", raw("", &data));
-    cand("header-not-json", "not json", raw("this is not json at all", &data));
-    cand("header-json-array", "not an object", raw("[1, 2, 3]", &data));
+    cand(
+        "header-not-json",
+        "not json",
+        raw("this is not json at all", &data),
+    );
+    cand(
+        "header-json-array",
+        "not an object",
+        raw("[1, 2, 3]", &data),
+    );
     cand("header-not-utf8", "utf-8", {
         let mut b = 6u64.to_le_bytes().to_vec();
         b.extend_from_slice(&[0x7b, 0xff, 0xfe, 0xfd, 0x7d, 0x20]);
         b
     });
-    cand("metadata-not-strings", "malformed entry", raw(r#"{"__metadata__":{"model":7},"logits":{"dtype":"F32","shape":[4,10],"data_offsets":[0,160]}}"#, &data));
+    cand(
+        "metadata-not-strings",
+        "malformed entry",
+        raw(
+            r#"{"__metadata__":{"model":7},"logits":{"dtype":"F32","shape":[4,10],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
+    );
     cand(
         "offsets-overlap",
         "overlaps",
@@ -164,103 +241,420 @@ fn cases(d: &Path) -> Vec<Case> {
             &data,
         ),
     );
-    cand("offsets-gap", "gap", raw(r#"{"logits":{"dtype":"F32","shape":[4,9],"data_offsets":[16,160]}}"#, &data));
-    cand("offsets-backwards", "backwards", raw(r#"{"logits":{"dtype":"F32","shape":[0,10],"data_offsets":[160,0]}}"#, &data));
-    cand("offsets-beyond-file", "truncated", raw(r#"{"logits":{"dtype":"F32","shape":[8,10],"data_offsets":[0,320]}}"#, &data));
-    cand("shape-disagrees-with-bytes", "needs 320 bytes", raw(r#"{"logits":{"dtype":"F32","shape":[8,10],"data_offsets":[0,160]}}"#, &data));
+    cand(
+        "offsets-gap",
+        "gap",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[4,9],"data_offsets":[16,160]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "offsets-backwards",
+        "backwards",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[0,10],"data_offsets":[160,0]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "offsets-beyond-file",
+        "truncated",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[8,10],"data_offsets":[0,320]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "shape-disagrees-with-bytes",
+        "needs 320 bytes",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[8,10],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
+    );
     cand(
         "shape-overflows",
         "overflows",
-        raw(r#"{"logits":{"dtype":"F32","shape":[4294967296,4294967296,4294967296],"data_offsets":[0,160]}}"#, &data),
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[4294967296,4294967296,4294967296],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
     );
     cand(
         "shape-overflows-with-zero-vocab",
         "overflows",
-        raw(r#"{"logits":{"dtype":"F32","shape":[4611686018427387904,8,0],"data_offsets":[0,0]}}"#, b""),
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[4611686018427387904,8,0],"data_offsets":[0,0]}}"#,
+            b"",
+        ),
     );
-    cand("unknown-dtype", "malformed entry (unknown variant `f12`", raw(r#"{"logits":{"dtype":"F12","shape":[4,10],"data_offsets":[0,160]}}"#, &data));
-    cand("negative-shape", "malformed entry", raw(r#"{"logits":{"dtype":"F32","shape":[-4,10],"data_offsets":[0,160]}}"#, &data));
-    cand("no-tensors", "no `logits`", raw(r#"{"__metadata__":{"model":"Wren-7"}}"#, b""));
-    cand("no-logits", "no `logits`", raw(r#"{"scores":{"dtype":"F32","shape":[4,10],"data_offsets":[0,160]}}"#, &data));
-    cand("logits-i32", "dtype i32", raw(r#"{"logits":{"dtype":"I32","shape":[4,10],"data_offsets":[0,160]}}"#, &data));
-    cand("logits-f64", "dtype f64", raw(r#"{"logits":{"dtype":"F64","shape":[4,5],"data_offsets":[0,160]}}"#, &data));
-    cand("logits-u8", "dtype u8", raw(r#"{"logits":{"dtype":"U8","shape":[4,40],"data_offsets":[0,160]}}"#, &data));
-    cand("rank-1", "rank 1", raw(r#"{"logits":{"dtype":"F32","shape":[40],"data_offsets":[0,160]}}"#, &data));
-    cand("rank-4", "rank 4", raw(r#"{"logits":{"dtype":"F32","shape":[2,2,2,5],"data_offsets":[0,160]}}"#, &data));
-    cand("rank-0", "rank 0", raw(r#"{"logits":{"dtype":"F32","shape":[],"data_offsets":[0,4]}}"#, &data[..4]));
-    cand("zero-rows", "0 rows", raw(r#"{"logits":{"dtype":"F32","shape":[0,10],"data_offsets":[0,0]}}"#, b""));
-    cand("zero-length-sequences", "0 rows", raw(r#"{"logits":{"dtype":"F32","shape":[4,0,10],"data_offsets":[0,0]}}"#, b""));
-    cand("zero-vocab", "vocabulary of 0", raw(r#"{"logits":{"dtype":"F32","shape":[6,0],"data_offsets":[0,0]}}"#, b""));
+    cand(
+        "unknown-dtype",
+        "malformed entry (unknown variant `f12`",
+        raw(
+            r#"{"logits":{"dtype":"F12","shape":[4,10],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "negative-shape",
+        "malformed entry",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[-4,10],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "no-tensors",
+        "no `logits`",
+        raw(r#"{"__metadata__":{"model":"Wren-7"}}"#, b""),
+    );
+    cand(
+        "no-logits",
+        "no `logits`",
+        raw(
+            r#"{"scores":{"dtype":"F32","shape":[4,10],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "logits-i32",
+        "dtype i32",
+        raw(
+            r#"{"logits":{"dtype":"I32","shape":[4,10],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "logits-f64",
+        "dtype f64",
+        raw(
+            r#"{"logits":{"dtype":"F64","shape":[4,5],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "logits-u8",
+        "dtype u8",
+        raw(
+            r#"{"logits":{"dtype":"U8","shape":[4,40],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "rank-1",
+        "rank 1",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[40],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "rank-4",
+        "rank 4",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[2,2,2,5],"data_offsets":[0,160]}}"#,
+            &data,
+        ),
+    );
+    cand(
+        "rank-0",
+        "rank 0",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[],"data_offsets":[0,4]}}"#,
+            &data[..4],
+        ),
+    );
+    cand(
+        "zero-rows",
+        "0 rows",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[0,10],"data_offsets":[0,0]}}"#,
+            b"",
+        ),
+    );
+    cand(
+        "zero-length-sequences",
+        "0 rows",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[4,0,10],"data_offsets":[0,0]}}"#,
+            b"",
+        ),
+    );
+    cand(
+        "zero-vocab",
+        "vocabulary of 0",
+        raw(
+            r#"{"logits":{"dtype":"F32","shape":[6,0],"data_offsets":[0,0]}}"#,
+            b"",
+        ),
+    );
 
     // Random bytes, seeded: as they come, and behind a plausible header length.
     let mut r = Rng(99);
     let noise: Vec<u8> = (0..4096).map(|_| (r.uniform() * 256.0) as u8).collect();
     cand("random-bytes", "safetensors", noise.clone());
-    cand("random-after-length", "header", [100u64.to_le_bytes().to_vec(), noise.clone()].concat());
+    cand(
+        "random-after-length",
+        "header",
+        [100u64.to_le_bytes().to_vec(), noise.clone()].concat(),
+    );
 
     // Files that are valid safetensors but break the logit layout.
     let mut lay = |name: &'static str, says: &'static str, tensors: Vec<(&str, T)>| {
         let p = d.join(format!("{name}.safetensors"));
         write(&p, tensors, None);
-        v.push(Case { name, culprit: p.clone(), args: vec!["compare".into(), s(&good_ref).into(), s(&p).into()], says });
+        v.push(Case {
+            name,
+            culprit: p.clone(),
+            args: vec!["compare".into(), s(&good_ref).into(), s(&p).into()],
+            says,
+        });
     };
     let offs = || i64s(&[3], &[0, 2, 6]);
     let tg = || i64s(&[6], &[1, 2, 3, 4, 5, 6]);
-    lay("vocab-mismatch", "vocabulary 9 differs", vec![("logits", lg(6, 9, 4)), ("targets", tg()), ("prompt_offsets", offs())]);
+    lay(
+        "vocab-mismatch",
+        "vocabulary 9 differs",
+        vec![
+            ("logits", lg(6, 9, 4)),
+            ("targets", tg()),
+            ("prompt_offsets", offs()),
+        ],
+    );
     lay("row-mismatch", "has 7 rows", vec![("logits", lg(7, 8, 4))]);
-    lay("targets-differ", "`targets` differ", vec![("logits", lg(6, 8, 4)), ("targets", i64s(&[6], &[1, 2, 3, 4, 0, 6]))]);
-    lay("targets-wrong-length", "`targets` has shape [5]", vec![("logits", lg(6, 8, 4)), ("targets", i64s(&[5], &[1, 2, 3, 4, 5]))]);
-    lay("targets-2d-for-2d", "`targets` has shape [6, 1]", vec![("logits", lg(6, 8, 4)), ("targets", i64s(&[6, 1], &[1, 2, 3, 4, 5, 6]))]);
-    lay("targets-float", "expected i32 or i64", vec![("logits", lg(6, 8, 4)), ("targets", floats(Dtype::F32, &[6], &[1.0; 6]))]);
-    lay("targets-u8", "expected i32 or i64", vec![("logits", lg(6, 8, 4)), ("targets", u8s(&[6], &[1; 6]))]);
-    lay("offsets-not-monotone", "not strictly increasing", vec![("logits", lg(6, 8, 4)), ("prompt_offsets", i64s(&[4], &[0, 4, 2, 6]))]);
-    lay("offsets-repeat", "not strictly increasing", vec![("logits", lg(6, 8, 4)), ("prompt_offsets", i64s(&[4], &[0, 2, 2, 6]))]);
-    lay("offsets-negative", "not strictly increasing", vec![("logits", lg(6, 8, 4)), ("prompt_offsets", i64s(&[4], &[0, -3, 2, 6]))]);
-    lay("offsets-short-end", "ends at 5", vec![("logits", lg(6, 8, 4)), ("prompt_offsets", i64s(&[3], &[0, 2, 5]))]);
-    lay("offsets-long-end", "ends at 9", vec![("logits", lg(6, 8, 4)), ("prompt_offsets", i64s(&[3], &[0, 2, 9]))]);
-    lay("offsets-start", "starts at 1", vec![("logits", lg(6, 8, 4)), ("prompt_offsets", i64s(&[3], &[1, 2, 6]))]);
-    lay("offsets-one-entry", "at least one prompt", vec![("logits", lg(6, 8, 4)), ("prompt_offsets", i64s(&[1], &[0]))]);
-    lay("offsets-i32", "expected i64", vec![("logits", lg(6, 8, 4)), ("prompt_offsets", i32s(&[3], &[0, 2, 6]))]);
-    lay("offsets-2d", "expected [prompts + 1]", vec![("logits", lg(6, 8, 4)), ("prompt_offsets", i64s(&[1, 3], &[0, 2, 6]))]);
-    lay("offsets-with-3d", "only allowed with a 2-d", vec![("logits", floats(Dtype::F32, &[2, 3, 8], &logits(6, 8, 4))), ("prompt_offsets", offs())]);
-    lay("prompts-differ", "prompt boundaries differ", vec![("logits", lg(6, 8, 4)), ("prompt_offsets", i64s(&[3], &[0, 3, 6]))]);
-    lay("mask-wrong-shape", "`mask` has shape [5]", vec![("logits", lg(6, 8, 4)), ("mask", u8s(&[5], &[1; 5]))]);
-    lay("mask-3d-shape", "`mask` has shape [6]", vec![("logits", floats(Dtype::F32, &[2, 3, 8], &logits(6, 8, 4))), ("mask", u8s(&[6], &[1; 6]))]);
-    lay("mask-i32", "expected u8 or bool", vec![("logits", lg(6, 8, 4)), ("mask", i32s(&[6], &[1; 6]))]);
-    lay("mask-bool-not-0-or-1", "expected 0 or 1", vec![("logits", lg(6, 8, 4)), ("mask", bools(&[6], &[1, 1, 2, 1, 0, 1]))]);
+    lay(
+        "targets-differ",
+        "`targets` differ",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("targets", i64s(&[6], &[1, 2, 3, 4, 0, 6])),
+        ],
+    );
+    lay(
+        "targets-wrong-length",
+        "`targets` has shape [5]",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("targets", i64s(&[5], &[1, 2, 3, 4, 5])),
+        ],
+    );
+    lay(
+        "targets-2d-for-2d",
+        "`targets` has shape [6, 1]",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("targets", i64s(&[6, 1], &[1, 2, 3, 4, 5, 6])),
+        ],
+    );
+    lay(
+        "targets-float",
+        "expected i32 or i64",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("targets", floats(Dtype::F32, &[6], &[1.0; 6])),
+        ],
+    );
+    lay(
+        "targets-u8",
+        "expected i32 or i64",
+        vec![("logits", lg(6, 8, 4)), ("targets", u8s(&[6], &[1; 6]))],
+    );
+    lay(
+        "offsets-not-monotone",
+        "not strictly increasing",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("prompt_offsets", i64s(&[4], &[0, 4, 2, 6])),
+        ],
+    );
+    lay(
+        "offsets-repeat",
+        "not strictly increasing",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("prompt_offsets", i64s(&[4], &[0, 2, 2, 6])),
+        ],
+    );
+    lay(
+        "offsets-negative",
+        "not strictly increasing",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("prompt_offsets", i64s(&[4], &[0, -3, 2, 6])),
+        ],
+    );
+    lay(
+        "offsets-short-end",
+        "ends at 5",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("prompt_offsets", i64s(&[3], &[0, 2, 5])),
+        ],
+    );
+    lay(
+        "offsets-long-end",
+        "ends at 9",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("prompt_offsets", i64s(&[3], &[0, 2, 9])),
+        ],
+    );
+    lay(
+        "offsets-start",
+        "starts at 1",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("prompt_offsets", i64s(&[3], &[1, 2, 6])),
+        ],
+    );
+    lay(
+        "offsets-one-entry",
+        "at least one prompt",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("prompt_offsets", i64s(&[1], &[0])),
+        ],
+    );
+    lay(
+        "offsets-i32",
+        "expected i64",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("prompt_offsets", i32s(&[3], &[0, 2, 6])),
+        ],
+    );
+    lay(
+        "offsets-2d",
+        "expected [prompts + 1]",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("prompt_offsets", i64s(&[1, 3], &[0, 2, 6])),
+        ],
+    );
+    lay(
+        "offsets-with-3d",
+        "only allowed with a 2-d",
+        vec![
+            ("logits", floats(Dtype::F32, &[2, 3, 8], &logits(6, 8, 4))),
+            ("prompt_offsets", offs()),
+        ],
+    );
+    lay(
+        "prompts-differ",
+        "prompt boundaries differ",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("prompt_offsets", i64s(&[3], &[0, 3, 6])),
+        ],
+    );
+    lay(
+        "mask-wrong-shape",
+        "`mask` has shape [5]",
+        vec![("logits", lg(6, 8, 4)), ("mask", u8s(&[5], &[1; 5]))],
+    );
+    lay(
+        "mask-3d-shape",
+        "`mask` has shape [6]",
+        vec![
+            ("logits", floats(Dtype::F32, &[2, 3, 8], &logits(6, 8, 4))),
+            ("mask", u8s(&[6], &[1; 6])),
+        ],
+    );
+    lay(
+        "mask-i32",
+        "expected u8 or bool",
+        vec![("logits", lg(6, 8, 4)), ("mask", i32s(&[6], &[1; 6]))],
+    );
+    lay(
+        "mask-bool-not-0-or-1",
+        "expected 0 or 1",
+        vec![
+            ("logits", lg(6, 8, 4)),
+            ("mask", bools(&[6], &[1, 1, 2, 1, 0, 1])),
+        ],
+    );
 
     // Targets outside the vocabulary (the file compared with itself, so the
     // targets agree and only the range check can object).
     let p = d.join("targets-beyond-vocab.safetensors");
-    write(&p, vec![("logits", lg(6, 8, 5)), ("targets", i64s(&[6], &[1, 2, 8, 4, 5, 6])), ("prompt_offsets", offs())], None);
-    v.push(Case { name: "targets-beyond-vocab", culprit: p.clone(), args: vec!["compare".into(), s(&p).into(), s(&p).into()], says: "outside the vocabulary" });
+    write(
+        &p,
+        vec![
+            ("logits", lg(6, 8, 5)),
+            ("targets", i64s(&[6], &[1, 2, 8, 4, 5, 6])),
+            ("prompt_offsets", offs()),
+        ],
+        None,
+    );
+    v.push(Case {
+        name: "targets-beyond-vocab",
+        culprit: p.clone(),
+        args: vec!["compare".into(), s(&p).into(), s(&p).into()],
+        says: "outside the vocabulary",
+    });
 
     // Two candidates whose targets disagree, the reference having none.
-    let (r0, c1, c2) = (d.join("no-targets-ref.safetensors"), d.join("targets-a.safetensors"), d.join("targets-b.safetensors"));
+    let (r0, c1, c2) = (
+        d.join("no-targets-ref.safetensors"),
+        d.join("targets-a.safetensors"),
+        d.join("targets-b.safetensors"),
+    );
     write(&r0, vec![("logits", lg(6, 8, 6))], None);
     write(&c1, vec![("logits", lg(6, 8, 7)), ("targets", tg())], None);
-    write(&c2, vec![("logits", lg(6, 8, 8)), ("targets", i64s(&[6], &[1, 2, 3, 4, 5, 0]))], None);
+    write(
+        &c2,
+        vec![
+            ("logits", lg(6, 8, 8)),
+            ("targets", i64s(&[6], &[1, 2, 3, 4, 5, 0])),
+        ],
+        None,
+    );
     v.push(Case {
         name: "targets-differ-between-candidates",
         culprit: c2.clone(),
-        args: vec!["compare".into(), s(&r0).into(), s(&c1).into(), s(&c2).into()],
+        args: vec![
+            "compare".into(),
+            s(&r0).into(),
+            s(&c1).into(),
+            s(&c2).into(),
+        ],
         says: "`targets` differ",
     });
 
     // A reference that is broken (the first file opened).
     let p = d.join("broken-reference.safetensors");
     std::fs::write(&p, &good_bytes[..good_bytes.len() - 1]).unwrap();
-    v.push(Case { name: "broken-reference", culprit: p.clone(), args: vec!["compare".into(), s(&p).into(), s(&good_cand).into()], says: "truncated" });
+    v.push(Case {
+        name: "broken-reference",
+        culprit: p.clone(),
+        args: vec!["compare".into(), s(&p).into(), s(&good_cand).into()],
+        says: "truncated",
+    });
 
     // Directories.
     let empty = d.join("no-shards");
     std::fs::create_dir_all(&empty).unwrap();
     std::fs::write(empty.join("README.txt"), "not a shard").unwrap();
-    v.push(Case { name: "dir-without-shards", culprit: empty.clone(), args: vec!["compare".into(), s(&good_ref).into(), s(&empty).into()], says: "no *.safetensors shard" });
+    v.push(Case {
+        name: "dir-without-shards",
+        culprit: empty.clone(),
+        args: vec!["compare".into(), s(&good_ref).into(), s(&empty).into()],
+        says: "no *.safetensors shard",
+    });
     let mixed = d.join("mixed-vocab");
     std::fs::create_dir_all(&mixed).unwrap();
-    write(&mixed.join("part-0.safetensors"), vec![("logits", lg(3, 8, 9))], None);
-    write(&mixed.join("part-1.safetensors"), vec![("logits", lg(3, 9, 9))], None);
+    write(
+        &mixed.join("part-0.safetensors"),
+        vec![("logits", lg(3, 8, 9))],
+        None,
+    );
+    write(
+        &mixed.join("part-1.safetensors"),
+        vec![("logits", lg(3, 9, 9))],
+        None,
+    );
     v.push(Case {
         name: "dir-shard-of-another-vocab",
         culprit: mixed.join("part-1.safetensors"),
@@ -269,8 +663,16 @@ fn cases(d: &Path) -> Vec<Case> {
     });
     let mixed = d.join("mixed-dtype");
     std::fs::create_dir_all(&mixed).unwrap();
-    write(&mixed.join("part-0.safetensors"), vec![("logits", lg(3, 8, 9))], None);
-    write(&mixed.join("part-1.safetensors"), vec![("logits", floats(Dtype::BF16, &[3, 8], &logits(3, 8, 9)))], None);
+    write(
+        &mixed.join("part-0.safetensors"),
+        vec![("logits", lg(3, 8, 9))],
+        None,
+    );
+    write(
+        &mixed.join("part-1.safetensors"),
+        vec![("logits", floats(Dtype::BF16, &[3, 8], &logits(3, 8, 9)))],
+        None,
+    );
     v.push(Case {
         name: "dir-shard-of-another-dtype",
         culprit: mixed.join("part-1.safetensors"),
@@ -279,8 +681,16 @@ fn cases(d: &Path) -> Vec<Case> {
     });
     let mixed = d.join("mixed-targets");
     std::fs::create_dir_all(&mixed).unwrap();
-    write(&mixed.join("part-0.safetensors"), vec![("logits", lg(3, 8, 9)), ("targets", i64s(&[3], &[1, 2, 3]))], None);
-    write(&mixed.join("part-1.safetensors"), vec![("logits", lg(3, 8, 9))], None);
+    write(
+        &mixed.join("part-0.safetensors"),
+        vec![("logits", lg(3, 8, 9)), ("targets", i64s(&[3], &[1, 2, 3]))],
+        None,
+    );
+    write(
+        &mixed.join("part-1.safetensors"),
+        vec![("logits", lg(3, 8, 9))],
+        None,
+    );
     v.push(Case {
         name: "dir-shards-disagree-on-targets",
         culprit: mixed.join("part-1.safetensors"),
@@ -289,7 +699,11 @@ fn cases(d: &Path) -> Vec<Case> {
     });
     let mixed = d.join("broken-shard");
     std::fs::create_dir_all(&mixed).unwrap();
-    write(&mixed.join("part-0.safetensors"), vec![("logits", lg(3, 8, 9))], None);
+    write(
+        &mixed.join("part-0.safetensors"),
+        vec![("logits", lg(3, 8, 9))],
+        None,
+    );
     std::fs::write(mixed.join("part-1.safetensors"), &good_bytes[..30]).unwrap();
     v.push(Case {
         name: "dir-with-a-broken-shard",
@@ -300,9 +714,30 @@ fn cases(d: &Path) -> Vec<Case> {
 
     // Paths that are not files.
     let missing = d.join("missing.safetensors");
-    v.push(Case { name: "missing-path", culprit: missing.clone(), args: vec!["compare".into(), s(&good_ref).into(), s(&missing).into()], says: "cannot open" });
-    v.push(Case { name: "missing-reference", culprit: missing.clone(), args: vec!["compare".into(), s(&missing).into(), s(&good_cand).into()], says: "cannot open" });
-    v.push(Case { name: "vocab-option-too-large", culprit: good_ref.clone(), args: vec!["compare".into(), s(&good_ref).into(), s(&good_cand).into(), "--vocab".into(), "9".into()], says: "fewer than --vocab 9" });
+    v.push(Case {
+        name: "missing-path",
+        culprit: missing.clone(),
+        args: vec!["compare".into(), s(&good_ref).into(), s(&missing).into()],
+        says: "cannot open",
+    });
+    v.push(Case {
+        name: "missing-reference",
+        culprit: missing.clone(),
+        args: vec!["compare".into(), s(&missing).into(), s(&good_cand).into()],
+        says: "cannot open",
+    });
+    v.push(Case {
+        name: "vocab-option-too-large",
+        culprit: good_ref.clone(),
+        args: vec![
+            "compare".into(),
+            s(&good_ref).into(),
+            s(&good_cand).into(),
+            "--vocab".into(),
+            "9".into(),
+        ],
+        says: "fewer than --vocab 9",
+    });
     v
 }
 
@@ -328,14 +763,22 @@ fn a_pipe_as_input_is_refused_without_waiting_for_a_writer() {
     }
     let good_ref = dir.path().join("ref.safetensors");
     good(&good_ref, 1);
-    let c = Case { name: "fifo", culprit: fifo.clone(), args: vec!["compare".into(), s(&good_ref).into(), s(&fifo).into()], says: "not a regular file" };
+    let c = Case {
+        name: "fifo",
+        culprit: fifo.clone(),
+        args: vec!["compare".into(), s(&good_ref).into(), s(&fifo).into()],
+        says: "not a regular file",
+    };
     check(dir.path(), &c);
 }
 
 #[test]
 fn a_broken_tokenizer_is_refused() {
     let dir = tempdir::Dir::new();
-    let (r, c) = (dir.path().join("r.safetensors"), dir.path().join("c.safetensors"));
+    let (r, c) = (
+        dir.path().join("r.safetensors"),
+        dir.path().join("c.safetensors"),
+    );
     good(&r, 1);
     good(&c, 2);
     let tok = dir.path().join("tokenizer.json");
@@ -343,7 +786,13 @@ fn a_broken_tokenizer_is_refused() {
     let case = Case {
         name: "tokenizer-not-json",
         culprit: tok.clone(),
-        args: vec!["compare".into(), s(&r).into(), s(&c).into(), "--tokenizer".into(), s(&tok).into()],
+        args: vec![
+            "compare".into(),
+            s(&r).into(),
+            s(&c).into(),
+            "--tokenizer".into(),
+            s(&tok).into(),
+        ],
         says: "",
     };
     check(dir.path(), &case);
@@ -360,27 +809,49 @@ fn value_faults_are_counted_and_listed_and_means_stay_finite() {
     let ninf = f32::NEG_INFINITY;
     // Row by row: (reference, candidate).
     let rows: Vec<([f32; 4], [f32; 4])> = vec![
-        ([0.0, 1.0, 2.0, 3.0], [0.1, 1.0, 2.0, 3.0]),        // 0 fine
-        ([0.0, f32::NAN, 2.0, 3.0], [0.0, 1.0, 2.0, 3.0]),   // 1 NaN in the reference
-        ([0.0, 1.0, 2.0, 3.0], [0.0, 1.0, f32::NAN, 3.0]),   // 2 NaN in the candidate
+        ([0.0, 1.0, 2.0, 3.0], [0.1, 1.0, 2.0, 3.0]), // 0 fine
+        ([0.0, f32::NAN, 2.0, 3.0], [0.0, 1.0, 2.0, 3.0]), // 1 NaN in the reference
+        ([0.0, 1.0, 2.0, 3.0], [0.0, 1.0, f32::NAN, 3.0]), // 2 NaN in the candidate
         ([0.0, 1.0, f32::INFINITY, 3.0], [0.0, 1.0, 2.0, 3.0]), // 3 +inf in the reference
         ([0.0, 1.0, 2.0, 3.0], [f32::INFINITY, 1.0, 2.0, 3.0]), // 4 +inf in the candidate
-        ([ninf; 4], [0.0, 1.0, 2.0, 3.0]),                   // 5 all -inf in the reference
-        ([0.0, 1.0, 2.0, 3.0], [ninf; 4]),                   // 6 all -inf in the candidate
-        ([0.5, 1.0, 2.0, 3.0], [0.5, 1.0, 2.0, 2.5]),        // 7 fine
-        ([0.0, 1.0, 2.0, ninf], [0.0, 1.0, 2.0, 3.0]),       // 8 -inf in the reference only: finite kl
-        ([0.0, 1.0, 2.0, 3.0], [0.0, 1.0, 2.0, ninf]),       // 9 -inf in the candidate where p > 0: kl = +inf
+        ([ninf; 4], [0.0, 1.0, 2.0, 3.0]),            // 5 all -inf in the reference
+        ([0.0, 1.0, 2.0, 3.0], [ninf; 4]),            // 6 all -inf in the candidate
+        ([0.5, 1.0, 2.0, 3.0], [0.5, 1.0, 2.0, 2.5]), // 7 fine
+        ([0.0, 1.0, 2.0, ninf], [0.0, 1.0, 2.0, 3.0]), // 8 -inf in the reference only: finite kl
+        ([0.0, 1.0, 2.0, 3.0], [0.0, 1.0, 2.0, ninf]), // 9 -inf in the candidate where p > 0: kl = +inf
     ];
     let x: Vec<f32> = rows.iter().flat_map(|r| r.0).collect();
     let y: Vec<f32> = rows.iter().flat_map(|r| r.1).collect();
     let n = rows.len();
-    let (rp, cp) = (dir.path().join("r.safetensors"), dir.path().join("c.safetensors"));
+    let (rp, cp) = (
+        dir.path().join("r.safetensors"),
+        dir.path().join("c.safetensors"),
+    );
     let tg: Vec<i64> = (0..n as i64).map(|i| i % v as i64).collect();
-    write(&rp, vec![("logits", floats(Dtype::F32, &[n, v], &x)), ("targets", i64s(&[n], &tg))], None);
-    write(&cp, vec![("logits", floats(Dtype::F32, &[n, v], &y)), ("targets", i64s(&[n], &tg))], None);
+    write(
+        &rp,
+        vec![
+            ("logits", floats(Dtype::F32, &[n, v], &x)),
+            ("targets", i64s(&[n], &tg)),
+        ],
+        None,
+    );
+    write(
+        &cp,
+        vec![
+            ("logits", floats(Dtype::F32, &[n, v], &y)),
+            ("targets", i64s(&[n], &tg)),
+        ],
+        None,
+    );
     let (j, c) = (dir.path().join("r.json"), dir.path().join("p.csv"));
     let out = klgauge(&["compare", s(&rp), s(&cp), "--json", s(&j), "--csv", s(&c)]);
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let rep = json(&j);
     let cand = &rep["candidates"][0];
     assert_eq!(cand["skipped_rows"], 6);
@@ -388,16 +859,35 @@ fn value_faults_are_counted_and_listed_and_means_stay_finite() {
         .as_array()
         .unwrap()
         .iter()
-        .map(|r| (r["row"].as_u64().unwrap(), r["file"].as_str().unwrap().to_string()))
+        .map(|r| {
+            (
+                r["row"].as_u64().unwrap(),
+                r["file"].as_str().unwrap().to_string(),
+            )
+        })
         .collect();
-    let want: Vec<(u64, String)> =
-        [(1, "reference"), (2, "candidate"), (3, "reference"), (4, "candidate"), (5, "reference"), (6, "candidate")]
-            .iter()
-            .map(|(r, f)| (*r, f.to_string()))
-            .collect();
+    let want: Vec<(u64, String)> = [
+        (1, "reference"),
+        (2, "candidate"),
+        (3, "reference"),
+        (4, "candidate"),
+        (5, "reference"),
+        (6, "candidate"),
+    ]
+    .iter()
+    .map(|(r, f)| (*r, f.to_string()))
+    .collect();
     assert_eq!(listed, want);
-    let faults: Vec<&str> = cand["skipped"].as_array().unwrap().iter().map(|r| r["fault"].as_str().unwrap()).collect();
-    assert!(faults[0].contains("NaN") && faults[2].contains("+inf") && faults[4].contains("-inf"), "{faults:?}");
+    let faults: Vec<&str> = cand["skipped"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|r| r["fault"].as_str().unwrap())
+        .collect();
+    assert!(
+        faults[0].contains("NaN") && faults[2].contains("+inf") && faults[4].contains("-inf"),
+        "{faults:?}"
+    );
     assert_eq!(cand["positions"], 4);
     assert_eq!(cand["infinite_kl"], 1);
     // Row 9 makes the kl mean infinite and row 8 the reverse one (null in
@@ -414,7 +904,11 @@ fn value_faults_are_counted_and_listed_and_means_stay_finite() {
     assert!(cand["top1_agree"].as_f64().unwrap().is_finite());
     // The CSV lists exactly the counted rows.
     let text = std::fs::read_to_string(&c).unwrap();
-    let counted: Vec<&str> = text.lines().skip(1).map(|l| l.split(',').next().unwrap()).collect();
+    let counted: Vec<&str> = text
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').next().unwrap())
+        .collect();
     assert_eq!(counted, vec!["0", "7", "8", "9"]);
     // The terminal report states both counts.
     let stdout = String::from_utf8_lossy(&out.stdout);
@@ -424,10 +918,26 @@ fn value_faults_are_counted_and_listed_and_means_stay_finite() {
     // Without the infinite row, the kl mean is finite too: KL over rows 0, 7, 8
     // from an f64 log-softmax (textbook definition, common practice).
     let keep = [0usize, 7, 8];
-    let x2: Vec<f32> = keep.iter().flat_map(|&i| rows[i].0).chain(rows[1..7].iter().flat_map(|r| r.0)).collect();
-    let y2: Vec<f32> = keep.iter().flat_map(|&i| rows[i].1).chain(rows[1..7].iter().flat_map(|r| r.1)).collect();
-    write(&rp, vec![("logits", floats(Dtype::F32, &[9, v], &x2))], None);
-    write(&cp, vec![("logits", floats(Dtype::F32, &[9, v], &y2))], None);
+    let x2: Vec<f32> = keep
+        .iter()
+        .flat_map(|&i| rows[i].0)
+        .chain(rows[1..7].iter().flat_map(|r| r.0))
+        .collect();
+    let y2: Vec<f32> = keep
+        .iter()
+        .flat_map(|&i| rows[i].1)
+        .chain(rows[1..7].iter().flat_map(|r| r.1))
+        .collect();
+    write(
+        &rp,
+        vec![("logits", floats(Dtype::F32, &[9, v], &x2))],
+        None,
+    );
+    write(
+        &cp,
+        vec![("logits", floats(Dtype::F32, &[9, v], &y2))],
+        None,
+    );
     let out = klgauge(&["compare", s(&rp), s(&cp), "--json", s(&j)]);
     assert_eq!(out.status.code(), Some(0));
     let cand = &json(&j)["candidates"][0];
@@ -441,22 +951,51 @@ fn value_faults_are_counted_and_listed_and_means_stay_finite() {
         .iter()
         .map(|&i| {
             let (lp, lq) = (lsm(&rows[i].0), lsm(&rows[i].1));
-            lp.iter().zip(&lq).map(|(a, b)| if a.is_finite() { a.exp() * (a - b) } else { 0.0 }).sum::<f64>()
+            lp.iter()
+                .zip(&lq)
+                .map(|(a, b)| {
+                    if a.is_finite() {
+                        a.exp() * (a - b)
+                    } else {
+                        0.0
+                    }
+                })
+                .sum::<f64>()
         })
         .sum::<f64>()
         / 3.0;
     let got = cand["kl"]["mean"].as_f64().unwrap();
-    assert!((got - want).abs() <= 1e-6 * want.max(1e-9), "{got} vs {want}");
+    assert!(
+        (got - want).abs() <= 1e-6 * want.max(1e-9),
+        "{got} vs {want}"
+    );
 }
 
 #[test]
 fn a_run_where_every_row_is_faulty_or_masked_still_reports() {
     let dir = tempdir::Dir::new();
-    let (rp, cp) = (dir.path().join("r.safetensors"), dir.path().join("c.safetensors"));
-    write(&rp, vec![("logits", floats(Dtype::F32, &[3, 4], &[f32::NAN; 12]))], None);
+    let (rp, cp) = (
+        dir.path().join("r.safetensors"),
+        dir.path().join("c.safetensors"),
+    );
+    write(
+        &rp,
+        vec![("logits", floats(Dtype::F32, &[3, 4], &[f32::NAN; 12]))],
+        None,
+    );
     write(&cp, vec![("logits", lg(3, 4, 1))], None);
     let j = dir.path().join("r.json");
-    let out = klgauge(&["compare", s(&rp), s(&cp), "--json", s(&j), "--max-kl-mean", "1", "--min-top1", "0.5"]);
+    let out = klgauge(&[
+        "compare",
+        s(&rp),
+        s(&cp),
+        "--json",
+        s(&j),
+        "--max-kl-mean",
+        "1",
+        "--min-top1",
+        "0.5",
+    ]);
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(!err.contains("panicked"), "{err}");
     // Nothing counted: a gate has nothing to pass on and fails.
@@ -464,11 +1003,24 @@ fn a_run_where_every_row_is_faulty_or_masked_still_reports() {
     let cand = &json(&j)["candidates"][0];
     assert_eq!(cand["skipped_rows"], 3);
     assert_eq!(cand["positions"], 0);
-    assert!(cand["warnings"].as_array().unwrap().iter().any(|w| w.as_str().unwrap().contains("no position was counted")));
+    assert!(cand["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|w| w.as_str().unwrap().contains("no position was counted")));
 
-    write(&rp, vec![("logits", lg(3, 4, 2)), ("mask", u8s(&[3], &[0, 0, 0]))], None);
+    write(
+        &rp,
+        vec![("logits", lg(3, 4, 2)), ("mask", u8s(&[3], &[0, 0, 0]))],
+        None,
+    );
     let out = klgauge(&["compare", s(&rp), s(&cp), "--json", s(&j)]);
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     assert_eq!(json(&j)["candidates"][0]["positions"], 0);
 }
 
@@ -484,15 +1036,24 @@ fn a_full_disk_fails_cleanly() {
     }
     let p = random_pair(50, 64, 5, 0.2, 21);
     let j = p.dir.path().join("r.json");
-    for args in [vec!["--csv", "/dev/full", "--json", s(&j)], vec!["--json", "/dev/full"]] {
+    for args in [
+        vec!["--csv", "/dev/full", "--json", s(&j)],
+        vec!["--json", "/dev/full"],
+    ] {
         let before = listing(p.dir.path());
         let mut a = vec!["compare", s(&p.reference), s(&p.candidate)];
         a.extend(args.iter().copied());
         let out = run_limited(&a, Duration::from_secs(60));
         let err = String::from_utf8_lossy(&out.stderr);
         assert_eq!(out.status.code(), Some(2), "{args:?}: {err}");
-        assert!(err.contains("/dev/full") && err.to_lowercase().contains("no space"), "{err}");
-        assert!(!err.contains("panicked") && err.lines().count() <= 3, "{err}");
+        assert!(
+            err.contains("/dev/full") && err.to_lowercase().contains("no space"),
+            "{err}"
+        );
+        assert!(
+            !err.contains("panicked") && err.lines().count() <= 3,
+            "{err}"
+        );
         assert_eq!(listing(p.dir.path()), before, "{args:?}: a report was left");
     }
 }
@@ -520,11 +1081,21 @@ fn unusable_destinations_are_refused_before_the_run() {
         let out = run_limited(&a, Duration::from_secs(60));
         let err = String::from_utf8_lossy(&out.stderr);
         assert_eq!(out.status.code(), Some(2), "{args:?}: {err}");
-        assert!(err.contains(&culprit.display().to_string()), "{args:?}: {err}");
-        assert!(!err.contains("panicked") && err.lines().count() <= 3, "{err}");
+        assert!(
+            err.contains(&culprit.display().to_string()),
+            "{args:?}: {err}"
+        );
+        assert!(
+            !err.contains("panicked") && err.lines().count() <= 3,
+            "{err}"
+        );
         assert_eq!(listing(d), before, "{args:?}");
     }
-    assert_eq!(std::fs::read(&p.candidate).unwrap(), original, "an input was overwritten");
+    assert_eq!(
+        std::fs::read(&p.candidate).unwrap(),
+        original,
+        "an input was overwritten"
+    );
 }
 
 #[test]
@@ -589,15 +1160,40 @@ fn an_interrupted_run_leaves_nothing_behind() {
     let x = logits(rows, vocab, 31);
     let y: Vec<f32> = x.iter().map(|v| v + 0.01).collect();
     let (rp, cp) = (d.join("r.safetensors"), d.join("c.safetensors"));
-    write(&rp, vec![("logits", floats(Dtype::F16, &[rows, vocab], &x))], None);
-    write(&cp, vec![("logits", floats(Dtype::F16, &[rows, vocab], &y))], None);
+    write(
+        &rp,
+        vec![("logits", floats(Dtype::F16, &[rows, vocab], &x))],
+        None,
+    );
+    write(
+        &cp,
+        vec![("logits", floats(Dtype::F16, &[rows, vocab], &y))],
+        None,
+    );
     drop((x, y));
     let inputs = listing(d);
     let (j, c) = (d.join("r.json"), d.join("p.csv"));
     let mut args = vec!["compare".to_string(), s(&rp).into()];
     args.extend(std::iter::repeat(s(&cp).to_string()).take(48));
-    args.extend(["--samples", "64", "--threads", "1", "--json", s(&j), "--csv", s(&c)].map(String::from));
-    let child = Command::new(env!("CARGO_BIN_EXE_klgauge")).args(&args).stdout(Stdio::null()).stderr(Stdio::piped()).spawn().unwrap();
+    args.extend(
+        [
+            "--samples",
+            "64",
+            "--threads",
+            "1",
+            "--json",
+            s(&j),
+            "--csv",
+            s(&c),
+        ]
+        .map(String::from),
+    );
+    let child = Command::new(env!("CARGO_BIN_EXE_klgauge"))
+        .args(&args)
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
     let pid = child.id();
     // Wait until the CSV temporary exists: the run is computing.
     let start = Instant::now();
@@ -609,12 +1205,21 @@ fn an_interrupted_run_leaves_nothing_behind() {
         if let Some(st) = child.try_wait().unwrap() {
             panic!("finished ({st}) before it could be interrupted");
         }
-        assert!(start.elapsed() < Duration::from_secs(60), "no temporary appeared");
+        assert!(
+            start.elapsed() < Duration::from_secs(60),
+            "no temporary appeared"
+        );
         std::thread::sleep(Duration::from_millis(5));
     }
     std::thread::sleep(Duration::from_millis(200));
-    assert!(child.try_wait().unwrap().is_none(), "the run was too short to interrupt");
-    let st = Command::new("kill").args(["-INT", &pid.to_string()]).status().unwrap();
+    assert!(
+        child.try_wait().unwrap().is_none(),
+        "the run was too short to interrupt"
+    );
+    let st = Command::new("kill")
+        .args(["-INT", &pid.to_string()])
+        .status()
+        .unwrap();
     assert!(st.success());
     let out = wait_limited(child, Duration::from_secs(30));
     let err = String::from_utf8_lossy(&out.stderr);
@@ -639,7 +1244,10 @@ fn absurd_options_are_usage_errors_not_aborts() {
         let out = run_limited(&a, Duration::from_secs(60));
         let err = String::from_utf8_lossy(&out.stderr);
         assert_eq!(out.status.code(), Some(2), "{args:?}: {err}");
-        assert!(err.contains(says) && !err.contains("panicked"), "{args:?}: {err}");
+        assert!(
+            err.contains(says) && !err.contains("panicked"),
+            "{args:?}: {err}"
+        );
     }
 }
 
@@ -665,7 +1273,10 @@ fn a_common_offset_of_the_logits_changes_nothing() {
     };
     let (lp, lq) = (lsm(&base), lsm(&y));
     let want: f64 = lp.iter().zip(&lq).map(|(a, b)| a.exp() * (a - b)).sum();
-    let (rp, cp) = (dir.path().join("r.safetensors"), dir.path().join("c.safetensors"));
+    let (rp, cp) = (
+        dir.path().join("r.safetensors"),
+        dir.path().join("c.safetensors"),
+    );
     write(&rp, vec![("logits", floats(Dtype::F32, &[1, 4], &x))], None);
     write(&cp, vec![("logits", floats(Dtype::F32, &[1, 4], &y))], None);
     let j = dir.path().join("r.json");

@@ -33,11 +33,17 @@ fn check_nesting(page: &str) -> HashMap<String, usize> {
         }
         if let Some(name) = tag.strip_prefix('/') {
             let name = name.trim().to_ascii_lowercase();
-            let open = stack.pop().unwrap_or_else(|| panic!("</{name}> closes nothing at byte {start}"));
+            let open = stack
+                .pop()
+                .unwrap_or_else(|| panic!("</{name}> closes nothing at byte {start}"));
             assert_eq!(open, name, "</{name}> closes <{open}> at byte {start}");
             continue;
         }
-        let name: String = tag.chars().take_while(|c| c.is_ascii_alphanumeric()).collect::<String>().to_ascii_lowercase();
+        let name: String = tag
+            .chars()
+            .take_while(|c| c.is_ascii_alphanumeric())
+            .collect::<String>()
+            .to_ascii_lowercase();
         assert!(!name.is_empty(), "odd tag at byte {start}: <{tag}>");
         *counts.entry(name.clone()).or_insert(0) += 1;
         if tag.ends_with('/') || VOID.contains(&name.as_str()) {
@@ -66,7 +72,10 @@ fn assert_self_contained(page: &str) {
 
 /// Three prompts of 20 positions over a vocabulary of 8 byte-level tokens;
 /// the candidate is close except in prompt 1, where it is far off.
-fn fixture(dir: &Path, model: &str) -> (std::path::PathBuf, std::path::PathBuf, std::path::PathBuf) {
+fn fixture(
+    dir: &Path,
+    model: &str,
+) -> (std::path::PathBuf, std::path::PathBuf, std::path::PathBuf) {
     let (g, l, v) = (3usize, 20usize, 8usize);
     let mut r = Rng(7);
     let x: Vec<f32> = (0..g * l * v).map(|_| (2.0 * r.normal()) as f32).collect();
@@ -83,10 +92,15 @@ fn fixture(dir: &Path, model: &str) -> (std::path::PathBuf, std::path::PathBuf, 
     let reference = dir.join("ref.safetensors");
     let candidate = dir.join("cand.safetensors");
     for (path, vals, name) in [(&reference, &x, "reference model"), (&candidate, &y, model)] {
-        let meta: HashMap<String, String> = [("model".to_string(), name.to_string())].into_iter().collect();
+        let meta: HashMap<String, String> = [("model".to_string(), name.to_string())]
+            .into_iter()
+            .collect();
         write(
             path,
-            vec![("logits", floats(Dtype::F32, &[g, l, v], vals)), ("targets", i64s(&[g, l], &targets))],
+            vec![
+                ("logits", floats(Dtype::F32, &[g, l, v], vals)),
+                ("targets", i64s(&[g, l], &targets)),
+            ],
             Some(meta),
         );
     }
@@ -106,10 +120,26 @@ fn page_is_self_contained_well_formed_and_has_plots() {
     let (r, c, tok) = fixture(dir.path(), "Tern <q4> & \"friends\"");
     let html = dir.path().join("r.html");
     let out = klgauge(&[
-        "compare", s(&r), s(&c), s(&r), "--tokenizer", s(&tok), "--html", s(&html), "--max-kl-mean", "0.5", "--max-kl-p99", "0.1",
-        "--min-top1", "0.9",
+        "compare",
+        s(&r),
+        s(&c),
+        s(&r),
+        "--tokenizer",
+        s(&tok),
+        "--html",
+        s(&html),
+        "--max-kl-mean",
+        "0.5",
+        "--max-kl-p99",
+        "0.1",
+        "--min-top1",
+        "0.9",
     ]);
-    assert!(out.status.code() == Some(1) || out.status.code() == Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.code() == Some(1) || out.status.code() == Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let page = std::fs::read_to_string(&html).unwrap();
     assert!(page.starts_with("<!DOCTYPE html>"));
     assert_self_contained(&page);
@@ -120,7 +150,10 @@ fn page_is_self_contained_well_formed_and_has_plots() {
     assert!(plots >= 8, "{plots} plots");
     assert!(counts["svg"] > plots, "gate strips missing");
     for class in ["bar", "cumline", "tailline", "band", "meanline", "est"] {
-        assert!(page.contains(&format!(r#"class="{class}""#)), "no {class} marks");
+        assert!(
+            page.contains(&format!(r#"class="{class}""#)),
+            "no {class} marks"
+        );
     }
     // The name with markup in it is escaped everywhere, never raw.
     assert!(!page.contains("Tern <q4>"));
@@ -142,13 +175,29 @@ fn html_follows_the_exit_code_rules() {
     let dir = tempdir::Dir::new();
     let (r, c, _) = fixture(dir.path(), "cand");
     let html = dir.path().join("r.html");
-    let out = klgauge(&["compare", s(&r), s(&c), "--html", s(&html), "--max-kl-mean", "1e-9"]);
+    let out = klgauge(&[
+        "compare",
+        s(&r),
+        s(&c),
+        "--html",
+        s(&html),
+        "--max-kl-mean",
+        "1e-9",
+    ]);
     assert_eq!(out.status.code(), Some(1));
     let page = std::fs::read_to_string(&html).unwrap();
     assert!(page.contains("fails 1 of 1 gates"));
     // A missing directory for the page: exit 2, nothing else written.
     let json = dir.path().join("r.json");
-    let out = klgauge(&["compare", s(&r), s(&c), "--json", s(&json), "--html", "/nonexistent-dir/r.html"]);
+    let out = klgauge(&[
+        "compare",
+        s(&r),
+        s(&c),
+        "--json",
+        s(&json),
+        "--html",
+        "/nonexistent-dir/r.html",
+    ]);
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("/nonexistent-dir/r.html"));
 }
@@ -158,16 +207,38 @@ fn tokenizer_puts_text_and_context_into_json_worst_positions() {
     let dir = tempdir::Dir::new();
     let (r, c, tok) = fixture(dir.path(), "cand");
     let json_path = dir.path().join("r.json");
-    let out = klgauge(&["compare", s(&r), s(&c), "--tokenizer", s(&tok), "--json", s(&json_path), "--top", "5"]);
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let out = klgauge(&[
+        "compare",
+        s(&r),
+        s(&c),
+        "--tokenizer",
+        s(&tok),
+        "--json",
+        s(&json_path),
+        "--top",
+        "5",
+    ]);
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let v = json(&json_path);
     let worst = v["candidates"][0]["worst_positions"].as_array().unwrap();
     assert_eq!(worst.len(), 5);
-    let vocab = ["<s>", " heron", " weir", "\\n", "ing", " lantern", " &", " <b>"];
+    let vocab = [
+        "<s>", " heron", " weir", "\\n", "ing", " lantern", " &", " <b>",
+    ];
     for w in worst {
         // The candidate is far off only in prompt 1.
         assert_eq!(w["prompt"], 1, "{w}");
-        for t in w["ref_top"].as_array().unwrap().iter().chain(w["cand_top"].as_array().unwrap()) {
+        for t in w["ref_top"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .chain(w["cand_top"].as_array().unwrap())
+        {
             let id = t["id"].as_u64().unwrap() as usize;
             assert_eq!(t["text"].as_str().unwrap(), vocab[id], "token {id}");
         }
@@ -177,7 +248,12 @@ fn tokenizer_puts_text_and_context_into_json_worst_positions() {
         // 8; the input token at position k is the target of position k - 1.
         let pos = w["position"].as_u64().unwrap() as usize;
         let row = w["row"].as_u64().unwrap() as usize;
-        let ctx: Vec<&str> = w["context"].as_array().unwrap().iter().map(|t| t.as_str().unwrap()).collect();
+        let ctx: Vec<&str> = w["context"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|t| t.as_str().unwrap())
+            .collect();
         assert_eq!(ctx.len(), pos.min(8), "position {pos}");
         for (j, t) in ctx.iter().enumerate() {
             let input_row = row - ctx.len() + j;
@@ -204,12 +280,28 @@ fn p99_gate_is_uncertain_when_its_limit_is_inside_the_interval() {
     assert!(lo <= p99 && p99 <= hi && lo < hi, "{lo} {p99} {hi}");
     let mid = format!("{}", 0.5 * (lo + p99));
     let far = format!("{}", 10.0 * hi);
-    klgauge(&["compare", s(&r), s(&c), "--json", s(&j), "--max-kl-p99", &mid]);
+    klgauge(&[
+        "compare",
+        s(&r),
+        s(&c),
+        "--json",
+        s(&j),
+        "--max-kl-p99",
+        &mid,
+    ]);
     let g = &json(&j)["candidates"][0]["gates"][0];
     assert_eq!(g["name"], "max-kl-p99");
     assert_eq!(g["uncertain"], true);
     assert_eq!(g["pass"], false);
-    klgauge(&["compare", s(&r), s(&c), "--json", s(&j), "--max-kl-p99", &far]);
+    klgauge(&[
+        "compare",
+        s(&r),
+        s(&c),
+        "--json",
+        s(&j),
+        "--max-kl-p99",
+        &far,
+    ]);
     let g = &json(&j)["candidates"][0]["gates"][0];
     assert_eq!(g["uncertain"], false);
     assert_eq!(g["pass"], true);
@@ -246,10 +338,24 @@ fn histogram_and_position_bins_count_every_position() {
     let cand = &v["candidates"][0];
     let n = cand["positions"].as_u64().unwrap();
     let h = &cand["kl_histogram"];
-    let in_bins: u64 = h["bins"].as_array().unwrap().iter().map(|b| b["count"].as_u64().unwrap()).sum();
-    assert_eq!(in_bins + h["below"].as_u64().unwrap() + h["above"].as_u64().unwrap(), n);
+    let in_bins: u64 = h["bins"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|b| b["count"].as_u64().unwrap())
+        .sum();
+    assert_eq!(
+        in_bins + h["below"].as_u64().unwrap() + h["above"].as_u64().unwrap(),
+        n
+    );
     let by_pos = cand["kl_by_position"].as_array().unwrap();
-    assert_eq!(by_pos.iter().map(|b| b["positions"].as_u64().unwrap()).sum::<u64>(), n);
+    assert_eq!(
+        by_pos
+            .iter()
+            .map(|b| b["positions"].as_u64().unwrap())
+            .sum::<u64>(),
+        n
+    );
     // Positions 0..15 have a bin each; 16-17 and 18-19 share one.
     assert_eq!(by_pos.len(), 16 + 2);
     assert_eq!(by_pos[16]["first"], 16);
@@ -267,10 +373,18 @@ fn histogram_and_position_bins_count_every_position() {
         sums[pos].1 += 1;
     }
     for b in by_pos {
-        let (a, z) = (b["first"].as_u64().unwrap() as usize, b["last"].as_u64().unwrap() as usize);
-        let (s, k) = sums[a..=z].iter().fold((0.0, 0), |acc, x| (acc.0 + x.0, acc.1 + x.1));
+        let (a, z) = (
+            b["first"].as_u64().unwrap() as usize,
+            b["last"].as_u64().unwrap() as usize,
+        );
+        let (s, k) = sums[a..=z]
+            .iter()
+            .fold((0.0, 0), |acc, x| (acc.0 + x.0, acc.1 + x.1));
         let mean = b["kl_mean"].as_f64().unwrap();
-        assert!((mean - s / k as f64).abs() <= 1e-12 * mean.abs().max(1e-300) + 1e-15, "bin {a}-{z}");
+        assert!(
+            (mean - s / k as f64).abs() <= 1e-12 * mean.abs().max(1e-300) + 1e-15,
+            "bin {a}-{z}"
+        );
     }
 }
 
@@ -285,8 +399,24 @@ fn degenerate_inputs_still_make_a_well_formed_page() {
     let f = dir.path().join("same.safetensors");
     write(&f, vec![("logits", floats(Dtype::F32, &[12, 6], &x))], None);
     let html = dir.path().join("r.html");
-    let out = klgauge(&["compare", s(&f), s(&f), "--samples", "0", "--html", s(&html), "--max-kl-p99", "0.01", "--bits"]);
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let out = klgauge(&[
+        "compare",
+        s(&f),
+        s(&f),
+        "--samples",
+        "0",
+        "--html",
+        s(&html),
+        "--max-kl-p99",
+        "0.01",
+        "--bits",
+    ]);
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let page = std::fs::read_to_string(&html).unwrap();
     assert_self_contained(&page);
     check_nesting(&page);
@@ -307,8 +437,21 @@ fn merged_shards_carry_the_plot_data_and_the_p99_interval() {
     let mut parts = Vec::new();
     for i in 0..3 {
         let p = dir.path().join(format!("part{i}.json"));
-        let out = klgauge(&["compare", s(&r), s(&c), "--shard", &format!("{i}/3"), "--partial", s(&p)]);
-        assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+        let out = klgauge(&[
+            "compare",
+            s(&r),
+            s(&c),
+            "--shard",
+            &format!("{i}/3"),
+            "--partial",
+            s(&p),
+        ]);
+        assert_eq!(
+            out.status.code(),
+            Some(0),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
         parts.push(p);
     }
     let merged = dir.path().join("merged.json");
@@ -317,17 +460,35 @@ fn merged_shards_carry_the_plot_data_and_the_p99_interval() {
     args.extend(parts.iter().map(|p| s(p)));
     args.extend(["--json", s(&merged), "--html", s(&html)]);
     let out = klgauge(&args);
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let (a, b) = (json(&single), json(&merged));
     let (a, b) = (&a["candidates"][0], &b["candidates"][0]);
     assert_eq!(a["kl_histogram"], b["kl_histogram"]);
-    let (pa, pb) = (a["kl_by_position"].as_array().unwrap(), b["kl_by_position"].as_array().unwrap());
+    let (pa, pb) = (
+        a["kl_by_position"].as_array().unwrap(),
+        b["kl_by_position"].as_array().unwrap(),
+    );
     assert_eq!(pa.len(), pb.len());
     for (x, y) in pa.iter().zip(pb) {
-        for k in ["first", "last", "positions", "kl_p50", "kl_p90", "top1_agree"] {
+        for k in [
+            "first",
+            "last",
+            "positions",
+            "kl_p50",
+            "kl_p90",
+            "top1_agree",
+        ] {
             assert_eq!(x[k], y[k], "{k}");
         }
-        let (mx, my) = (x["kl_mean"].as_f64().unwrap(), y["kl_mean"].as_f64().unwrap());
+        let (mx, my) = (
+            x["kl_mean"].as_f64().unwrap(),
+            y["kl_mean"].as_f64().unwrap(),
+        );
         assert!((mx - my).abs() <= 1e-12 * mx.abs(), "{mx} vs {my}");
     }
     assert!(b["kl_p99_ci95"].is_array(), "{}", b["kl_p99_ci95"]);
@@ -335,6 +496,9 @@ fn merged_shards_carry_the_plot_data_and_the_p99_interval() {
     assert_self_contained(&page);
     check_nesting(&page);
     for class in ["bar", "cumline", "tailline", "band", "meanline"] {
-        assert!(page.contains(&format!(r#"class="{class}""#)), "no {class} marks after merge");
+        assert!(
+            page.contains(&format!(r#"class="{class}""#)),
+            "no {class} marks after merge"
+        );
     }
 }

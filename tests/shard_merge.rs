@@ -63,19 +63,44 @@ impl Drop for Scratch {
 }
 
 #[allow(clippy::too_many_arguments)]
-fn write_logits(path: &Path, dtype: Dtype, logits: &[f32], rows: usize, vocab: usize, targets: &[i64], mask: &[u8], offsets: &[i64], model: &str) {
+fn write_logits(
+    path: &Path,
+    dtype: Dtype,
+    logits: &[f32],
+    rows: usize,
+    vocab: usize,
+    targets: &[i64],
+    mask: &[u8],
+    offsets: &[i64],
+    model: &str,
+) {
     let bytes: Vec<u8> = match dtype {
         Dtype::F32 => logits.iter().flat_map(|v| v.to_le_bytes()).collect(),
-        Dtype::BF16 => logits.iter().flat_map(|&v| half::bf16::from_f32(v).to_le_bytes()).collect(),
+        Dtype::BF16 => logits
+            .iter()
+            .flat_map(|&v| half::bf16::from_f32(v).to_le_bytes())
+            .collect(),
         _ => unreachable!(),
     };
     let t: Vec<u8> = targets.iter().flat_map(|v| v.to_le_bytes()).collect();
     let o: Vec<u8> = offsets.iter().flat_map(|v| v.to_le_bytes()).collect();
     let tensors = vec![
-        ("logits", TensorView::new(dtype, vec![rows, vocab], &bytes).unwrap()),
-        ("mask", TensorView::new(Dtype::U8, vec![rows], mask).unwrap()),
-        ("prompt_offsets", TensorView::new(Dtype::I64, vec![offsets.len()], &o).unwrap()),
-        ("targets", TensorView::new(Dtype::I64, vec![rows], &t).unwrap()),
+        (
+            "logits",
+            TensorView::new(dtype, vec![rows, vocab], &bytes).unwrap(),
+        ),
+        (
+            "mask",
+            TensorView::new(Dtype::U8, vec![rows], mask).unwrap(),
+        ),
+        (
+            "prompt_offsets",
+            TensorView::new(Dtype::I64, vec![offsets.len()], &o).unwrap(),
+        ),
+        (
+            "targets",
+            TensorView::new(Dtype::I64, vec![rows], &t).unwrap(),
+        ),
     ];
     let meta = HashMap::from([("model".to_string(), model.to_string())]);
     safetensors::serialize_to_file(tensors, Some(meta), path).unwrap();
@@ -89,15 +114,27 @@ fn make_inputs(dir: &Scratch, seed: u64, with_faults: bool) -> (PathBuf, PathBuf
     make_inputs_sized(dir, seed, with_faults, 45, 200)
 }
 
-fn make_inputs_sized(dir: &Scratch, seed: u64, with_faults: bool, prompts: usize, vocab: usize) -> (PathBuf, PathBuf, PathBuf) {
+fn make_inputs_sized(
+    dir: &Scratch,
+    seed: u64,
+    with_faults: bool,
+    prompts: usize,
+    vocab: usize,
+) -> (PathBuf, PathBuf, PathBuf) {
     let mut rng = Rng(seed);
-    let lens: Vec<usize> = (0..prompts).map(|_| 10 + (rng.next() % 40) as usize).collect();
+    let lens: Vec<usize> = (0..prompts)
+        .map(|_| 10 + (rng.next() % 40) as usize)
+        .collect();
     let mut offsets = vec![0i64];
     for l in &lens {
         offsets.push(offsets.last().unwrap() + *l as i64);
     }
     let rows = *offsets.last().unwrap() as usize;
-    let (mut r, mut a, mut b) = (vec![0f32; rows * vocab], vec![0f32; rows * vocab], vec![0f32; rows * vocab]);
+    let (mut r, mut a, mut b) = (
+        vec![0f32; rows * vocab],
+        vec![0f32; rows * vocab],
+        vec![0f32; rows * vocab],
+    );
     let mut targets = vec![0i64; rows];
     let mut mask = vec![1u8; rows];
     for (p, w) in offsets.windows(2).enumerate() {
@@ -111,7 +148,13 @@ fn make_inputs_sized(dir: &Scratch, seed: u64, with_faults: bool, prompts: usize
                 a[row * vocab + c] = (base + 0.02 * rng.normal()) as f32;
                 b[row * vocab + c] = (base + 0.15 * hard * rng.normal() + 8.0) as f32;
             }
-            targets[row] = if row + 1 == w[1] as usize { -1 } else if rng.uniform() < 0.6 { peak as i64 } else { (rng.next() % vocab as u64) as i64 };
+            targets[row] = if row + 1 == w[1] as usize {
+                -1
+            } else if rng.uniform() < 0.6 {
+                peak as i64
+            } else {
+                (rng.next() % vocab as u64) as i64
+            };
         }
         if p % 7 == 3 {
             mask[w[0] as usize] = 0;
@@ -121,10 +164,44 @@ fn make_inputs_sized(dir: &Scratch, seed: u64, with_faults: bool, prompts: usize
         b[101 * vocab + 7] = f32::NAN;
         b[702 * vocab + 3] = f32::NEG_INFINITY;
     }
-    let paths = (dir.path("ref.safetensors"), dir.path("cand-a.safetensors"), dir.path("cand-b.safetensors"));
-    write_logits(&paths.0, Dtype::F32, &r, rows, vocab, &targets, &mask, &offsets, "Wren-7");
-    write_logits(&paths.1, Dtype::F32, &a, rows, vocab, &targets, &mask, &offsets, "Wren-7 light (invented)");
-    write_logits(&paths.2, Dtype::BF16, &b, rows, vocab, &targets, &mask, &offsets, "Wren-7 int3 (invented)");
+    let paths = (
+        dir.path("ref.safetensors"),
+        dir.path("cand-a.safetensors"),
+        dir.path("cand-b.safetensors"),
+    );
+    write_logits(
+        &paths.0,
+        Dtype::F32,
+        &r,
+        rows,
+        vocab,
+        &targets,
+        &mask,
+        &offsets,
+        "Wren-7",
+    );
+    write_logits(
+        &paths.1,
+        Dtype::F32,
+        &a,
+        rows,
+        vocab,
+        &targets,
+        &mask,
+        &offsets,
+        "Wren-7 light (invented)",
+    );
+    write_logits(
+        &paths.2,
+        Dtype::BF16,
+        &b,
+        rows,
+        vocab,
+        &targets,
+        &mask,
+        &offsets,
+        "Wren-7 int3 (invented)",
+    );
     paths
 }
 
@@ -157,7 +234,10 @@ fn close(what: &str, a: &Value, b: &Value, tol: f64) -> f64 {
     match (a.as_f64(), b.as_f64()) {
         (Some(x), Some(y)) => {
             let r = rel(x, y);
-            assert!(r <= tol, "{what}: merged {x:e}, single {y:e}, relative difference {r:e} > {tol:e}");
+            assert!(
+                r <= tol,
+                "{what}: merged {x:e}, single {y:e}, relative difference {r:e} > {tol:e}"
+            );
             r
         }
         _ => {
@@ -180,23 +260,59 @@ fn compare_reports(merged: &Value, single: &Value) -> f64 {
         assert_eq!(merged["settings"][k], single["settings"][k], "settings.{k}");
     }
     assert_eq!(single["settings"]["percentiles"], "exact");
-    assert!(merged["settings"]["percentiles"].as_str().unwrap().starts_with("sketch"));
-    let (mc, sc) = (merged["candidates"].as_array().unwrap(), single["candidates"].as_array().unwrap());
+    assert!(merged["settings"]["percentiles"]
+        .as_str()
+        .unwrap()
+        .starts_with("sketch"));
+    let (mc, sc) = (
+        merged["candidates"].as_array().unwrap(),
+        single["candidates"].as_array().unwrap(),
+    );
     assert_eq!(mc.len(), sc.len());
     let mut worst_pct = 0f64;
     for (m, s) in mc.iter().zip(sc) {
         let path = s["path"].as_str().unwrap();
-        for k in ["path", "dtype", "model", "positions", "skipped_rows", "skipped", "infinite_kl", "warnings", "worst_positions", "worst_prompts", "sampling_cost"] {
+        for k in [
+            "path",
+            "dtype",
+            "model",
+            "positions",
+            "skipped_rows",
+            "skipped",
+            "infinite_kl",
+            "warnings",
+            "worst_positions",
+            "worst_prompts",
+            "sampling_cost",
+        ] {
             if k == "sampling_cost" {
-                assert_eq!(m[k]["full_logit_bytes_per_position"], s[k]["full_logit_bytes_per_position"]);
+                assert_eq!(
+                    m[k]["full_logit_bytes_per_position"],
+                    s[k]["full_logit_bytes_per_position"]
+                );
                 continue;
             }
             assert_eq!(m[k], s[k], "{path}: {k}");
         }
-        for k in ["top1_agree", "ppl_ref", "ppl_cand", "ppl_ratio", "storage_floor"] {
+        for k in [
+            "top1_agree",
+            "ppl_ref",
+            "ppl_cand",
+            "ppl_ratio",
+            "storage_floor",
+        ] {
             close(&format!("{path}: {k}"), &m[k], &s[k], MEAN_TOL);
         }
-        for metric in ["kl", "kl_reverse", "tv", "entropy_ref", "entropy_cand", "nll_ref", "nll_cand", "js"] {
+        for metric in [
+            "kl",
+            "kl_reverse",
+            "tv",
+            "entropy_ref",
+            "entropy_cand",
+            "nll_ref",
+            "nll_cand",
+            "js",
+        ] {
             let (ma, sa) = (&m[metric], &s[metric]);
             if sa.is_null() {
                 assert!(ma.is_null(), "{path}: {metric}");
@@ -204,7 +320,12 @@ fn compare_reports(merged: &Value, single: &Value) -> f64 {
             }
             assert_eq!(ma["n"], sa["n"], "{path}: {metric}.n");
             assert_eq!(ma["max"], sa["max"], "{path}: {metric}.max");
-            close(&format!("{path}: {metric}.mean"), &ma["mean"], &sa["mean"], MEAN_TOL);
+            close(
+                &format!("{path}: {metric}.mean"),
+                &ma["mean"],
+                &sa["mean"],
+                MEAN_TOL,
+            );
             match (ma["ci95"].as_array(), sa["ci95"].as_array()) {
                 (Some(x), Some(y)) => {
                     close(&format!("{path}: {metric}.ci95"), &x[0], &y[0], MEAN_TOL);
@@ -217,13 +338,21 @@ fn compare_reports(merged: &Value, single: &Value) -> f64 {
                 worst_pct = worst_pct.max(r);
             }
         }
-        let (me, se) = (m["estimators"].as_array().unwrap(), s["estimators"].as_array().unwrap());
+        let (me, se) = (
+            m["estimators"].as_array().unwrap(),
+            s["estimators"].as_array().unwrap(),
+        );
         assert_eq!(me.len(), se.len());
         for (x, y) in me.iter().zip(se) {
             assert_eq!(x["direction"], y["direction"]);
             assert_eq!(x["samples_per_position"], y["samples_per_position"]);
             assert_eq!(x["positions"], y["positions"]);
-            close("estimator exact_mean", &x["exact_mean"], &y["exact_mean"], MEAN_TOL);
+            close(
+                "estimator exact_mean",
+                &x["exact_mean"],
+                &y["exact_mean"],
+                MEAN_TOL,
+            );
             for k in ["k1", "k2", "k3"] {
                 close(&format!("{k}.mean"), &x[k]["mean"], &y[k]["mean"], MEAN_TOL);
                 // Sums of squares merged in another order: the variance formula
@@ -231,26 +360,46 @@ fn compare_reports(merged: &Value, single: &Value) -> f64 {
                 for f in ["bias", "std", "rmse"] {
                     close(&format!("{k}.{f}"), &x[k][f], &y[k][f], 1e-9);
                 }
-                close(&format!("{k}.positions_for_10pct"), &x[k]["positions_for_10pct"], &y[k]["positions_for_10pct"], 1e-3);
+                close(
+                    &format!("{k}.positions_for_10pct"),
+                    &x[k]["positions_for_10pct"],
+                    &y[k]["positions_for_10pct"],
+                    1e-3,
+                );
             }
         }
-        let (mg, sg) = (m["gates"].as_array().unwrap(), s["gates"].as_array().unwrap());
+        let (mg, sg) = (
+            m["gates"].as_array().unwrap(),
+            s["gates"].as_array().unwrap(),
+        );
         assert_eq!(mg.len(), sg.len());
         for (x, y) in mg.iter().zip(sg) {
             for k in ["name", "limit", "pass", "uncertain"] {
                 assert_eq!(x[k], y[k], "{path}: gate {}", y["name"]);
             }
-            let tol = if y["name"] == "max-kl-p99" { SKETCH_TOL } else { MEAN_TOL };
+            let tol = if y["name"] == "max-kl-p99" {
+                SKETCH_TOL
+            } else {
+                MEAN_TOL
+            };
             close("gate value", &x["value"], &y["value"], tol);
         }
     }
-    let (mp, sp) = (merged["comparisons"].as_array().unwrap(), single["comparisons"].as_array().unwrap());
+    let (mp, sp) = (
+        merged["comparisons"].as_array().unwrap(),
+        single["comparisons"].as_array().unwrap(),
+    );
     assert_eq!(mp.len(), sp.len());
     for (x, y) in mp.iter().zip(sp) {
         for k in ["a", "b", "positions", "verdict"] {
             assert_eq!(x[k], y[k]);
         }
-        close("paired kl_mean_diff", &x["kl_mean_diff"], &y["kl_mean_diff"], MEAN_TOL);
+        close(
+            "paired kl_mean_diff",
+            &x["kl_mean_diff"],
+            &y["kl_mean_diff"],
+            MEAN_TOL,
+        );
     }
     worst_pct
 }
@@ -260,14 +409,25 @@ fn same_layout(merged: &str, single: &str) {
     let (m, s): (Vec<&str>, Vec<&str>) = (merged.lines().collect(), single.lines().collect());
     assert_eq!(m.len(), s.len(), "merged:\n{merged}\nsingle:\n{single}");
     for (x, y) in m.iter().zip(&s) {
-        let label = |l: &str| l.chars().take_while(|c| !c.is_ascii_digit()).collect::<String>();
+        let label = |l: &str| {
+            l.chars()
+                .take_while(|c| !c.is_ascii_digit())
+                .collect::<String>()
+        };
         assert_eq!(label(x), label(y), "merged line `{x}` vs single `{y}`");
     }
 }
 
 /// Runs the single pass and the three-shard pass with the same options and
 /// compares them; returns the worst percentile difference.
-fn single_vs_sharded(dir: &Scratch, inputs: &[&Path], opts: &[&str], merge_opts: &[&str], gates: &[&str], expect_code: i32) -> f64 {
+fn single_vs_sharded(
+    dir: &Scratch,
+    inputs: &[&Path],
+    opts: &[&str],
+    merge_opts: &[&str],
+    gates: &[&str],
+    expect_code: i32,
+) -> f64 {
     let single_json = dir.path("single.json");
     let mut args: Vec<&str> = vec!["compare"];
     args.extend(inputs.iter().map(|p| s(p)));
@@ -275,7 +435,12 @@ fn single_vs_sharded(dir: &Scratch, inputs: &[&Path], opts: &[&str], merge_opts:
     args.extend(gates);
     args.extend(["--json", s(&single_json)]);
     let single = run(&args);
-    assert_eq!(code(&single), expect_code, "single run: {}", String::from_utf8_lossy(&single.stderr));
+    assert_eq!(
+        code(&single),
+        expect_code,
+        "single run: {}",
+        String::from_utf8_lossy(&single.stderr)
+    );
 
     let n = 3;
     let mut partials = Vec::new();
@@ -287,7 +452,12 @@ fn single_vs_sharded(dir: &Scratch, inputs: &[&Path], opts: &[&str], merge_opts:
         args.extend(opts);
         args.extend(["--shard", &shard, "--partial", s(&part)]);
         let o = run(&args);
-        assert_eq!(code(&o), 0, "shard {shard}: {}", String::from_utf8_lossy(&o.stderr));
+        assert_eq!(
+            code(&o),
+            0,
+            "shard {shard}: {}",
+            String::from_utf8_lossy(&o.stderr)
+        );
         assert!(String::from_utf8_lossy(&o.stdout).contains(&format!("shard {shard}")));
         partials.push(part);
     }
@@ -298,8 +468,16 @@ fn single_vs_sharded(dir: &Scratch, inputs: &[&Path], opts: &[&str], merge_opts:
     args.extend(merge_opts);
     args.extend(["--json", s(&merged_json)]);
     let merged = run(&args);
-    assert_eq!(code(&merged), expect_code, "merge: {}", String::from_utf8_lossy(&merged.stderr));
-    same_layout(&String::from_utf8_lossy(&merged.stdout), &String::from_utf8_lossy(&single.stdout));
+    assert_eq!(
+        code(&merged),
+        expect_code,
+        "merge: {}",
+        String::from_utf8_lossy(&merged.stderr)
+    );
+    same_layout(
+        &String::from_utf8_lossy(&merged.stdout),
+        &String::from_utf8_lossy(&single.stdout),
+    );
     compare_reports(&read_json(&merged_json), &read_json(&single_json))
 }
 
@@ -308,24 +486,50 @@ fn three_shards_merge_to_the_single_run() {
     let dir = Scratch::new("equal");
     let (r, a, b) = make_inputs(&dir, 7, true);
     // Candidate b has an infinite kl, so the mean gate fails: exit 1 in both.
-    let gates = ["--max-kl-mean", "0.5", "--max-kl-p99", "2.0", "--min-top1", "0.5"];
+    let gates = [
+        "--max-kl-mean",
+        "0.5",
+        "--max-kl-p99",
+        "2.0",
+        "--min-top1",
+        "0.5",
+    ];
     let tok = write_tokenizer(&dir, 200);
     let opts = ["--js", "--samples", "1,4", "--tokenizer", s(&tok)];
-    let w = single_vs_sharded(&dir, &[&r, &a, &b], &opts, &["--tokenizer", s(&tok)], &gates, 1);
+    let w = single_vs_sharded(
+        &dir,
+        &[&r, &a, &b],
+        &opts,
+        &["--tokenizer", s(&tok)],
+        &gates,
+        1,
+    );
     eprintln!("worst relative percentile difference, merged vs single (with faults): {w:.3e}");
     let single = read_json(&dir.path("single.json"));
     assert_eq!(single["candidates"][1]["infinite_kl"], 1);
     assert_eq!(single["candidates"][1]["skipped_rows"], 1);
     // Token text comes from the tokenizer at merge time and matches the single run's.
     let w0 = &read_json(&dir.path("merged.json"))["candidates"][0]["worst_positions"][0];
-    assert!(w0["ref_top"][0]["text"].as_str().unwrap().starts_with("tok"), "{w0}");
+    assert!(
+        w0["ref_top"][0]["text"]
+            .as_str()
+            .unwrap()
+            .starts_with("tok"),
+        "{w0}"
+    );
 }
 
 /// An invented tokenizer.json with tokens "tok0" .. "tokN-1".
 fn write_tokenizer(dir: &Scratch, n: usize) -> PathBuf {
-    let vocab: serde_json::Map<String, Value> = (0..n).map(|i| (format!("tok{i}"), Value::from(i))).collect();
+    let vocab: serde_json::Map<String, Value> = (0..n)
+        .map(|i| (format!("tok{i}"), Value::from(i)))
+        .collect();
     let p = dir.path("tokenizer.json");
-    std::fs::write(&p, serde_json::to_vec(&serde_json::json!({ "model": { "vocab": vocab } })).unwrap()).unwrap();
+    std::fs::write(
+        &p,
+        serde_json::to_vec(&serde_json::json!({ "model": { "vocab": vocab } })).unwrap(),
+    )
+    .unwrap();
     p
 }
 
@@ -333,21 +537,59 @@ fn write_tokenizer(dir: &Scratch, n: usize) -> PathBuf {
 fn passing_gates_pass_after_merging_too() {
     let dir = Scratch::new("pass");
     let (r, a, _) = make_inputs(&dir, 11, false);
-    let gates = ["--max-kl-mean", "0.01", "--max-kl-p99", "0.05", "--min-top1", "0.5"];
-    let w = single_vs_sharded(&dir, &[&r, &a], &["--top", "7", "--bits"], &["--bits"], &gates, 0);
-    eprintln!("worst relative percentile difference, merged vs single (light candidate, bits): {w:.3e}");
+    let gates = [
+        "--max-kl-mean",
+        "0.01",
+        "--max-kl-p99",
+        "0.05",
+        "--min-top1",
+        "0.5",
+    ];
+    let w = single_vs_sharded(
+        &dir,
+        &[&r, &a],
+        &["--top", "7", "--bits"],
+        &["--bits"],
+        &gates,
+        0,
+    );
+    eprintln!(
+        "worst relative percentile difference, merged vs single (light candidate, bits): {w:.3e}"
+    );
     let merged = read_json(&dir.path("merged.json"));
     assert_eq!(merged["units"], "bits");
-    assert_eq!(merged["candidates"][0]["worst_positions"].as_array().unwrap().len(), 7);
+    assert_eq!(
+        merged["candidates"][0]["worst_positions"]
+            .as_array()
+            .unwrap()
+            .len(),
+        7
+    );
 
     // A p99 limit within the sketch's accuracy of the merged value is flagged.
     let p99 = merged["candidates"][0]["kl"]["p99"].as_f64().unwrap();
     let limit = format!("{}", p99 * 1.001);
     let near = dir.path("near.json");
-    let parts: Vec<PathBuf> = (0..3).map(|i| dir.path(&format!("part-{i}.json"))).collect();
-    let o = run(&["merge", s(&parts[0]), s(&parts[1]), s(&parts[2]), "--bits", "--max-kl-p99", &limit, "--json", s(&near)]);
+    let parts: Vec<PathBuf> = (0..3)
+        .map(|i| dir.path(&format!("part-{i}.json")))
+        .collect();
+    let o = run(&[
+        "merge",
+        s(&parts[0]),
+        s(&parts[1]),
+        s(&parts[2]),
+        "--bits",
+        "--max-kl-p99",
+        &limit,
+        "--json",
+        s(&near),
+    ]);
     assert_eq!(code(&o), 0);
-    let warned = read_json(&near)["candidates"][0]["warnings"].as_array().unwrap().iter().any(|w| w.as_str().unwrap().contains("within the sketch's accuracy"));
+    let warned = read_json(&near)["candidates"][0]["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|w| w.as_str().unwrap().contains("within the sketch's accuracy"));
     assert!(warned, "{}", String::from_utf8_lossy(&o.stdout));
 }
 
@@ -387,27 +629,51 @@ fn merge_refuses_duplicate_missing_and_foreign_shards() {
     let out = dir.path("never.json");
     let (p0, p1, p2) = (s(&p[0]), s(&p[1]), s(&p[2]));
 
-    refused(&["merge", p0, p1, p1, p2, "--json", s(&out)], &[p1], "already holds");
-    refused(&["merge", p0, p2, "--json", s(&out)], &["1/3", p0, p2], "missing");
+    refused(
+        &["merge", p0, p1, p1, p2, "--json", s(&out)],
+        &[p1],
+        "already holds",
+    );
+    refused(
+        &["merge", p0, p2, "--json", s(&out)],
+        &["1/3", p0, p2],
+        "missing",
+    );
 
     // The same run layout over other logits (another seed): a different input.
     let other = Scratch::new("refuse-other");
     let (r2, a2, _) = make_inputs(&other, 4, false);
     let q = shard_partials(&other, &[&r2, &a2], "other", &[]);
-    refused(&["merge", p0, s(&q[1]), p2, "--json", s(&out)], &[s(&q[1])], "different run");
+    refused(
+        &["merge", p0, s(&q[1]), p2, "--json", s(&out)],
+        &[s(&q[1])],
+        "different run",
+    );
 
     // Same inputs, other settings: refused as well.
     let seeded = shard_partials(&dir, &[&r, &a], "seeded", &["--seed", "9"]);
-    refused(&["merge", p0, s(&seeded[1]), p2], &[s(&seeded[1])], "settings");
+    refused(
+        &["merge", p0, s(&seeded[1]), p2],
+        &[s(&seeded[1])],
+        "settings",
+    );
 
     // Not a partial result at all, and a JSON report given by mistake.
     let junk = dir.path("junk.json");
     std::fs::write(&junk, b"{\"schema\": \"klgauge-report/1\"}").unwrap();
-    refused(&["merge", p0, s(&junk), p2], &[s(&junk)], "not a klgauge partial result");
+    refused(
+        &["merge", p0, s(&junk), p2],
+        &[s(&junk)],
+        "not a klgauge partial result",
+    );
     let cut = dir.path("cut.json");
     let text = std::fs::read(&p[1]).unwrap();
     std::fs::write(&cut, &text[..text.len() / 2]).unwrap();
-    refused(&["merge", p0, s(&cut), p2], &[s(&cut)], "not a klgauge partial result");
+    refused(
+        &["merge", p0, s(&cut), p2],
+        &[s(&cut)],
+        "not a klgauge partial result",
+    );
 
     // No report was left behind by any refusal.
     assert!(!out.exists());
@@ -418,7 +684,11 @@ fn merge_refuses_duplicate_missing_and_foreign_shards() {
     let o = run(&["merge", p0, p1, p2, "--html", s(&html), "--json", s(&json)]);
     match code(&o) {
         0 => assert!(html.exists() && json.exists()),
-        2 => assert!(!html.exists() && !json.exists(), "{}", String::from_utf8_lossy(&o.stderr)),
+        2 => assert!(
+            !html.exists() && !json.exists(),
+            "{}",
+            String::from_utf8_lossy(&o.stderr)
+        ),
         c => panic!("exit {c}: {}", String::from_utf8_lossy(&o.stderr)),
     }
 
@@ -433,17 +703,63 @@ fn shard_options_are_checked() {
     let (r, a, _) = make_inputs(&dir, 5, false);
     let part = dir.path("p.json");
     let (r, a, part) = (s(&r), s(&a), s(&part));
-    refused(&["compare", r, a, "--shard", "0/2"], &["--partial"], "--shard needs --partial");
-    refused(&["compare", r, a, "--shard", "2/2", "--partial", part], &["2/2"], "expected I/N");
-    refused(&["compare", r, a, "--shard", "0/2", "--partial", part, "--max-kl-mean", "1"], &["merge"], "gates");
-    refused(&["compare", r, a, "--shard", "0/2", "--partial", part, "--json", "x.json"], &["merge"], "partial result");
+    refused(
+        &["compare", r, a, "--shard", "0/2"],
+        &["--partial"],
+        "--shard needs --partial",
+    );
+    refused(
+        &["compare", r, a, "--shard", "2/2", "--partial", part],
+        &["2/2"],
+        "expected I/N",
+    );
+    refused(
+        &[
+            "compare",
+            r,
+            a,
+            "--shard",
+            "0/2",
+            "--partial",
+            part,
+            "--max-kl-mean",
+            "1",
+        ],
+        &["merge"],
+        "gates",
+    );
+    refused(
+        &[
+            "compare",
+            r,
+            a,
+            "--shard",
+            "0/2",
+            "--partial",
+            part,
+            "--json",
+            "x.json",
+        ],
+        &["merge"],
+        "partial result",
+    );
     assert!(!Path::new(part).exists());
     // More shards than prompts: the empty shards are valid and merge cleanly.
     let many: Vec<PathBuf> = (0..50)
         .map(|i| {
             let p = dir.path(&format!("m{i}.json"));
             let shard = format!("{i}/50");
-            let o = run(&["compare", r, a, "--samples", "0", "--shard", &shard, "--partial", s(&p)]);
+            let o = run(&[
+                "compare",
+                r,
+                a,
+                "--samples",
+                "0",
+                "--shard",
+                &shard,
+                "--partial",
+                s(&p),
+            ]);
             assert_eq!(code(&o), 0, "{}", String::from_utf8_lossy(&o.stderr));
             p
         })
@@ -471,17 +787,48 @@ fn shard_options_are_checked() {
 fn measure_percentile_accuracy_on_a_larger_run() {
     let dir = Scratch::new("measure");
     let (r, a, b) = make_inputs_sized(&dir, 21, false, 1200, 256);
-    let w = single_vs_sharded(&dir, &[&r, &a, &b], &["--samples", "0", "--js"], &[], &[], 0);
-    let (m, s) = (read_json(&dir.path("merged.json")), read_json(&dir.path("single.json")));
+    let w = single_vs_sharded(
+        &dir,
+        &[&r, &a, &b],
+        &["--samples", "0", "--js"],
+        &[],
+        &[],
+        0,
+    );
+    let (m, s) = (
+        read_json(&dir.path("merged.json")),
+        read_json(&dir.path("single.json")),
+    );
     let (mut sum, mut n) = (0f64, 0usize);
-    for (x, y) in m["candidates"].as_array().unwrap().iter().zip(s["candidates"].as_array().unwrap()) {
-        for metric in ["kl", "kl_reverse", "tv", "js", "entropy_ref", "entropy_cand", "nll_ref", "nll_cand"] {
+    for (x, y) in m["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .zip(s["candidates"].as_array().unwrap())
+    {
+        for metric in [
+            "kl",
+            "kl_reverse",
+            "tv",
+            "js",
+            "entropy_ref",
+            "entropy_cand",
+            "nll_ref",
+            "nll_cand",
+        ] {
             for p in ["p50", "p90", "p99", "p999"] {
-                let (u, v) = (x[metric][p].as_f64().unwrap(), y[metric][p].as_f64().unwrap());
+                let (u, v) = (
+                    x[metric][p].as_f64().unwrap(),
+                    y[metric][p].as_f64().unwrap(),
+                );
                 sum += rel(u, v);
                 n += 1;
             }
         }
     }
-    eprintln!("positions {}, percentiles compared {n}: mean relative difference {:.3e}, worst {w:.3e}", s["candidates"][0]["positions"], sum / n as f64);
+    eprintln!(
+        "positions {}, percentiles compared {n}: mean relative difference {:.3e}, worst {w:.3e}",
+        s["candidates"][0]["positions"],
+        sum / n as f64
+    );
 }

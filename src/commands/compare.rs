@@ -75,14 +75,22 @@ pub fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Sen
 
 pub fn compare(args: &CompareArgs) -> Result<Outcome> {
     if args.candidates.is_empty() {
-        return Err(Error::usage("compare needs a reference and at least one candidate"));
+        return Err(Error::usage(
+            "compare needs a reference and at least one candidate",
+        ));
     }
     if args.shard.is_some() || args.partial.is_some() {
-        return Err(Error::usage("--shard and --partial write a partial result: use `compare_shard`"));
+        return Err(Error::usage(
+            "--shard and --partial write a partial result: use `compare_shard`",
+        ));
     }
     // Open and validate everything before any computation or output.
     let reference = LogitFile::open(&args.reference)?;
-    let candidates = args.candidates.iter().map(|p| LogitFile::open(p)).collect::<Result<Vec<_>>>()?;
+    let candidates = args
+        .candidates
+        .iter()
+        .map(|p| LogitFile::open(p))
+        .collect::<Result<Vec<_>>>()?;
     let cols = engine::compared_columns(&reference, &candidates, args.vocab)?;
     let targets = engine::check_alignment(&reference, &candidates, cols)?;
     let vocabulary = match &args.tokenizer {
@@ -121,12 +129,23 @@ pub fn compare(args: &CompareArgs) -> Result<Outcome> {
     };
     let report = report::build(&inputs, result);
     write_reports(&report, args.json.as_ref(), args.html.as_ref())?;
-    let gate_failed = report.candidates.iter().any(|c| c.gates.iter().any(|g| !g.pass));
-    Ok(Outcome { report, gate_failed })
+    let gate_failed = report
+        .candidates
+        .iter()
+        .any(|c| c.gates.iter().any(|g| !g.pass));
+    Ok(Outcome {
+        report,
+        gate_failed,
+    })
 }
 
 /// Runs the engine on the requested thread pool, streaming `--csv` if asked.
-fn run_engine(args: &CompareArgs, reference: &LogitFile, candidates: &[LogitFile], opts: &EngineOptions) -> Result<engine::EngineResult> {
+fn run_engine(
+    args: &CompareArgs,
+    reference: &LogitFile,
+    candidates: &[LogitFile],
+    opts: &EngineOptions,
+) -> Result<engine::EngineResult> {
     with_threads(args.threads, || -> Result<engine::EngineResult> {
         match &args.csv {
             Some(p) => {
@@ -141,7 +160,11 @@ fn run_engine(args: &CompareArgs, reference: &LogitFile, candidates: &[LogitFile
 }
 
 /// Writes the file reports that were asked for, each atomically.
-pub fn write_reports(report: &Report, json: Option<&PathBuf>, html: Option<&PathBuf>) -> Result<()> {
+pub fn write_reports(
+    report: &Report,
+    json: Option<&PathBuf>,
+    html: Option<&PathBuf>,
+) -> Result<()> {
     if let Some(p) = json {
         write_atomic(p, |w| report::json::Json.write(report, w))?;
     }
@@ -168,10 +191,20 @@ impl ShardOutcome {
     pub fn summary(&self) -> String {
         let mut s = format!(
             "shard {}/{}: prompts {}..{} of {}, rows {}..{} of {}\n",
-            self.index, self.count, self.prompts.start, self.prompts.end, self.total_prompts, self.rows.start, self.rows.end, self.total_rows
+            self.index,
+            self.count,
+            self.prompts.start,
+            self.prompts.end,
+            self.total_prompts,
+            self.rows.start,
+            self.rows.end,
+            self.total_rows
         );
         for (k, (n, skipped)) in self.counted.iter().enumerate() {
-            s.push_str(&format!("  candidate {}: {n} positions counted, {skipped} rows skipped\n", k + 1));
+            s.push_str(&format!(
+                "  candidate {}: {n} positions counted, {skipped} rows skipped\n",
+                k + 1
+            ));
         }
         s.push_str(&format!(
             "partial result written to {}; combine all {} with `klgauge merge`\n",
@@ -186,15 +219,18 @@ impl ShardOutcome {
 /// partial result for `merge`. Without `--shard` the whole input is shard 0/1.
 pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
     if args.candidates.is_empty() {
-        return Err(Error::usage("compare needs a reference and at least one candidate"));
+        return Err(Error::usage(
+            "compare needs a reference and at least one candidate",
+        ));
     }
-    let partial_path = args
-        .partial
-        .clone()
-        .ok_or_else(|| Error::usage("--shard needs --partial FILE, where the shard writes its partial result"))?;
+    let partial_path = args.partial.clone().ok_or_else(|| {
+        Error::usage("--shard needs --partial FILE, where the shard writes its partial result")
+    })?;
     let (index, count) = args.shard.unwrap_or((0, 1));
     if count == 0 || index >= count {
-        return Err(Error::usage(format!("--shard {index}/{count}: expected I/N with 0 <= I < N")));
+        return Err(Error::usage(format!(
+            "--shard {index}/{count}: expected I/N with 0 <= I < N"
+        )));
     }
     if args.json.is_some() || args.html.is_some() {
         return Err(Error::usage("a shard run writes only its partial result (--partial); make the JSON and HTML reports with `klgauge merge`"));
@@ -204,7 +240,11 @@ pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
         return Err(Error::usage("gates judge the whole run: give --max-kl-mean, --max-kl-p99 and --min-top1 to `klgauge merge`, not to a shard"));
     }
     let reference = LogitFile::open(&args.reference)?;
-    let candidates = args.candidates.iter().map(|p| LogitFile::open(p)).collect::<Result<Vec<_>>>()?;
+    let candidates = args
+        .candidates
+        .iter()
+        .map(|p| LogitFile::open(p))
+        .collect::<Result<Vec<_>>>()?;
     let cols = engine::compared_columns(&reference, &candidates, args.vocab)?;
     let targets = engine::check_alignment(&reference, &candidates, cols)?;
     let (prompts, rows) = crate::partial::shard_range(&reference, index, count);
@@ -223,7 +263,11 @@ pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
         progress: args.progress,
     };
     let result = run_engine(args, &reference, &candidates, &opts)?;
-    let counted = result.candidates.iter().map(|c| (c.positions, c.skipped_rows)).collect();
+    let counted = result
+        .candidates
+        .iter()
+        .map(|c| (c.positions, c.skipped_rows))
+        .collect();
     let run = crate::partial::ShardRun {
         reference: &reference,
         candidates: &candidates,

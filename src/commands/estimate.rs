@@ -160,7 +160,12 @@ struct PromptSum {
 
 fn k_estimate(groups: &[PromptSum], k: usize, w: &Welford, infinite: u64, scale: f64) -> KEstimate {
     if infinite > 0 {
-        return KEstimate { mean: f64::INFINITY, ci95: None, std: f64::NAN, draws_for_10pct: None };
+        return KEstimate {
+            mean: f64::INFINITY,
+            ci95: None,
+            std: f64::NAN,
+            draws_for_10pct: None,
+        };
     }
     let (mean, ci) = cluster_mean(groups.iter().map(|g| (g.n, g.s[k])));
     let n: f64 = groups.iter().map(|g| g.n).sum();
@@ -172,12 +177,21 @@ fn k_estimate(groups: &[PromptSum], k: usize, w: &Welford, infinite: u64, scale:
         let rel = 0.1 * mean.abs();
         (rel > 0.0).then(|| (n * (h / rel).powi(2)).ceil().max(1.0))
     });
-    KEstimate { mean: mean * scale, ci95: ci.map(|[a, b]| [a * scale, b * scale]), std: w.std() * scale, draws_for_10pct: need }
+    KEstimate {
+        mean: mean * scale,
+        ci95: ci.map(|[a, b]| [a * scale, b * scale]),
+        std: w.std() * scale,
+        draws_for_10pct: need,
+    }
 }
 
 /// Computes the report; writes nothing.
 pub fn build(f: &LogprobFile, bits: bool) -> EstimateReport {
-    let scale = if bits { 1.0 / std::f64::consts::LN_2 } else { 1.0 };
+    let scale = if bits {
+        1.0 / std::f64::consts::LN_2
+    } else {
+        1.0
+    };
     let mut groups = Vec::with_capacity(f.prompts());
     let mut w = [Welford::default(); 3];
     let (mut skipped, mut infinite) = (0u64, 0u64);
@@ -190,7 +204,12 @@ pub fn build(f: &LogprobFile, bits: bool) -> EstimateReport {
                 Err(fault) => {
                     skipped += 1;
                     if listed.len() < SKIPPED_LISTED {
-                        listed.push(SkippedDraw { index: i as u64, prompt: p as u64, position: (i - win[0]) as u64, fault: fault.describe() });
+                        listed.push(SkippedDraw {
+                            index: i as u64,
+                            prompt: p as u64,
+                            position: (i - win[0]) as u64,
+                            fault: fault.describe(),
+                        });
                     }
                     continue;
                 }
@@ -219,13 +238,20 @@ pub fn build(f: &LogprobFile, bits: bool) -> EstimateReport {
     // 1 - r is finite at every draw (it is 1 where q is 0).
     let (dm, dci) = cluster_mean(groups.iter().map(|g| (g.n, g.s[3])));
     let agree = dci.is_none_or(|[a, b]| a <= 0.0 && 0.0 <= b);
-    let diff = Consistency { mean: dm * scale, ci95: dci.map(|[a, b]| [a * scale, b * scale]), agree };
+    let diff = Consistency {
+        mean: dm * scale,
+        ci95: dci.map(|[a, b]| [a * scale, b * scale]),
+        agree,
+    };
     let prompts = groups.iter().filter(|g| g.n > 0.0).count() as u64;
 
     let units = if bits { "bits" } else { "nats" };
     let mut warnings = Vec::new();
     if counted == 0 {
-        warnings.push("no draw could be used: every one is faulty, so there is nothing to estimate".to_string());
+        warnings.push(
+            "no draw could be used: every one is faulty, so there is nothing to estimate"
+                .to_string(),
+        );
     } else if counted < FEW_DRAWS {
         warnings.push(format!("only {counted} draws were counted: the estimates and their intervals are rough; log more positions before deciding"));
     }
@@ -251,7 +277,9 @@ pub fn build(f: &LogprobFile, bits: bool) -> EstimateReport {
         _ => false,
     };
     if infinite == 0 && counted > 0 && (!agree || disjoint) {
-        let ci = |c: Option<[f64; 2]>| c.map_or("none".to_string(), |[a, b]| format!("{a:.3e} .. {b:.3e}"));
+        let ci = |c: Option<[f64; 2]>| {
+            c.map_or("none".to_string(), |[a, b]| format!("{a:.3e} .. {b:.3e}"))
+        };
         warnings.push(format!(
             "k1 ({:.3e} {units}) and k3 ({:.3e} {units}) disagree beyond their intervals: per draw k1 - k3 = 1 - r, whose mean must be 0 for tokens drawn from the reference, and its 95% interval is {}. Either the sample is too small for models this far apart (r has a heavy tail), or the tokens were not drawn from the reference's own distribution (greedy decoding, top-k, top-p or a temperature bias them); trust neither estimate until this is resolved",
             k1.mean,
@@ -268,7 +296,10 @@ pub fn build(f: &LogprobFile, bits: bool) -> EstimateReport {
     EstimateReport {
         schema: SCHEMA,
         units,
-        tool: ToolInfo { name: "klgauge", version: env!("CARGO_PKG_VERSION") },
+        tool: ToolInfo {
+            name: "klgauge",
+            version: env!("CARGO_PKG_VERSION"),
+        },
         file: EstimateFileInfo {
             path: f.path.display().to_string(),
             draws: f.n as u64,
@@ -278,7 +309,11 @@ pub fn build(f: &LogprobFile, bits: bool) -> EstimateReport {
                 Grouping::Offsets => "offsets",
                 _ => "rows",
             },
-            model: f.metadata.get("model").or_else(|| f.metadata.get("model_cand")).cloned(),
+            model: f
+                .metadata
+                .get("model")
+                .or_else(|| f.metadata.get("model_cand"))
+                .cloned(),
             model_ref: f.metadata.get("model_ref").cloned(),
         },
         direction: "forward",
@@ -325,26 +360,61 @@ pub fn write_text(r: &EstimateReport, out: &mut dyn Write) -> std::io::Result<()
         r.file.counted,
         r.skipped,
         r.file.prompts,
-        if r.file.grouping == "offsets" { "from prompt_offsets" } else { "no grouping: one per draw" }
+        if r.file.grouping == "offsets" {
+            "from prompt_offsets"
+        } else {
+            "no grouping: one per draw"
+        }
     )?;
-    writeln!(out, "  sampled estimates of KL(p||q), tokens drawn from the reference p, in {}", r.units)?;
-    writeln!(out, "    {:<8} {:>10}   {:<25} {:>10}   draws for +-10%", "", "mean", "95% interval", "std/draw")?;
-    for (name, k, note) in [("k1", &r.k1, ""), ("k2", &r.k2, "  (biased)"), ("k3", &r.k3, "")] {
-        let ci = k.ci95.map_or("-".to_string(), |[a, b]| format!("{} .. {}", sci(a), sci(b)));
-        let need = k.draws_for_10pct.map_or("-".to_string(), |n| format!("{n:.0}"));
-        writeln!(out, "    {name:<8} {:>10}   {ci:<25} {:>10}   {need}{note}", sci(k.mean), sci(k.std))?;
+    writeln!(
+        out,
+        "  sampled estimates of KL(p||q), tokens drawn from the reference p, in {}",
+        r.units
+    )?;
+    writeln!(
+        out,
+        "    {:<8} {:>10}   {:<25} {:>10}   draws for +-10%",
+        "", "mean", "95% interval", "std/draw"
+    )?;
+    for (name, k, note) in [
+        ("k1", &r.k1, ""),
+        ("k2", &r.k2, "  (biased)"),
+        ("k3", &r.k3, ""),
+    ] {
+        let ci = k.ci95.map_or("-".to_string(), |[a, b]| {
+            format!("{} .. {}", sci(a), sci(b))
+        });
+        let need = k
+            .draws_for_10pct
+            .map_or("-".to_string(), |n| format!("{n:.0}"));
+        writeln!(
+            out,
+            "    {name:<8} {:>10}   {ci:<25} {:>10}   {need}{note}",
+            sci(k.mean),
+            sci(k.std)
+        )?;
     }
     let d = &r.k1_minus_k3;
-    let ci = d.ci95.map_or("-".to_string(), |[a, b]| format!("{} .. {}", sci(a), sci(b)));
+    let ci = d.ci95.map_or("-".to_string(), |[a, b]| {
+        format!("{} .. {}", sci(a), sci(b))
+    });
     writeln!(
         out,
         "    {:<8} {:>10}   {ci:<25}   {}",
         "k1 - k3",
         sci(d.mean),
-        if d.agree { "consistent with 0" } else { "NOT consistent with 0" }
+        if d.agree {
+            "consistent with 0"
+        } else {
+            "NOT consistent with 0"
+        }
     )?;
     if r.infinite > 0 {
-        writeln!(out, "  infinite draws (logprob_cand = -inf): {}", r.infinite)?;
+        writeln!(
+            out,
+            "  infinite draws (logprob_cand = -inf): {}",
+            r.infinite
+        )?;
     }
     for w in &r.warnings {
         writeln!(out, "  warning: {w}")?;

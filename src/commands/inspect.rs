@@ -166,7 +166,8 @@ pub const FLOOR_BASIS: &str = "against another file stored the same way: both si
 /// The files a path stands for: itself, or the shards of a directory in
 /// lexical order (the rule of `LogitFile::open`).
 fn files_of(path: &Path) -> Result<Vec<PathBuf>> {
-    let meta = std::fs::metadata(path).map_err(|e| Error::input(path, format!("cannot open: {e}")))?;
+    let meta =
+        std::fs::metadata(path).map_err(|e| Error::input(path, format!("cannot open: {e}")))?;
     if !meta.is_dir() {
         return Ok(vec![path.to_path_buf()]);
     }
@@ -189,7 +190,12 @@ fn entry(f: &MappedFile) -> FileEntry {
         tensors: f
             .tensors
             .iter()
-            .map(|(n, t)| TensorInfo { name: n.clone(), dtype: t.dtype.to_string(), shape: t.shape.clone(), bytes: (t.end - t.start) as u64 })
+            .map(|(n, t)| TensorInfo {
+                name: n.clone(),
+                dtype: t.dtype.to_string(),
+                shape: t.shape.clone(),
+                bytes: (t.end - t.start) as u64,
+            })
             .collect(),
     }
 }
@@ -216,13 +222,20 @@ pub fn inspect(args: &InspectArgs) -> Result<InspectReport> {
 
 pub fn build(path: &Path) -> Result<InspectReport> {
     let paths = files_of(path)?;
-    let mapped = paths.iter().map(|p| MappedFile::open(p)).collect::<Result<Vec<_>>>()?;
+    let mapped = paths
+        .iter()
+        .map(|p| MappedFile::open(p))
+        .collect::<Result<Vec<_>>>()?;
     let first = &mapped[0];
     let is_logits = first.tensors.contains_key("logits");
-    let is_logprobs = first.tensors.contains_key("logprob_ref") || first.tensors.contains_key("logprob_cand");
+    let is_logprobs =
+        first.tensors.contains_key("logprob_ref") || first.tensors.contains_key("logprob_cand");
     let mut report = InspectReport {
         schema: SCHEMA,
-        tool: ToolInfo { name: "klgauge", version: env!("CARGO_PKG_VERSION") },
+        tool: ToolInfo {
+            name: "klgauge",
+            version: env!("CARGO_PKG_VERSION"),
+        },
         path: path.display().to_string(),
         kind: "logits",
         files: mapped.iter().map(entry).collect(),
@@ -243,7 +256,10 @@ pub fn build(path: &Path) -> Result<InspectReport> {
         }
     } else if is_logprobs {
         if mapped.len() > 1 {
-            return Err(Error::input(path, "a log-probability file is one safetensors file, not a directory of shards"));
+            return Err(Error::input(
+                path,
+                "a log-probability file is one safetensors file, not a directory of shards",
+            ));
         }
         let lp = LogprobFile::from_mapped(first)?;
         report.kind = "logprobs";
@@ -253,15 +269,25 @@ pub fn build(path: &Path) -> Result<InspectReport> {
         let found = if first.tensors.is_empty() {
             "no tensors".to_string()
         } else {
-            first.tensors.keys().map(|k| format!("`{k}`")).collect::<Vec<_>>().join(", ")
+            first
+                .tensors
+                .keys()
+                .map(|k| format!("`{k}`"))
+                .collect::<Vec<_>>()
+                .join(", ")
         };
         return Err(Error::input(
             &first.path,
             format!("holds neither `logits` (a logit file) nor `logprob_ref`/`logprob_cand` (a log-probability file); found: {found}"),
         ));
     }
-    if !["model", "model_ref", "model_cand"].iter().any(|k| report.metadata.contains_key(*k)) {
-        report.notes.push("no `model` in the metadata: reports will name this file by its path only".into());
+    if !["model", "model_ref", "model_cand"]
+        .iter()
+        .any(|k| report.metadata.contains_key(*k))
+    {
+        report.notes.push(
+            "no `model` in the metadata: reports will name this file by its path only".into(),
+        );
     }
     Ok(report)
 }
@@ -269,7 +295,10 @@ pub fn build(path: &Path) -> Result<InspectReport> {
 fn unknown_tensors(f: &MappedFile, known: &[&str], notes: &mut Vec<String>) {
     for name in f.tensors.keys() {
         if !known.contains(&name.as_str()) {
-            notes.push(format!("{}: tensor `{name}` is not part of the layout and is ignored", f.path.display()));
+            notes.push(format!(
+                "{}: tensor `{name}` is not part of the layout and is ignored",
+                f.path.display()
+            ));
         }
     }
 }
@@ -286,10 +315,15 @@ fn sample_rows(lf: &LogitFile) -> RowSample {
         Some(m) => (0..lf.rows).filter(|&r| m[r]).collect(),
         None => Vec::new(),
     };
-    let pool = if lf.mask.is_some() { counted.len() } else { lf.rows };
+    let pool = if lf.mask.is_some() {
+        counted.len()
+    } else {
+        lf.rows
+    };
     let take = pool.min(SAMPLE_ROWS);
     let mut x = vec![0f32; lf.vocab];
-    let (mut min, mut max, mut sum, mut finite, mut neg_inf, mut total) = (f64::INFINITY, f64::NEG_INFINITY, 0f64, 0u64, 0u64, 0u64);
+    let (mut min, mut max, mut sum, mut finite, mut neg_inf, mut total) =
+        (f64::INFINITY, f64::NEG_INFINITY, 0f64, 0u64, 0u64, 0u64);
     let (mut faulty, mut good) = (0u64, 0u64);
     let (mut max_sum, mut lse_sum) = (0f64, 0f64);
     let (mut all_lse_zero, mut all_max_zero) = (true, true);
@@ -299,7 +333,8 @@ fn sample_rows(lf: &LogitFile) -> RowSample {
         let k = i * pool / take;
         let row = if lf.mask.is_some() { counted[k] } else { k };
         lf.read_row(row, &mut x);
-        let bad = x.iter().any(|v| v.is_nan() || *v == f32::INFINITY) || x.iter().all(|v| *v == f32::NEG_INFINITY);
+        let bad = x.iter().any(|v| v.is_nan() || *v == f32::INFINITY)
+            || x.iter().all(|v| *v == f32::NEG_INFINITY);
         if bad {
             faulty += 1;
             continue;
@@ -376,7 +411,10 @@ fn logit_findings(lf: &LogitFile, r: &mut InspectReport) {
         targets: lf.targets.is_some(),
         mask: lf.mask.as_ref().map(|m| {
             let c = m.iter().filter(|&&b| b).count() as u64;
-            MaskInfo { counted: c, padding: m.len() as u64 - c }
+            MaskInfo {
+                counted: c,
+                padding: m.len() as u64 - c,
+            }
         }),
         logits_form: declared.clone(),
     });
@@ -390,7 +428,10 @@ fn logit_findings(lf: &LogitFile, r: &mut InspectReport) {
     }
     if let Some(m) = &r.logits.as_ref().unwrap().mask {
         if m.padding > 0 {
-            notes.push(format!("`mask` marks {} of {} rows as padding; they are not counted", m.padding, lf.rows));
+            notes.push(format!(
+                "`mask` marks {} of {} rows as padding; they are not counted",
+                m.padding, lf.rows
+            ));
         }
         if m.counted == 0 {
             notes.push("`mask` marks every row as padding: compare would count nothing".into());
@@ -432,7 +473,10 @@ fn logit_findings(lf: &LogitFile, r: &mut InspectReport) {
         ));
     }
     if lf.rows < crate::report::FEW_POSITIONS as usize {
-        notes.push(format!("only {} rows: percentiles and intervals from this file will be rough", lf.rows));
+        notes.push(format!(
+            "only {} rows: percentiles and intervals from this file will be rough",
+            lf.rows
+        ));
     }
     r.storage_floor = Some(FloorInfo {
         nats: s.floor,
@@ -453,9 +497,17 @@ fn range3(v: &[f32]) -> Range3 {
         n += 1;
     }
     if n == 0 {
-        return Range3 { min: f64::NAN, max: f64::NAN, mean: f64::NAN };
+        return Range3 {
+            min: f64::NAN,
+            max: f64::NAN,
+            mean: f64::NAN,
+        };
     }
-    Range3 { min, max, mean: sum / n as f64 }
+    Range3 {
+        min,
+        max,
+        mean: sum / n as f64,
+    }
 }
 
 fn logprob_findings(lp: &LogprobFile, r: &mut InspectReport) {
@@ -502,7 +554,11 @@ fn size(b: u64) -> String {
         v /= 1024.0;
         i += 1;
     }
-    if i == 0 { format!("{b} B") } else { format!("{v:.1} {}", U[i]) }
+    if i == 0 {
+        format!("{b} B")
+    } else {
+        format!("{v:.1} {}", U[i])
+    }
 }
 
 /// Shards listed in full on the terminal; the JSON lists all.
@@ -511,11 +567,29 @@ const SHARDS_SHOWN: usize = 3;
 /// The terminal summary.
 pub fn write_text(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()> {
     let total: u64 = r.files.iter().map(|f| f.bytes).sum();
-    let shards = if r.files.len() == 1 { "one file".to_string() } else { format!("{} shards", r.files.len()) };
-    writeln!(out, "{}: {} file ({shards}, {})", r.path, if r.kind == "logits" { "logit" } else { "log-probability" }, size(total))?;
+    let shards = if r.files.len() == 1 {
+        "one file".to_string()
+    } else {
+        format!("{} shards", r.files.len())
+    };
+    writeln!(
+        out,
+        "{}: {} file ({shards}, {})",
+        r.path,
+        if r.kind == "logits" {
+            "logit"
+        } else {
+            "log-probability"
+        },
+        size(total)
+    )?;
     for (i, f) in r.files.iter().enumerate() {
         if i == SHARDS_SHOWN && r.files.len() > SHARDS_SHOWN + 1 {
-            writeln!(out, "  ... {} more shards (all listed in --json)", r.files.len() - SHARDS_SHOWN)?;
+            writeln!(
+                out,
+                "  ... {} more shards (all listed in --json)",
+                r.files.len() - SHARDS_SHOWN
+            )?;
             break;
         }
         if r.files.len() > 1 {
@@ -523,7 +597,14 @@ pub fn write_text(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()>
         }
         for t in &f.tensors {
             let shape = format!("{:?}", t.shape);
-            writeln!(out, "    {:<16} {:<5} {:<22} {}", t.name, t.dtype, shape, size(t.bytes))?;
+            writeln!(
+                out,
+                "    {:<16} {:<5} {:<22} {}",
+                t.name,
+                t.dtype,
+                shape,
+                size(t.bytes)
+            )?;
         }
     }
     if !r.metadata.is_empty() {
@@ -563,15 +644,38 @@ pub fn write_text(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()>
         )?;
     }
     if let Some(f) = &r.storage_floor {
-        writeln!(out, "  storage floor ({}): {} nats per position, {}", f.dtype, sci(f.nats), f.basis)?;
+        writeln!(
+            out,
+            "  storage floor ({}): {} nats per position, {}",
+            f.dtype,
+            sci(f.nats),
+            f.basis
+        )?;
         if let Some(c) = f.if_centered {
-            writeln!(out, "    stored minus the row maximum at the same dtype: {} nats", sci(c))?;
+            writeln!(
+                out,
+                "    stored minus the row maximum at the same dtype: {} nats",
+                sci(c)
+            )?;
         }
     }
     if let Some(l) = &r.logprobs {
-        writeln!(out, "  draws: {}, {} prompts (grouping: {}), skipped {}, infinite {}", l.draws, l.prompts, l.grouping, l.skipped, l.infinite)?;
-        for (name, s) in [("logprob_ref", &l.logprob_ref), ("logprob_cand", &l.logprob_cand)] {
-            writeln!(out, "    {name:<13} min {} max {} mean {}", sci(s.min), sci(s.max), sci(s.mean))?;
+        writeln!(
+            out,
+            "  draws: {}, {} prompts (grouping: {}), skipped {}, infinite {}",
+            l.draws, l.prompts, l.grouping, l.skipped, l.infinite
+        )?;
+        for (name, s) in [
+            ("logprob_ref", &l.logprob_ref),
+            ("logprob_cand", &l.logprob_cand),
+        ] {
+            writeln!(
+                out,
+                "    {name:<13} min {} max {} mean {}",
+                sci(s.min),
+                sci(s.max),
+                sci(s.mean)
+            )?;
         }
     }
     if r.notes.is_empty() {

@@ -21,10 +21,16 @@ pub struct MergeArgs {
 
 pub fn merge(args: &MergeArgs) -> Result<Outcome> {
     if args.partials.is_empty() {
-        return Err(Error::usage("merge needs the partial results of every shard"));
+        return Err(Error::usage(
+            "merge needs the partial results of every shard",
+        ));
     }
     // Read and check everything before any output.
-    let parts = args.partials.iter().map(|p| Ok((p.clone(), partial::read(p)?))).collect::<Result<Vec<_>>>()?;
+    let parts = args
+        .partials
+        .iter()
+        .map(|p| Ok((p.clone(), partial::read(p)?)))
+        .collect::<Result<Vec<_>>>()?;
     let merged = partial::merge(parts)?;
     let kept = merged.settings.top;
     let top = args.top.unwrap_or(kept);
@@ -37,10 +43,22 @@ pub fn merge(args: &MergeArgs) -> Result<Outcome> {
         Some(p) => Some(crate::tokens::Vocabulary::load(p)?),
         None => None,
     };
-    let report = partial::report(&merged, top, args.bits, args.gates.clone(), vocabulary.as_ref());
+    let report = partial::report(
+        &merged,
+        top,
+        args.bits,
+        args.gates.clone(),
+        vocabulary.as_ref(),
+    );
     // HTML first: if that format is refused, no JSON is left behind either.
     write_reports(&report, None, args.html.as_ref())?;
     write_reports(&report, args.json.as_ref(), None)?;
-    let gate_failed = report.candidates.iter().any(|c| c.gates.iter().any(|g| !g.pass));
-    Ok(Outcome { report, gate_failed })
+    let gate_failed = report
+        .candidates
+        .iter()
+        .any(|c| c.gates.iter().any(|g| !g.pass));
+    Ok(Outcome {
+        report,
+        gate_failed,
+    })
 }

@@ -8,9 +8,9 @@
 
 use crate::error::{Error, Result};
 use memmap2::Mmap;
+use safetensors::tensor::TensorInfo;
 use safetensors::{Dtype, SafeTensors};
 use std::collections::BTreeMap;
-use safetensors::tensor::TensorInfo;
 use std::fs::File;
 use std::path::{Path, PathBuf};
 
@@ -36,27 +36,43 @@ impl MappedFile {
     pub fn open(path: &Path) -> Result<MappedFile> {
         // Stat before opening: opening a FIFO would block until a writer comes,
         // and a device has no fixed length to map.
-        let meta = std::fs::metadata(path).map_err(|e| Error::input(path, format!("cannot open: {e}")))?;
+        let meta =
+            std::fs::metadata(path).map_err(|e| Error::input(path, format!("cannot open: {e}")))?;
         if meta.is_dir() {
-            return Err(Error::input(path, "is a directory, expected a safetensors file"));
+            return Err(Error::input(
+                path,
+                "is a directory, expected a safetensors file",
+            ));
         }
         if !meta.is_file() {
-            return Err(Error::input(path, "is not a regular file (a pipe or device?), expected a safetensors file"));
+            return Err(Error::input(
+                path,
+                "is not a regular file (a pipe or device?), expected a safetensors file",
+            ));
         }
         let file = File::open(path).map_err(|e| Error::input(path, format!("cannot open: {e}")))?;
-        let len = file.metadata().map_err(|e| Error::input(path, format!("cannot stat: {e}")))?.len();
+        let len = file
+            .metadata()
+            .map_err(|e| Error::input(path, format!("cannot stat: {e}")))?
+            .len();
         if len == 0 {
-            return Err(Error::input(path, "empty file (0 bytes), expected a safetensors file"));
+            return Err(Error::input(
+                path,
+                "empty file (0 bytes), expected a safetensors file",
+            ));
         }
         if len < 8 {
             return Err(Error::input(
                 path,
-                format!("not a safetensors file: {len} bytes, shorter than the 8-byte header length"),
+                format!(
+                    "not a safetensors file: {len} bytes, shorter than the 8-byte header length"
+                ),
             ));
         }
         // SAFETY: the map is read-only; a file truncated by another process while
         // we run would fault, which is the accepted trade-off of every mmap reader.
-        let map = unsafe { Mmap::map(&file) }.map_err(|e| Error::input(path, format!("cannot map: {e}")))?;
+        let map = unsafe { Mmap::map(&file) }
+            .map_err(|e| Error::input(path, format!("cannot map: {e}")))?;
         let declared = u64::from_le_bytes(map[..8].try_into().expect("8 bytes"));
         if declared > len - 8 {
             return Err(Error::input(
@@ -68,7 +84,12 @@ impl MappedFile {
             ));
         }
         if declared < 2 {
-            return Err(Error::input(path, format!("not a safetensors file: header length {declared}, too short for a JSON header")));
+            return Err(Error::input(
+                path,
+                format!(
+                    "not a safetensors file: header length {declared}, too short for a JSON header"
+                ),
+            ));
         }
         let header = &map[8..8 + declared as usize];
         let data_len = map.len() - 8 - declared as usize;
@@ -77,12 +98,15 @@ impl MappedFile {
             let why = match e {
                 E::InvalidHeader(_) => "invalid safetensors header: not UTF-8 text".to_string(),
                 E::InvalidHeaderDeserialization(j) => explain_json(header, &j.to_string()),
-                E::HeaderTooLarge => format!("invalid safetensors header: {declared} bytes, more than the format allows"),
+                E::HeaderTooLarge => format!(
+                    "invalid safetensors header: {declared} bytes, more than the format allows"
+                ),
                 E::MetadataIncompleteBuffer
                 | E::TensorInvalidInfo
                 | E::InvalidOffset(_)
                 | E::ValidationOverflow
-                | E::MisalignedSlice => explain_layout(header, data_len).unwrap_or_else(|| format!("invalid safetensors header: {e}")),
+                | E::MisalignedSlice => explain_layout(header, data_len)
+                    .unwrap_or_else(|| format!("invalid safetensors header: {e}")),
                 other => format!("invalid safetensors header: {other}"),
             };
             Error::input(path, why)
@@ -105,7 +129,12 @@ impl MappedFile {
             .as_ref()
             .map(|m| m.iter().map(|(k, v)| (k.clone(), v.clone())).collect())
             .unwrap_or_default();
-        Ok(MappedFile { path: path.to_path_buf(), map, tensors, metadata })
+        Ok(MappedFile {
+            path: path.to_path_buf(),
+            map,
+            tensors,
+            metadata,
+        })
     }
 
     pub fn bytes(&self, t: &TensorEntry) -> &[u8] {
@@ -116,31 +145,62 @@ impl MappedFile {
     pub fn read_ints(&self, name: &str, t: &TensorEntry) -> Result<Vec<i64>> {
         let b = self.bytes(t);
         match t.dtype {
-            Dtype::I64 => Ok(b.chunks_exact(8).map(|c| i64::from_le_bytes(c.try_into().unwrap())).collect()),
-            Dtype::I32 => Ok(b.chunks_exact(4).map(|c| i32::from_le_bytes(c.try_into().unwrap()) as i64).collect()),
-            d => Err(Error::input(&self.path, format!("tensor `{name}` has dtype {d}, expected I32 or I64"))),
+            Dtype::I64 => Ok(b
+                .chunks_exact(8)
+                .map(|c| i64::from_le_bytes(c.try_into().unwrap()))
+                .collect()),
+            Dtype::I32 => Ok(b
+                .chunks_exact(4)
+                .map(|c| i32::from_le_bytes(c.try_into().unwrap()) as i64)
+                .collect()),
+            d => Err(Error::input(
+                &self.path,
+                format!("tensor `{name}` has dtype {d}, expected I32 or I64"),
+            )),
         }
     }
 
     /// Reads and validates `prompt_offsets`: I64 [prompts + 1], starting at 0,
     /// strictly increasing, ending at `total` (`what` names the count in messages).
-    pub fn read_prompt_offsets(&self, t: &TensorEntry, total: usize, what: &str) -> Result<Vec<i64>> {
+    pub fn read_prompt_offsets(
+        &self,
+        t: &TensorEntry,
+        total: usize,
+        what: &str,
+    ) -> Result<Vec<i64>> {
         let err = |m: String| Error::input(&self.path, m);
         if t.dtype != Dtype::I64 {
-            return Err(err(format!("`prompt_offsets` has dtype {}, expected I64", t.dtype)));
+            return Err(err(format!(
+                "`prompt_offsets` has dtype {}, expected I64",
+                t.dtype
+            )));
         }
         if t.shape.len() != 1 || t.shape[0] < 2 {
-            return Err(err(format!("`prompt_offsets` has shape {:?}, expected [prompts + 1] with at least one prompt", t.shape)));
+            return Err(err(format!(
+                "`prompt_offsets` has shape {:?}, expected [prompts + 1] with at least one prompt",
+                t.shape
+            )));
         }
         let o = self.read_ints("prompt_offsets", t)?;
         if o[0] != 0 {
-            return Err(err(format!("`prompt_offsets` starts at {}, expected 0", o[0])));
+            return Err(err(format!(
+                "`prompt_offsets` starts at {}, expected 0",
+                o[0]
+            )));
         }
         if let Some(w) = o.windows(2).position(|w| w[1] <= w[0]) {
-            return Err(err(format!("`prompt_offsets` is not strictly increasing at index {} ({} then {})", w, o[w], o[w + 1])));
+            return Err(err(format!(
+                "`prompt_offsets` is not strictly increasing at index {} ({} then {})",
+                w,
+                o[w],
+                o[w + 1]
+            )));
         }
         if *o.last().unwrap() != total as i64 {
-            return Err(err(format!("`prompt_offsets` ends at {}, expected {what} {total}", o.last().unwrap())));
+            return Err(err(format!(
+                "`prompt_offsets` ends at {}, expected {what} {total}",
+                o.last().unwrap()
+            )));
         }
         Ok(o)
     }
@@ -154,19 +214,32 @@ impl MappedFile {
             Dtype::BOOL => match self.bytes(t).iter().position(|&b| b > 1) {
                 Some(i) => Err(Error::input(
                     &self.path,
-                    format!("tensor `{name}` is BOOL but holds byte {} at element {i}; expected 0 or 1", self.bytes(t)[i]),
+                    format!(
+                        "tensor `{name}` is BOOL but holds byte {} at element {i}; expected 0 or 1",
+                        self.bytes(t)[i]
+                    ),
                 )),
                 None => Ok(self.bytes(t).iter().map(|&b| b != 0).collect()),
             },
-            d => Err(Error::input(&self.path, format!("tensor `{name}` has dtype {d}, expected U8 or BOOL"))),
+            d => Err(Error::input(
+                &self.path,
+                format!("tensor `{name}` has dtype {d}, expected U8 or BOOL"),
+            )),
         }
     }
 
     /// Reads an F32 tensor (any shape) as a flat vector.
     pub fn read_f32(&self, name: &str, t: &TensorEntry) -> Result<Vec<f32>> {
         match t.dtype {
-            Dtype::F32 => Ok(self.bytes(t).chunks_exact(4).map(|c| f32::from_le_bytes(c.try_into().unwrap())).collect()),
-            d => Err(Error::input(&self.path, format!("tensor `{name}` has dtype {d}, expected F32"))),
+            Dtype::F32 => Ok(self
+                .bytes(t)
+                .chunks_exact(4)
+                .map(|c| f32::from_le_bytes(c.try_into().unwrap()))
+                .collect()),
+            d => Err(Error::input(
+                &self.path,
+                format!("tensor `{name}` has dtype {d}, expected F32"),
+            )),
         }
     }
 }
@@ -178,7 +251,9 @@ fn explain_json(header: &[u8], detail: &str) -> String {
     let detail = detail.split(", expected one of").next().unwrap_or(detail);
     match serde_json::from_slice::<serde_json::Value>(header) {
         Err(_) => format!("invalid safetensors header: not JSON ({detail})"),
-        Ok(serde_json::Value::Object(_)) => format!("invalid safetensors header: a malformed entry ({detail})"),
+        Ok(serde_json::Value::Object(_)) => {
+            format!("invalid safetensors header: a malformed entry ({detail})")
+        }
         Ok(_) => "invalid safetensors header: JSON, but not an object of named tensors".to_string(),
     }
 }
@@ -202,14 +277,21 @@ pub(crate) fn explain_layout(header: &[u8], data_len: usize) -> Option<String> {
     for (name, t) in &tensors {
         let (s, e) = t.data_offsets;
         if e < s {
-            return Some(format!("tensor `{name}` has data offsets [{s}, {e}) that run backwards"));
+            return Some(format!(
+                "tensor `{name}` has data offsets [{s}, {e}) that run backwards"
+            ));
         }
         if s < end {
             let other = prev.unwrap_or("?");
-            return Some(format!("tensor `{name}` data [{s}, {e}) overlaps tensor `{other}` (which ends at {end})"));
+            return Some(format!(
+                "tensor `{name}` data [{s}, {e}) overlaps tensor `{other}` (which ends at {end})"
+            ));
         }
         if s > end {
-            return Some(format!("tensor `{name}` data starts at {s}, leaving a gap of {} bytes before it", s - end));
+            return Some(format!(
+                "tensor `{name}` data starts at {s}, leaving a gap of {} bytes before it",
+                s - end
+            ));
         }
         let elements = t.shape.iter().try_fold(1usize, |a, &d| a.checked_mul(d));
         let bits = elements.and_then(|n| n.checked_mul(t.dtype.bitsize()));
@@ -238,7 +320,10 @@ pub(crate) fn explain_layout(header: &[u8], data_len: usize) -> Option<String> {
         ));
     }
     if end < data_len {
-        return Some(format!("{} bytes after the end of the last tensor's data (padded or concatenated file?)", data_len - end));
+        return Some(format!(
+            "{} bytes after the end of the last tensor's data (padded or concatenated file?)",
+            data_len - end
+        ));
     }
     None
 }

@@ -64,7 +64,9 @@ impl Grouping {
     /// Words for messages: "by sequences of 128 rows", "by `prompt_offsets`", ...
     pub fn describe(&self) -> String {
         match self {
-            Grouping::Sequences { length } => format!("by sequences of {length} rows (3-D `logits`)"),
+            Grouping::Sequences { length } => {
+                format!("by sequences of {length} rows (3-D `logits`)")
+            }
             Grouping::Offsets => "by `prompt_offsets`".into(),
             Grouping::PerRow => "not at all (2-D `logits` without `prompt_offsets`)".into(),
         }
@@ -106,7 +108,8 @@ pub struct LogitFile {
 
 impl LogitFile {
     pub fn open(path: &Path) -> Result<LogitFile> {
-        let meta = std::fs::metadata(path).map_err(|e| Error::input(path, format!("cannot open: {e}")))?;
+        let meta =
+            std::fs::metadata(path).map_err(|e| Error::input(path, format!("cannot open: {e}")))?;
         let files: Vec<PathBuf> = if meta.is_dir() {
             let mut v: Vec<PathBuf> = std::fs::read_dir(path)
                 .map_err(|e| Error::input(path, format!("cannot list directory: {e}")))?
@@ -147,7 +150,11 @@ impl LogitFile {
                 Dtype::F32 => StoredDtype::F32,
                 Dtype::F16 => StoredDtype::F16,
                 Dtype::BF16 => StoredDtype::BF16,
-                other => return Err(err(format!("`logits` has dtype {other}, expected F32, F16 or BF16"))),
+                other => {
+                    return Err(err(format!(
+                        "`logits` has dtype {other}, expected F32, F16 or BF16"
+                    )))
+                }
             };
             let (rows, v, g) = match logits.shape.as_slice() {
                 [r, v] => (*r, *v, Grouping::PerRow),
@@ -164,16 +171,25 @@ impl LogitFile {
                 return Err(err("`logits` has a vocabulary of 0 columns".into()));
             }
             if rows == 0 {
-                return Err(err(format!("`logits` has 0 rows (shape {:?})", logits.shape)));
+                return Err(err(format!(
+                    "`logits` has 0 rows (shape {:?})",
+                    logits.shape
+                )));
             }
             if let Some(d0) = dtype {
                 if d0 != d {
-                    return Err(err(format!("shard dtype {} differs from the first shard's {}", d.name(), StoredDtype::name(d0))));
+                    return Err(err(format!(
+                        "shard dtype {} differs from the first shard's {}",
+                        d.name(),
+                        StoredDtype::name(d0)
+                    )));
                 }
             }
             if let Some(v0) = vocab {
                 if v0 != v {
-                    return Err(err(format!("shard vocabulary {v} differs from the first shard's {v0}")));
+                    return Err(err(format!(
+                        "shard vocabulary {v} differs from the first shard's {v0}"
+                    )));
                 }
             }
             let lead: Vec<usize> = logits.shape[..logits.shape.len() - 1].to_vec();
@@ -192,7 +208,10 @@ impl LogitFile {
             let m = match file.tensors.get("mask") {
                 Some(t) => {
                     if t.shape != lead {
-                        return Err(err(format!("`mask` has shape {:?}, expected {:?} (the leading dims of `logits`)", t.shape, lead)));
+                        return Err(err(format!(
+                            "`mask` has shape {:?}, expected {:?} (the leading dims of `logits`)",
+                            t.shape, lead
+                        )));
                     }
                     Some(file.read_flags("mask", t)?)
                 }
@@ -212,7 +231,11 @@ impl LogitFile {
             match &grouping {
                 None => grouping = Some(g.clone()),
                 Some(g0) if *g0 != g => {
-                    return Err(err(format!("shard groups prompts {}, the first shard {}", g.describe(), g0.describe())));
+                    return Err(err(format!(
+                        "shard groups prompts {}, the first shard {}",
+                        g.describe(),
+                        g0.describe()
+                    )));
                 }
                 _ => {}
             }
@@ -231,7 +254,9 @@ impl LogitFile {
                 mask.get_or_insert_with(Vec::new).extend(m);
             }
             match (&g, offs) {
-                (Grouping::Offsets, Some(o)) => prompt_starts.extend(o[1..].iter().map(|&x| first_row + x as usize)),
+                (Grouping::Offsets, Some(o)) => {
+                    prompt_starts.extend(o[1..].iter().map(|&x| first_row + x as usize))
+                }
                 (Grouping::Sequences { length }, _) => {
                     let seqs = rows / length.max(&1);
                     prompt_starts.extend((1..=seqs).map(|s| first_row + s * length));
@@ -244,7 +269,15 @@ impl LogitFile {
             }
             dtype = Some(d);
             vocab = Some(v);
-            shards.push(Shard { first_row, rows, logits_start: logits.start, stride: v, released: AtomicUsize::new(0), reader: std::fs::File::open(fpath).ok(), file });
+            shards.push(Shard {
+                first_row,
+                rows,
+                logits_start: logits.start,
+                stride: v,
+                released: AtomicUsize::new(0),
+                reader: std::fs::File::open(fpath).ok(),
+                file,
+            });
             first_row += rows;
         }
         // A 3-D tensor with length 0 has zero rows and was refused above.
@@ -351,7 +384,10 @@ impl LogitFile {
             if lo < hi {
                 let row_bytes = s.stride * es;
                 let off = s.logits_start + (lo - s.first_row) * row_bytes;
-                let _ = s.file.map.advise_range(memmap2::Advice::WillNeed, off, (hi - lo) * row_bytes);
+                let _ =
+                    s.file
+                        .map
+                        .advise_range(memmap2::Advice::WillNeed, off, (hi - lo) * row_bytes);
             }
         }
     }
@@ -370,14 +406,23 @@ impl LogitFile {
             }
             let done = (row - s.first_row).min(s.rows);
             let end = (s.logits_start + done * s.stride * es) / page * page;
-            let begin = s.released.load(Ordering::Relaxed).max(s.logits_start / page * page);
+            let begin = s
+                .released
+                .load(Ordering::Relaxed)
+                .max(s.logits_start / page * page);
             if end > begin {
                 // SAFETY: DontNeed on a read-only private file mapping only drops
                 // this process's page-table entries for those pages (nothing was
                 // ever written to them); later reads fault them back in from the
                 // page cache or the file. No reference into the range is alive:
                 // the rows before `row` are finished.
-                let _ = unsafe { s.file.map.unchecked_advise_range(memmap2::UncheckedAdvice::DontNeed, begin, end - begin) };
+                let _ = unsafe {
+                    s.file.map.unchecked_advise_range(
+                        memmap2::UncheckedAdvice::DontNeed,
+                        begin,
+                        end - begin,
+                    )
+                };
                 s.released.store(end, Ordering::Relaxed);
             }
         }
@@ -388,7 +433,11 @@ impl LogitFile {
     fn advise_sequential(&self) {
         let es = self.dtype.size();
         for s in &self.shards {
-            let _ = s.file.map.advise_range(memmap2::Advice::Sequential, s.logits_start, s.rows * s.stride * es);
+            let _ = s.file.map.advise_range(
+                memmap2::Advice::Sequential,
+                s.logits_start,
+                s.rows * s.stride * es,
+            );
         }
     }
 }
@@ -404,7 +453,13 @@ fn map_only() -> bool {
 const READ_PIECE: usize = 64 << 10;
 
 #[cfg(unix)]
-fn read_decode(f: &std::fs::File, dtype: StoredDtype, start: u64, out: &mut [f32], raw: &mut Vec<u8>) -> std::io::Result<()> {
+fn read_decode(
+    f: &std::fs::File,
+    dtype: StoredDtype,
+    start: u64,
+    out: &mut [f32],
+    raw: &mut Vec<u8>,
+) -> std::io::Result<()> {
     use std::os::unix::fs::FileExt;
     if dtype == StoredDtype::F32 && cfg!(target_endian = "little") {
         return f.read_exact_at(bytemuck::cast_slice_mut(out), start);
@@ -439,7 +494,11 @@ fn names(f: &MappedFile) -> String {
     if f.tensors.is_empty() {
         "no tensors".into()
     } else {
-        f.tensors.keys().map(|k| format!("`{k}`")).collect::<Vec<_>>().join(", ")
+        f.tensors
+            .keys()
+            .map(|k| format!("`{k}`"))
+            .collect::<Vec<_>>()
+            .join(", ")
     }
 }
 

@@ -42,7 +42,9 @@ impl DrawFault {
         match self {
             DrawFault::Nan => "NaN log-probability",
             DrawFault::PosInf => "+inf log-probability",
-            DrawFault::RefNegInf => "logprob_ref is -inf: the reference cannot have drawn this token",
+            DrawFault::RefNegInf => {
+                "logprob_ref is -inf: the reference cannot have drawn this token"
+            }
         }
     }
 }
@@ -75,7 +77,11 @@ impl LogprobFile {
             if file.tensors.is_empty() {
                 "no tensors".to_string()
             } else {
-                file.tensors.keys().map(|k| format!("`{k}`")).collect::<Vec<_>>().join(", ")
+                file.tensors
+                    .keys()
+                    .map(|k| format!("`{k}`"))
+                    .collect::<Vec<_>>()
+                    .join(", ")
             }
         };
         let get = |name: &str| -> Result<Vec<f32>> {
@@ -89,7 +95,10 @@ impl LogprobFile {
                 None => return Err(err(format!("no `{name}` tensor (found: {})", found()))),
             };
             if t.shape.len() != 1 {
-                return Err(err(format!("`{name}` has shape {:?}, expected [n] (one value per draw)", t.shape)));
+                return Err(err(format!(
+                    "`{name}` has shape {:?}, expected [n] (one value per draw)",
+                    t.shape
+                )));
             }
             if t.shape[0] == 0 {
                 return Err(err(format!("`{name}` is empty: there are no draws")));
@@ -103,7 +112,10 @@ impl LogprobFile {
         }
         let n = lp.len();
         for (name, v) in [("logprob_ref", &lp), ("logprob_cand", &lq)] {
-            if let Some(i) = v.iter().position(|&x| x.is_finite() && x > POSITIVE_TOLERANCE) {
+            if let Some(i) = v
+                .iter()
+                .position(|&x| x.is_finite() && x > POSITIVE_TOLERANCE)
+            {
                 return Err(err(format!(
                     "`{name}`[{i}] = {} is positive: a log-probability is at most 0 (were raw logits stored instead of log-softmax values?)",
                     v[i]

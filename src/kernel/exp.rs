@@ -36,7 +36,11 @@ const EXP_CLAMP_HI: f32 = 88.3;
 /// `mul_add` would be a slow library call).
 #[inline(always)]
 pub const fn fused(level: u8) -> bool {
-    level > 0 || cfg!(any(target_arch = "aarch64", all(target_arch = "x86_64", target_feature = "fma")))
+    level > 0
+        || cfg!(any(
+            target_arch = "aarch64",
+            all(target_arch = "x86_64", target_feature = "fma")
+        ))
 }
 
 /// a * b + c, with one rounding where level `L` fuses, else two.
@@ -58,7 +62,11 @@ pub fn mul_add<const L: u8>(a: f32, b: f32, c: f32) -> f32 {
 pub fn exp_nonpos<const L: u8>(x: f32) -> f32 {
     let t = mul_add::<L>(x, LOG2E, ROUND);
     let n = t - ROUND;
-    let r = if fused(L) { mul_add::<L>(n, -LN2_LO, mul_add::<L>(n, -LN2_HI, x)) } else { (x - n * LN2_HI) - n * LN2_LO };
+    let r = if fused(L) {
+        mul_add::<L>(n, -LN2_LO, mul_add::<L>(n, -LN2_HI, x))
+    } else {
+        (x - n * LN2_HI) - n * LN2_LO
+    };
     let r2 = r * r;
     let a = mul_add::<L>(P0, r, P1);
     let b = mul_add::<L>(P2, r, P3);
@@ -85,7 +93,12 @@ pub fn exp_nonpos<const L: u8>(x: f32) -> f32 {
 /// the exact product rounded once) and masks the underflow lanes; every
 /// other operation is the same, so the lanes are the same bits.
 #[inline(always)]
-pub fn exp_step<const L: u8>(c: &[f32; 16], m: f32, s: &mut [f32; 16], t: &mut [f32; 16]) -> [f32; 16] {
+pub fn exp_step<const L: u8>(
+    c: &[f32; 16],
+    m: f32,
+    s: &mut [f32; 16],
+    t: &mut [f32; 16],
+) -> [f32; 16] {
     #[cfg(target_arch = "x86_64")]
     if L >= 2 {
         use std::arch::x86_64::*;
@@ -107,8 +120,14 @@ pub fn exp_step<const L: u8>(c: &[f32; 16], m: f32, s: &mut [f32; 16], t: &mut [
             // Lanes with x < EXP_UNDERFLOW are zeroed and add no t; NaN lanes are kept.
             let keep = _mm512_cmp_ps_mask::<_CMP_NLT_UQ>(x, k(EXP_UNDERFLOW));
             let e = _mm512_maskz_scalef_ps(keep, y, n);
-            _mm512_storeu_ps(s.as_mut_ptr(), _mm512_add_ps(_mm512_loadu_ps(s.as_ptr()), e));
-            _mm512_storeu_ps(t.as_mut_ptr(), _mm512_mask3_fmadd_ps(x, e, _mm512_loadu_ps(t.as_ptr()), keep));
+            _mm512_storeu_ps(
+                s.as_mut_ptr(),
+                _mm512_add_ps(_mm512_loadu_ps(s.as_ptr()), e),
+            );
+            _mm512_storeu_ps(
+                t.as_mut_ptr(),
+                _mm512_mask3_fmadd_ps(x, e, _mm512_loadu_ps(t.as_ptr()), keep),
+            );
             let mut out = [0f32; 16];
             _mm512_storeu_ps(out.as_mut_ptr(), e);
             return out;
@@ -136,7 +155,10 @@ pub fn exp_step<const L: u8>(c: &[f32; 16], m: f32, s: &mut [f32; 16], t: &mut [
                 let pc = _mm256_fmadd_ps(k(P4), r, k(P5));
                 let y = _mm256_fmadd_ps(_mm256_fmadd_ps(pa, r2, pb), r2, pc);
                 let y = _mm256_add_ps(_mm256_fmadd_ps(y, r2, r), k(1.0));
-                let bits = _mm256_add_epi32(_mm256_slli_epi32::<23>(_mm256_castps_si256(tt)), _mm256_set1_epi32(127 << 23));
+                let bits = _mm256_add_epi32(
+                    _mm256_slli_epi32::<23>(_mm256_castps_si256(tt)),
+                    _mm256_set1_epi32(127 << 23),
+                );
                 let v = _mm256_mul_ps(y, _mm256_castsi256_ps(bits));
                 let keep = _mm256_cmp_ps::<_CMP_NLT_UQ>(x, k(EXP_UNDERFLOW));
                 let e = _mm256_and_ps(v, keep);
@@ -157,7 +179,11 @@ pub fn exp_step<const L: u8>(c: &[f32; 16], m: f32, s: &mut [f32; 16], t: &mut [
         s[j] += v;
         // Below the underflow bound v = 0 and the term is skipped, which
         // also keeps -inf * 0 from making a NaN.
-        t[j] = if a < EXP_UNDERFLOW { t[j] } else { mul_add::<L>(a, v, t[j]) };
+        t[j] = if a < EXP_UNDERFLOW {
+            t[j]
+        } else {
+            mul_add::<L>(a, v, t[j])
+        };
         out[j] = v;
     }
     out
@@ -189,7 +215,10 @@ mod tests {
             worst = worst.max(rel);
             x += 0.0137;
         }
-        assert!(worst < 4.0 * f32::EPSILON as f64, "worst relative error {worst}");
+        assert!(
+            worst < 4.0 * f32::EPSILON as f64,
+            "worst relative error {worst}"
+        );
     }
 
     #[test]
@@ -202,19 +231,36 @@ mod tests {
         while bits > end {
             let x = f32::from_bits(bits);
             let want = (x as f64).exp();
-            for (k, got) in [exp_nonpos::<0>(x), exp_nonpos::<2>(x)].into_iter().enumerate() {
+            for (k, got) in [exp_nonpos::<0>(x), exp_nonpos::<2>(x)]
+                .into_iter()
+                .enumerate()
+            {
                 worst[k] = worst[k].max(((got as f64 - want) / want).abs());
             }
             bits -= 61;
         }
-        assert!(worst[0] < 4.0 * f32::EPSILON as f64, "scalar build: worst relative error {}", worst[0]);
-        assert!(worst[1] < 4.0 * f32::EPSILON as f64, "fused: worst relative error {}", worst[1]);
+        assert!(
+            worst[0] < 4.0 * f32::EPSILON as f64,
+            "scalar build: worst relative error {}",
+            worst[0]
+        );
+        assert!(
+            worst[1] < 4.0 * f32::EPSILON as f64,
+            "fused: worst relative error {}",
+            worst[1]
+        );
     }
 
     #[test]
     fn nonpositive_special_values() {
         for fused in [false, true] {
-            let e = |x: f32| if fused { exp_nonpos::<2>(x) } else { exp_nonpos::<0>(x) };
+            let e = |x: f32| {
+                if fused {
+                    exp_nonpos::<2>(x)
+                } else {
+                    exp_nonpos::<0>(x)
+                }
+            };
             assert_eq!(e(f32::NEG_INFINITY), 0.0);
             assert_eq!(e(-1e30), 0.0);
             assert_eq!(e(-87.31), 0.0);

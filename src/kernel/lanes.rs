@@ -104,7 +104,10 @@ pub fn all_abs_below<const L: u8>(v: &F, bound: f32) -> bool {
             let bd = _mm256_set1_ps(bound);
             let lo = _mm256_andnot_ps(sign, _mm256_loadu_ps(v.as_ptr()));
             let hi = _mm256_andnot_ps(sign, _mm256_loadu_ps(v.as_ptr().add(8)));
-            let ok = _mm256_and_ps(_mm256_cmp_ps::<_CMP_LT_OQ>(lo, bd), _mm256_cmp_ps::<_CMP_LT_OQ>(hi, bd));
+            let ok = _mm256_and_ps(
+                _mm256_cmp_ps::<_CMP_LT_OQ>(lo, bd),
+                _mm256_cmp_ps::<_CMP_LT_OQ>(hi, bd),
+            );
             return _mm256_movemask_ps(ok) == 0xff;
         }
     }
@@ -145,4 +148,3 @@ pub fn hmax(v: &F) -> f32 {
     }
     m
 }
-

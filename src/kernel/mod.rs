@@ -210,7 +210,11 @@ fn f16_to_f32(h: u16) -> f32 {
     let h = h as u32;
     let em = h & 0x7fff;
     let mag = f32::from_bits(em << 13) * F16_SCALE;
-    let mag = if em >= 0x7c00 { f32::from_bits((em << 13) | 0x7f80_0000) } else { mag };
+    let mag = if em >= 0x7c00 {
+        f32::from_bits((em << 13) | 0x7f80_0000)
+    } else {
+        mag
+    };
     f32::from_bits(mag.to_bits() | ((h & 0x8000) << 16))
 }
 
@@ -224,7 +228,11 @@ fn decode_2byte(bytes: &[u8], out: &mut [f32], conv: impl Fn(u16) -> f32) {
             o[j] = conv(u16::from_le_bytes([c[2 * j], c[2 * j + 1]]));
         }
     }
-    for (o, c) in ob.into_remainder().iter_mut().zip(ib.remainder().chunks_exact(2)) {
+    for (o, c) in ob
+        .into_remainder()
+        .iter_mut()
+        .zip(ib.remainder().chunks_exact(2))
+    {
         *o = conv(u16::from_le_bytes([c[0], c[1]]));
     }
 }
@@ -284,7 +292,10 @@ fn scan_step<const L: u8>(c: &F, chunk: u32, m: &mut F, at: &mut [u32; W]) {
             let gt = _mm512_cmp_ps_mask::<_CMP_GT_OQ>(v, mo);
             _mm512_storeu_ps(m.as_mut_ptr(), _mm512_mask_mov_ps(mo, gt, v));
             let ap = at.as_mut_ptr() as *mut __m512i;
-            _mm512_storeu_si512(ap, _mm512_mask_mov_epi32(_mm512_loadu_si512(ap), gt, _mm512_set1_epi32(chunk as i32)));
+            _mm512_storeu_si512(
+                ap,
+                _mm512_mask_mov_epi32(_mm512_loadu_si512(ap), gt, _mm512_set1_epi32(chunk as i32)),
+            );
         }
         return;
     }
@@ -394,7 +405,12 @@ dispatched! {
 /// Stores exp(x - m) into `e`, the sum of every NORM_BLOCK columns into
 /// `blocks`, and returns (sum exp(x - m), sum (x - m) exp(x - m)).
 #[inline(always)]
-fn exp_pass<const L: u8, const STORE: bool>(x: &[f32], m: f32, e: &mut [f32], blocks: &mut [f64]) -> (f64, f64) {
+fn exp_pass<const L: u8, const STORE: bool>(
+    x: &[f32],
+    m: f32,
+    e: &mut [f32],
+    blocks: &mut [f64],
+) -> (f64, f64) {
     // t is summed in f32 lanes per block, over four blocks (256 columns), then in f64.
     // The lanes of each block's sum are kept and reduced GROUP blocks at a
     // time, away from the exp chains they depend on.
@@ -461,9 +477,19 @@ fn exp_pass<const L: u8, const STORE: bool>(x: &[f32], m: f32, e: &mut [f32], bl
 }
 
 #[inline(always)]
-fn normalise_any<const L: u8, const STORE: bool>(x: &[f32], e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
-    assert!(!STORE || e.len() >= x.len(), "normalise: exp buffer shorter than the row");
-    assert!(blocks.len() >= norm_blocks(x.len()), "normalise: block buffer too short");
+fn normalise_any<const L: u8, const STORE: bool>(
+    x: &[f32],
+    e: &mut [f32],
+    blocks: &mut [f64],
+) -> Result<RowNorm, RowFault> {
+    assert!(
+        !STORE || e.len() >= x.len(),
+        "normalise: exp buffer shorter than the row"
+    );
+    assert!(
+        blocks.len() >= norm_blocks(x.len()),
+        "normalise: block buffer too short"
+    );
     let (max, argmax) = scan_max::<L>(x);
     if !max.is_finite() {
         return Err(classify_fault(x));
@@ -475,11 +501,21 @@ fn normalise_any<const L: u8, const STORE: bool>(x: &[f32], e: &mut [f32], block
         return Err(classify_fault(x));
     }
     let ln_s = s.ln();
-    Ok(RowNorm { max, argmax: argmax as u32, lse: max as f64 + ln_s, sum: s, entropy: ln_s - t / s })
+    Ok(RowNorm {
+        max,
+        argmax: argmax as u32,
+        lse: max as f64 + ln_s,
+        sum: s,
+        entropy: ln_s - t / s,
+    })
 }
 
 #[inline(always)]
-fn normalise_impl<const L: u8>(x: &[f32], e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
+fn normalise_impl<const L: u8>(
+    x: &[f32],
+    e: &mut [f32],
+    blocks: &mut [f64],
+) -> Result<RowNorm, RowFault> {
     normalise_any::<L, true>(x, e, blocks)
 }
 
@@ -538,7 +574,18 @@ struct PairConsts {
 /// Adds 16 columns' contributions to KL(p||q), KL(q||p) and |p - q|.
 #[inline(always)]
 #[allow(clippy::too_many_arguments)]
-fn pair_step<const L: u8>(x: &F, y: &F, er: &F, ec: &F, k: &PairConsts, f: &mut F, b: &mut F, t: &mut F, m: &mut F, sg: &mut F) {
+fn pair_step<const L: u8>(
+    x: &F,
+    y: &F,
+    er: &F,
+    ec: &F,
+    k: &PairConsts,
+    f: &mut F,
+    b: &mut F,
+    t: &mut F,
+    m: &mut F,
+    sg: &mut F,
+) {
     let ma = mul_add::<L>;
     let mut d = [0f32; W];
     for j in 0..W {
@@ -563,7 +610,17 @@ fn pair_step<const L: u8>(x: &F, y: &F, er: &F, ec: &F, k: &PairConsts, f: &mut 
             t[j] = ma(p, em1.abs(), t[j]);
             // For the normaliser correction (see compare_impl).
             m[j] = ma(p, em1, m[j]);
-            sg[j] = ma(q, if d[j] > 0.0 { 1.0 } else if d[j] < 0.0 { -1.0 } else { 0.0 }, sg[j]);
+            sg[j] = ma(
+                q,
+                if d[j] > 0.0 {
+                    1.0
+                } else if d[j] < 0.0 {
+                    -1.0
+                } else {
+                    0.0
+                },
+                sg[j],
+            );
         }
         return;
     }
@@ -580,7 +637,11 @@ fn pair_step<const L: u8>(x: &F, y: &F, er: &F, ec: &F, k: &PairConsts, f: &mut 
         let gd = d2 * (ev + od);
         // Direct forms: p d + (q - p) and (p - q) - q d.
         let fwd = if small { p * gd } else { ma(p, d, -pq) };
-        let rev = if small { (q * d2) * (ev - od) } else { ma(-q, d, pq) };
+        let rev = if small {
+            (q * d2) * (ev - od)
+        } else {
+            ma(-q, d, pq)
+        };
         // Close columns: |p - q| = p |g(d) - d| (see the series-only path).
         let tv = if small { p * (gd - d).abs() } else { pq.abs() };
         // Where one side has no mass the sum picks up the other side's mass
@@ -589,8 +650,18 @@ fn pair_step<const L: u8>(x: &F, y: &F, er: &F, ec: &F, k: &PairConsts, f: &mut 
         let rev = if q == 0.0 { p } else { rev };
         let tv = if p == 0.0 || q == 0.0 { pq.abs() } else { tv };
         // p (e^-d - 1), whose sum is 0 when d carries the exact normaliser difference.
-        let em = if small && p != 0.0 && q != 0.0 { p * (gd - d) } else { -pq };
-        let sd = if d > 0.0 { 1.0 } else if d < 0.0 { -1.0 } else { 0.0 };
+        let em = if small && p != 0.0 && q != 0.0 {
+            p * (gd - d)
+        } else {
+            -pq
+        };
+        let sd = if d > 0.0 {
+            1.0
+        } else if d < 0.0 {
+            -1.0
+        } else {
+            0.0
+        };
         let sq = if q == 0.0 { 0.0 } else { q * sd };
         f[j] += fwd;
         b[j] += rev;
@@ -601,9 +672,19 @@ fn pair_step<const L: u8>(x: &F, y: &F, er: &F, ec: &F, k: &PairConsts, f: &mut 
 }
 
 #[inline(always)]
-fn compare_impl<const L: u8>(x: &[f32], y: &[f32], er: &[f32], ec: &[f32], r: &RowNorm, c: &RowNorm) -> PairMetrics {
+fn compare_impl<const L: u8>(
+    x: &[f32],
+    y: &[f32],
+    er: &[f32],
+    ec: &[f32],
+    r: &RowNorm,
+    c: &RowNorm,
+) -> PairMetrics {
     let n = x.len();
-    assert!(y.len() == n && er.len() >= n && ec.len() >= n, "compare: row lengths differ");
+    assert!(
+        y.len() == n && er.len() >= n && ec.len() >= n,
+        "compare: row lengths differ"
+    );
     // d = (x - lse_r) - (y - lse_c) = (x - y) + (lse_c - lse_r); the constant in f64.
     // Its rounding is a uniform shift of d, to which the sum is insensitive to first order.
     // When both rows sit at about the same level, x - y is exact for close
@@ -615,9 +696,19 @@ fn compare_impl<const L: u8>(x: &[f32], y: &[f32], er: &[f32], ec: &[f32], r: &R
     let (sx, sy, cst) = if (r.max - c.max).abs() <= 1.0 {
         (0.0, 0.0, (c.lse - r.lse) as f32)
     } else {
-        (r.max, c.max, ((c.lse - c.max as f64) - (r.lse - r.max as f64)) as f32)
+        (
+            r.max,
+            c.max,
+            ((c.lse - c.max as f64) - (r.lse - r.max as f64)) as f32,
+        )
     };
-    let k = PairConsts { inv_r: (1.0 / r.sum) as f32, inv_c: (1.0 / c.sum) as f32, cst, sx, sy };
+    let k = PairConsts {
+        inv_r: (1.0 / r.sum) as f32,
+        inv_c: (1.0 / c.sum) as f32,
+        cst,
+        sx,
+        sy,
+    };
     let mut acc = [[0f64; W]; 5];
     let blocks = x
         .chunks(PAIR_BLOCK)
@@ -625,17 +716,41 @@ fn compare_impl<const L: u8>(x: &[f32], y: &[f32], er: &[f32], ec: &[f32], r: &R
         .zip(er[..n].chunks(PAIR_BLOCK))
         .zip(ec[..n].chunks(PAIR_BLOCK));
     for (((bx, by), br), bc) in blocks {
-        let (mut f, mut b, mut t, mut m, mut sg) = ([0f32; W], [0f32; W], [0f32; W], [0f32; W], [0f32; W]);
-        let (cx, cy, cr, cc) = (bx.chunks_exact(W), by.chunks_exact(W), br.chunks_exact(W), bc.chunks_exact(W));
-        let (tx, ty, tr, tc) = (cx.remainder(), cy.remainder(), cr.remainder(), cc.remainder());
+        let (mut f, mut b, mut t, mut m, mut sg) =
+            ([0f32; W], [0f32; W], [0f32; W], [0f32; W], [0f32; W]);
+        let (cx, cy, cr, cc) = (
+            bx.chunks_exact(W),
+            by.chunks_exact(W),
+            br.chunks_exact(W),
+            bc.chunks_exact(W),
+        );
+        let (tx, ty, tr, tc) = (
+            cx.remainder(),
+            cy.remainder(),
+            cr.remainder(),
+            cc.remainder(),
+        );
         for (((vx, vy), vr), vc) in cx.zip(cy).zip(cr).zip(cc) {
-            pair_step::<L>(load(vx), load(vy), load(vr), load(vc), &k, &mut f, &mut b, &mut t, &mut m, &mut sg);
+            pair_step::<L>(
+                load(vx),
+                load(vy),
+                load(vr),
+                load(vc),
+                &k,
+                &mut f,
+                &mut b,
+                &mut t,
+                &mut m,
+                &mut sg,
+            );
         }
         if !tx.is_empty() {
             // Padding columns have no mass on either side and add exactly 0.
             let (px, py) = (padded(tx, NEG_INF), padded(ty, NEG_INF));
             let (pr, pc) = (padded(tr, 0.0), padded(tc, 0.0));
-            pair_step::<L>(&px, &py, &pr, &pc, &k, &mut f, &mut b, &mut t, &mut m, &mut sg);
+            pair_step::<L>(
+                &px, &py, &pr, &pc, &k, &mut f, &mut b, &mut t, &mut m, &mut sg,
+            );
         }
         widen_add::<L>(&mut acc[0], &f);
         widen_add::<L>(&mut acc[1], &b);
@@ -652,7 +767,11 @@ fn compare_impl<const L: u8>(x: &[f32], y: &[f32], er: &[f32], ec: &[f32], r: &R
     let shift = hsum64(&acc[3]).ln_1p();
     let kl = hsum64(&acc[0]) - shift * hsum64(&acc[3]);
     let tv = 0.5 * (hsum64(&acc[2]) + shift * hsum64(&acc[4]));
-    PairMetrics { kl: kl.max(0.0), kl_reverse: hsum64(&acc[1]), tv: tv.max(0.0) }
+    PairMetrics {
+        kl: kl.max(0.0),
+        kl_reverse: hsum64(&acc[1]),
+        tv: tv.max(0.0),
+    }
 }
 
 dispatched! {
@@ -667,7 +786,10 @@ pub fn compare_rows(x: &[f32], y: &[f32], r: &RowNorm, c: &RowNorm) -> PairMetri
     let mut er = vec![0f32; x.len()];
     let mut ec = vec![0f32; y.len()];
     let mut b = vec![0f64; norm_blocks(x.len().max(y.len()))];
-    let (r2, c2) = (normalise_store(x, &mut er, &mut b), normalise_store(y, &mut ec, &mut b));
+    let (r2, c2) = (
+        normalise_store(x, &mut er, &mut b),
+        normalise_store(y, &mut ec, &mut b),
+    );
     debug_assert!(r2.is_ok() && c2.is_ok());
     compare_stored(x, y, &er, &ec, r, c)
 }
@@ -689,7 +811,11 @@ pub struct Rounding {
 #[inline(always)]
 fn step_sq(x: f32, r: Rounding) -> f64 {
     let ef = ((x.to_bits() >> 23) & 0xff) as i32;
-    let e = if ef == 0 || ef == 255 { i32::MIN / 4 } else { ef - 127 - r.mantissa_bits };
+    let e = if ef == 0 || ef == 255 {
+        i32::MIN / 4
+    } else {
+        ef - 127 - r.mantissa_bits
+    };
     let k = if e > r.min_exp { e } else { r.min_exp };
     f64::from_bits(((2 * k + 1023) as u64) << 52)
 }
@@ -710,7 +836,15 @@ fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> 
     let inv = (1.0 / sum) as f32;
     let mut acc = [0f64; W];
     #[inline(always)]
-    fn step<const L: u8>(x: &F, y: &F, m: f32, inv: f32, rx: Rounding, ry: Rounding, acc: &mut [f64; W]) {
+    fn step<const L: u8>(
+        x: &F,
+        y: &F,
+        m: f32,
+        inv: f32,
+        rx: Rounding,
+        ry: Rounding,
+        acc: &mut [f64; W],
+    ) {
         for j in 0..W {
             let p = exp_nonpos::<L>(x[j] - m) * inv;
             let w = (p * (1.0 - p)) as f64;
@@ -725,7 +859,15 @@ fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> 
         step::<L>(load(vx), load(vy), m, inv, rx, ry, &mut acc);
     }
     if !tx.is_empty() {
-        step::<L>(&padded(tx, NEG_INF), &padded(ty, 0.0), m, inv, rx, ry, &mut acc);
+        step::<L>(
+            &padded(tx, NEG_INF),
+            &padded(ty, 0.0),
+            m,
+            inv,
+            rx,
+            ry,
+            &mut acc,
+        );
     }
     0.5 * hsum64(&acc)
 }

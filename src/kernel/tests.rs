@@ -44,7 +44,9 @@ fn close(got: f64, want: f64, rel: f64, abs: f64) -> bool {
 
 /// Deterministic pseudo-random numbers for test rows.
 fn lcg(seed: &mut u64) -> f64 {
-    *seed = seed.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+    *seed = seed
+        .wrapping_mul(6364136223846793005)
+        .wrapping_add(1442695040888963407);
     ((*seed >> 11) as f64) / ((1u64 << 53) as f64)
 }
 
@@ -63,7 +65,11 @@ fn worked_example_bits() {
     let y: Vec<f32> = [0.25f32, 0.5, 0.25].iter().map(|v| v.ln()).collect();
     let (r, _, m) = run(&x, &y);
     let ln2 = std::f64::consts::LN_2;
-    assert!(close(r.entropy / ln2, 1.5, 1e-6, 0.0), "{}", r.entropy / ln2);
+    assert!(
+        close(r.entropy / ln2, 1.5, 1e-6, 0.0),
+        "{}",
+        r.entropy / ln2
+    );
     assert!(close(m.kl / ln2, 0.25, 1e-6, 0.0), "{}", m.kl / ln2);
 }
 
@@ -92,14 +98,27 @@ fn random_rows_match_f64() {
         (4097, 1.0, 1e-3, 30.0), // logits near 30
         (128_256, 3.0, 0.02, -5.0),
     ] {
-        let x: Vec<f32> = (0..n).map(|_| (shift + scale * normal(&mut s)) as f32).collect();
-        let y: Vec<f32> = x.iter().map(|&v| (v as f64 + eps * normal(&mut s)) as f32).collect();
+        let x: Vec<f32> = (0..n)
+            .map(|_| (shift + scale * normal(&mut s)) as f32)
+            .collect();
+        let y: Vec<f32> = x
+            .iter()
+            .map(|&v| (v as f64 + eps * normal(&mut s)) as f32)
+            .collect();
         let (r, c, m) = run(&x, &y);
         let (kl, kr, tv, hp, hq) = reference(&x, &y);
         assert!(close(m.kl, kl, 1e-4, 1e-7), "n={n} kl {} vs {kl}", m.kl);
-        assert!(close(m.kl_reverse, kr, 1e-4, 1e-7), "n={n} kr {} vs {kr}", m.kl_reverse);
+        assert!(
+            close(m.kl_reverse, kr, 1e-4, 1e-7),
+            "n={n} kr {} vs {kr}",
+            m.kl_reverse
+        );
         assert!(close(m.tv, tv, 1e-5, 1e-12), "n={n} tv {} vs {tv}", m.tv);
-        assert!(close(r.entropy, hp, 1e-5, 1e-6), "n={n} H {} vs {hp}", r.entropy);
+        assert!(
+            close(r.entropy, hp, 1e-5, 1e-6),
+            "n={n} H {} vs {hp}",
+            r.entropy
+        );
         assert!(close(c.entropy, hq, 1e-5, 1e-6));
     }
 }
@@ -111,10 +130,17 @@ fn tiny_divergences_keep_relative_precision() {
     for &eps in &[1e-3f64, 3e-4, 1e-4] {
         let n = 50_000;
         let x: Vec<f32> = (0..n).map(|_| (2.0 * normal(&mut s)) as f32).collect();
-        let y: Vec<f32> = x.iter().map(|&v| (v as f64 + eps * normal(&mut s)) as f32).collect();
+        let y: Vec<f32> = x
+            .iter()
+            .map(|&v| (v as f64 + eps * normal(&mut s)) as f32)
+            .collect();
         let (_, _, m) = run(&x, &y);
         let (kl, kr, tv, _, _) = reference(&x, &y);
-        assert!(close(m.tv, tv, 1e-4, 1e-12), "eps={eps}: tv {} vs {tv}", m.tv);
+        assert!(
+            close(m.tv, tv, 1e-4, 1e-12),
+            "eps={eps}: tv {} vs {tv}",
+            m.tv
+        );
         // The f64 reference itself loses precision here (it subtracts two
         // nearly equal log-probabilities); 1e-3 relative is still far below
         // anything a release decision could notice, and SPEC's absolute 1e-7 holds.
@@ -162,15 +188,28 @@ fn candidate_zero_where_reference_has_mass_is_infinite() {
     assert_eq!(m.kl, f64::INFINITY);
     // The reverse direction is finite: q has no mass where p is zero.
     let (_, kr, _, _, _) = reference(&x, &y);
-    assert!(close(m.kl_reverse, kr, 1e-5, 1e-9), "{} vs {kr}", m.kl_reverse);
+    assert!(
+        close(m.kl_reverse, kr, 1e-5, 1e-9),
+        "{} vs {kr}",
+        m.kl_reverse
+    );
 }
 
 #[test]
 fn faults_are_detected() {
     let mut b = vec![0f64; 1];
-    assert_eq!(normalise(&[0.0, f32::NAN], &mut b).unwrap_err(), RowFault::Nan);
-    assert_eq!(normalise(&[0.0, f32::INFINITY], &mut b).unwrap_err(), RowFault::PosInf);
-    assert_eq!(normalise(&[f32::NEG_INFINITY; 3], &mut b).unwrap_err(), RowFault::AllNegInf);
+    assert_eq!(
+        normalise(&[0.0, f32::NAN], &mut b).unwrap_err(),
+        RowFault::Nan
+    );
+    assert_eq!(
+        normalise(&[0.0, f32::INFINITY], &mut b).unwrap_err(),
+        RowFault::PosInf
+    );
+    assert_eq!(
+        normalise(&[f32::NEG_INFINITY; 3], &mut b).unwrap_err(),
+        RowFault::AllNegInf
+    );
 }
 
 #[test]
@@ -206,15 +245,23 @@ fn js_matches_direct_f64() {
 // Instruction-set paths, decoding, stored exponentials.
 
 fn levels() -> Vec<Level> {
-    [Level::Scalar, Level::Avx2, Level::Avx512].into_iter().filter(|&l| l <= detected_level()).collect()
+    [Level::Scalar, Level::Avx2, Level::Avx512]
+        .into_iter()
+        .filter(|&l| l <= detected_level())
+        .collect()
 }
 
 /// Rows of awkward lengths with -inf columns (shared and one-sided), ties
 /// for the maximum and values near 30.
 fn awkward_pair(n: usize, seed: u64) -> (Vec<f32>, Vec<f32>) {
     let mut s = seed;
-    let mut x: Vec<f32> = (0..n).map(|_| (30.0 + 3.0 * normal(&mut s)) as f32).collect();
-    let mut y: Vec<f32> = x.iter().map(|&v| (v as f64 + 0.05 * normal(&mut s)) as f32).collect();
+    let mut x: Vec<f32> = (0..n)
+        .map(|_| (30.0 + 3.0 * normal(&mut s)) as f32)
+        .collect();
+    let mut y: Vec<f32> = x
+        .iter()
+        .map(|&v| (v as f64 + 0.05 * normal(&mut s)) as f32)
+        .collect();
     for i in (7..n).step_by(13) {
         x[i] = f32::NEG_INFINITY;
         y[i] = f32::NEG_INFINITY;
@@ -246,9 +293,19 @@ fn run_at(l: Level, x: &[f32], y: &[f32]) -> Bits {
     let r = normalise_store_at(l, x, &mut er, &mut br).unwrap();
     let c = normalise_store_at(l, y, &mut ec, &mut bc).unwrap();
     let m = compare_stored_at(l, x, y, &er, &ec, &r, &c);
-    let rd = Rounding { mantissa_bits: 7, min_exp: -133 };
+    let rd = Rounding {
+        mantissa_bits: 7,
+        min_exp: -133,
+    };
     let floor = storage_floor_row_at(l, x, rd, y, rd).to_bits();
-    Bits { r, c, er: er.iter().map(|v| v.to_bits()).collect(), blocks: br.iter().map(|v| v.to_bits()).collect(), m, floor }
+    Bits {
+        r,
+        c,
+        er: er.iter().map(|v| v.to_bits()).collect(),
+        blocks: br.iter().map(|v| v.to_bits()).collect(),
+        m,
+        floor,
+    }
 }
 
 #[test]
@@ -257,15 +314,28 @@ fn vector_paths_give_identical_bits() {
     // they must agree to the last bit; so must the scalar build where it
     // fuses too (SCALAR_FMA); elsewhere it must agree to rounding.
     let ls = levels();
-    for &n in &[1usize, 2, 15, 16, 17, 63, 64, 65, 255, 256, 257, 1000, 4099, 32_003] {
+    for &n in &[
+        1usize, 2, 15, 16, 17, 63, 64, 65, 255, 256, 257, 1000, 4099, 32_003,
+    ] {
         let (x, y) = awkward_pair(n, n as u64 + 3);
         let base = run_at(ls[ls.len() - 1], &x, &y);
         for &l in &ls {
             let got = run_at(l, &x, &y);
             if l != Level::Scalar || SCALAR_FMA {
-                assert_eq!(got, base, "n={n}: {} differs from {}", l.name(), ls[ls.len() - 1].name());
+                assert_eq!(
+                    got,
+                    base,
+                    "n={n}: {} differs from {}",
+                    l.name(),
+                    ls[ls.len() - 1].name()
+                );
             } else {
-                assert!(close(got.m.kl, base.m.kl, 1e-6, 1e-12), "n={n}: scalar kl {} vs {}", got.m.kl, base.m.kl);
+                assert!(
+                    close(got.m.kl, base.m.kl, 1e-6, 1e-12),
+                    "n={n}: scalar kl {} vs {}",
+                    got.m.kl,
+                    base.m.kl
+                );
                 assert!(close(got.m.kl_reverse, base.m.kl_reverse, 1e-6, 1e-12));
                 assert!(close(got.r.lse, base.r.lse, 1e-12, 0.0));
                 assert_eq!(got.r.argmax, base.r.argmax);
@@ -277,7 +347,13 @@ fn vector_paths_give_identical_bits() {
 #[test]
 fn argmax_finds_the_first_maximum_in_any_lane_and_the_tail() {
     for &n in &[3usize, 16, 17, 100, 1000, 1003] {
-        for &(a, b) in &[(0usize, 1usize), (5, 2), (17, 1), (n - 1, n - 2), (n / 2, 1)] {
+        for &(a, b) in &[
+            (0usize, 1usize),
+            (5, 2),
+            (17, 1),
+            (n - 1, n - 2),
+            (n / 2, 1),
+        ] {
             if a >= n || b >= n || a == b {
                 continue;
             }
@@ -288,7 +364,12 @@ fn argmax_finds_the_first_maximum_in_any_lane_and_the_tail() {
             for l in levels() {
                 let mut e = vec![0f32; n];
                 let r = normalise_store_at(l, &x, &mut e, &mut bl).unwrap();
-                assert_eq!(r.argmax as usize, a.min(b), "n={n} maxima at {a} and {b}, {}", l.name());
+                assert_eq!(
+                    r.argmax as usize,
+                    a.min(b),
+                    "n={n} maxima at {a} and {b}, {}",
+                    l.name()
+                );
             }
         }
     }
@@ -306,10 +387,17 @@ fn stored_exponentials_and_block_sums() {
         let r = normalise_store_at(l, &x, &mut e, &mut bl).unwrap();
         for (i, (&v, &ev)) in x.iter().zip(&e).enumerate() {
             let want = ((v - m) as f64).exp();
-            assert!((ev as f64 - want).abs() <= 4.0 * f32::EPSILON as f64 * want, "{} col {i}: {ev} vs {want}", l.name());
+            assert!(
+                (ev as f64 - want).abs() <= 4.0 * f32::EPSILON as f64 * want,
+                "{} col {i}: {ev} vs {want}",
+                l.name()
+            );
         }
         for (k, &b) in bl.iter().enumerate() {
-            let want: f64 = e[k * NORM_BLOCK..((k + 1) * NORM_BLOCK).min(e.len())].iter().map(|&v| v as f64).sum();
+            let want: f64 = e[k * NORM_BLOCK..((k + 1) * NORM_BLOCK).min(e.len())]
+                .iter()
+                .map(|&v| v as f64)
+                .sum();
             assert!(close(b, want, 1e-6, 0.0), "block {k}: {b} vs {want}");
         }
         assert!(close(r.sum, bl.iter().sum(), 1e-12, 0.0));
@@ -345,9 +433,17 @@ fn sub_micro_nat_rows_keep_relative_precision_against_f64() {
     // KL from about 1e-6 down to 1e-11 nats; SPEC's accuracy demand is
     // max(1e-4 relative, 1e-7 absolute); we check 1e-4 relative alone.
     let mut s = 23u64;
-    for &(n, eps) in &[(32_000usize, 1e-3f64), (32_000, 1e-4), (128_256, 3e-5), (4_096, 1e-5)] {
+    for &(n, eps) in &[
+        (32_000usize, 1e-3f64),
+        (32_000, 1e-4),
+        (128_256, 3e-5),
+        (4_096, 1e-5),
+    ] {
         let x: Vec<f32> = (0..n).map(|_| (2.5 * normal(&mut s)) as f32).collect();
-        let y: Vec<f32> = x.iter().map(|&v| (v as f64 + eps * normal(&mut s)) as f32).collect();
+        let y: Vec<f32> = x
+            .iter()
+            .map(|&v| (v as f64 + eps * normal(&mut s)) as f32)
+            .collect();
         let (kl, kr) = reference_cancellation_free(&x, &y);
         for l in levels() {
             let (mut er, mut ec) = (vec![0f32; n], vec![0f32; n]);
@@ -356,8 +452,18 @@ fn sub_micro_nat_rows_keep_relative_precision_against_f64() {
             let c = normalise_store_at(l, &y, &mut ec, &mut b).unwrap();
             let m = compare_stored_at(l, &x, &y, &er, &ec, &r, &c);
             assert!(kl < 1e-5, "n={n} eps={eps}: {kl}");
-            assert!(close(m.kl, kl, 1e-4, 0.0), "{} n={n} eps={eps}: kl {} vs {kl}", l.name(), m.kl);
-            assert!(close(m.kl_reverse, kr, 1e-4, 0.0), "{} n={n} eps={eps}: kl_reverse {} vs {kr}", l.name(), m.kl_reverse);
+            assert!(
+                close(m.kl, kl, 1e-4, 0.0),
+                "{} n={n} eps={eps}: kl {} vs {kl}",
+                l.name(),
+                m.kl
+            );
+            assert!(
+                close(m.kl_reverse, kr, 1e-4, 0.0),
+                "{} n={n} eps={eps}: kl_reverse {} vs {kr}",
+                l.name(),
+                m.kl_reverse
+            );
         }
     }
 }
@@ -377,13 +483,21 @@ fn decoders_are_exact_for_every_half_and_bfloat_pattern() {
         for h in 0..=65535u16 {
             let want = half::f16::from_bits(h).to_f32();
             let got = out[h as usize];
-            assert!(got.to_bits() == want.to_bits() || (got.is_nan() && want.is_nan()), "{} f16 {h:#06x}: {got} vs {want}", l.name());
+            assert!(
+                got.to_bits() == want.to_bits() || (got.is_nan() && want.is_nan()),
+                "{} f16 {h:#06x}: {got} vs {want}",
+                l.name()
+            );
         }
         decode_bf16_at(l, &bytes[1..], &mut out);
         for h in 0..=65535u16 {
             let want = half::bf16::from_bits(h).to_f32();
             let got = out[h as usize];
-            assert!(got.to_bits() == want.to_bits() || (got.is_nan() && want.is_nan()), "{} bf16 {h:#06x}", l.name());
+            assert!(
+                got.to_bits() == want.to_bits() || (got.is_nan() && want.is_nan()),
+                "{} bf16 {h:#06x}",
+                l.name()
+            );
         }
         let f: Vec<f32> = (0..1000).map(|i| (i as f32 - 500.0) * 0.37).collect();
         let mut fb = vec![0u8; 1 + 4 * f.len()];
@@ -409,21 +523,43 @@ fn storage_floor_matches_the_f64_formula() {
     };
     for &(bits, min_exp) in &[(7, -133), (10, -24), (23, -149)] {
         let (x, y) = awkward_pair(3001, 5);
-        let x: Vec<f32> = x.iter().enumerate().map(|(i, v)| if i % 97 == 1 { 0.0 } else if i % 89 == 2 { 1e-41 } else { *v - 30.0 }).collect();
+        let x: Vec<f32> = x
+            .iter()
+            .enumerate()
+            .map(|(i, v)| {
+                if i % 97 == 1 {
+                    0.0
+                } else if i % 89 == 2 {
+                    1e-41
+                } else {
+                    *v - 30.0
+                }
+            })
+            .collect();
         let m = x.iter().cloned().fold(f32::NEG_INFINITY, f32::max) as f64;
         let s: f64 = x.iter().map(|&v| (v as f64 - m).exp()).sum();
         let mut want = 0f64;
         for (&a, &b) in x.iter().zip(&y) {
             let p = (a as f64 - m).exp() / s;
             if p > 0.0 && b.is_finite() {
-                want += p * (1.0 - p) * (step(a, bits, min_exp).powi(2) + step(b, bits, min_exp).powi(2)) / 12.0;
+                want += p
+                    * (1.0 - p)
+                    * (step(a, bits, min_exp).powi(2) + step(b, bits, min_exp).powi(2))
+                    / 12.0;
             }
         }
         want *= 0.5;
-        let r = Rounding { mantissa_bits: bits, min_exp };
+        let r = Rounding {
+            mantissa_bits: bits,
+            min_exp,
+        };
         for l in levels() {
             let got = storage_floor_row_at(l, &x, r, &y, r);
-            assert!(close(got, want, 1e-5, 0.0), "{} bits {bits}: {got} vs {want}", l.name());
+            assert!(
+                close(got, want, 1e-5, 0.0),
+                "{} bits {bits}: {got} vs {want}",
+                l.name()
+            );
         }
     }
 }
@@ -438,20 +574,51 @@ fn faults_are_found_anywhere_in_the_row_at_every_level() {
                 let mut e = vec![0f32; n];
                 let mut x = base.clone();
                 x[at] = f32::NAN;
-                assert_eq!(normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(), RowFault::Nan, "{} n={n} at={at}", l.name());
+                assert_eq!(
+                    normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(),
+                    RowFault::Nan,
+                    "{} n={n} at={at}",
+                    l.name()
+                );
                 assert_eq!(normalise_at(l, &x, &mut b).unwrap_err(), RowFault::Nan);
                 // NaN is reported before +inf.
                 x[(at + 1) % n] = f32::INFINITY;
-                assert_eq!(normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(), RowFault::Nan);
+                assert_eq!(
+                    normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(),
+                    RowFault::Nan
+                );
                 let mut x = base.clone();
                 x[at] = f32::INFINITY;
-                assert_eq!(normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(), RowFault::PosInf);
+                assert_eq!(
+                    normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(),
+                    RowFault::PosInf
+                );
                 let mut x = vec![f32::NEG_INFINITY; n];
-                assert_eq!(normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(), RowFault::AllNegInf);
+                assert_eq!(
+                    normalise_store_at(l, &x, &mut e, &mut b).unwrap_err(),
+                    RowFault::AllNegInf
+                );
                 x[at] = -3.0;
                 let r = normalise_store_at(l, &x, &mut e, &mut b).unwrap();
                 assert_eq!((r.argmax as usize, r.entropy), (at, 0.0));
-                assert!(storage_floor_row_at(l, &{ let mut y = base.clone(); y[at] = f32::NAN; y }, Rounding { mantissa_bits: 7, min_exp: -133 }, &base, Rounding { mantissa_bits: 7, min_exp: -133 }).is_nan());
+                assert!(storage_floor_row_at(
+                    l,
+                    &{
+                        let mut y = base.clone();
+                        y[at] = f32::NAN;
+                        y
+                    },
+                    Rounding {
+                        mantissa_bits: 7,
+                        min_exp: -133
+                    },
+                    &base,
+                    Rounding {
+                        mantissa_bits: 7,
+                        min_exp: -133
+                    }
+                )
+                .is_nan());
             }
         }
     }
@@ -462,7 +629,10 @@ fn normalise_without_storing_matches_storing() {
     for l in levels() {
         let (x, _) = awkward_pair(4099, 9);
         let mut e = vec![0f32; x.len()];
-        let (mut b1, mut b2) = (vec![0f64; norm_blocks(x.len())], vec![0f64; norm_blocks(x.len())]);
+        let (mut b1, mut b2) = (
+            vec![0f64; norm_blocks(x.len())],
+            vec![0f64; norm_blocks(x.len())],
+        );
         let a = normalise_store_at(l, &x, &mut e, &mut b1).unwrap();
         let b = normalise_at(l, &x, &mut b2).unwrap();
         assert_eq!(a, b);
@@ -477,7 +647,12 @@ fn top_k_matches_a_full_sort_at_every_level() {
     x[100] = f32::NAN;
     x[2999] = 60.0;
     x[17] = 60.0;
-    let mut want: Vec<(u32, f32)> = x.iter().enumerate().filter(|(_, v)| !v.is_nan()).map(|(i, &v)| (i as u32, v)).collect();
+    let mut want: Vec<(u32, f32)> = x
+        .iter()
+        .enumerate()
+        .filter(|(_, v)| !v.is_nan())
+        .map(|(i, &v)| (i as u32, v))
+        .collect();
     want.sort_by(|a, b| b.1.total_cmp(&a.1).then(a.0.cmp(&b.0)));
     for l in levels() {
         for k in [0usize, 1, 5, 20] {
@@ -492,13 +667,27 @@ fn top_k_matches_a_full_sort_at_every_level() {
 #[test]
 fn total_variation_of_close_rows_keeps_relative_precision() {
     let mut s = 23u64;
-    for &(n, eps, shift) in &[(50usize, 1e-3f64, 5.0f64), (50, 3e-4, 30.0), (4000, 1e-3, -12.0), (32000, 2e-4, 20.0)] {
+    for &(n, eps, shift) in &[
+        (50usize, 1e-3f64, 5.0f64),
+        (50, 3e-4, 30.0),
+        (4000, 1e-3, -12.0),
+        (32000, 2e-4, 20.0),
+    ] {
         for _ in 0..5 {
-            let x: Vec<f32> = (0..n).map(|_| (shift + 3.0 * normal(&mut s)) as f32).collect();
-            let y: Vec<f32> = x.iter().map(|&v| (v as f64 + eps * normal(&mut s)) as f32).collect();
+            let x: Vec<f32> = (0..n)
+                .map(|_| (shift + 3.0 * normal(&mut s)) as f32)
+                .collect();
+            let y: Vec<f32> = x
+                .iter()
+                .map(|&v| (v as f64 + eps * normal(&mut s)) as f32)
+                .collect();
             let (_, _, m) = run(&x, &y);
             let (_, _, tv, _, _) = reference(&x, &y);
-            assert!(close(m.tv, tv, 2e-5, 1e-12), "n={n} eps={eps}: tv {} vs {tv}", m.tv);
+            assert!(
+                close(m.tv, tv, 2e-5, 1e-12),
+                "n={n} eps={eps}: tv {} vs {tv}",
+                m.tv
+            );
         }
     }
 }
@@ -509,15 +698,33 @@ fn total_variation_of_close_rows_keeps_relative_precision() {
 #[test]
 fn rows_at_different_levels_compare_exactly() {
     let mut s = 31u64;
-    for &(eps, lift) in &[(1e-3f64, 0.0f64), (1e-2, 0.0), (1e-3, 1.0e4), (3e-2, -500.0)] {
+    for &(eps, lift) in &[
+        (1e-3f64, 0.0f64),
+        (1e-2, 0.0),
+        (1e-3, 1.0e4),
+        (3e-2, -500.0),
+    ] {
         let n = 20_000;
-        let x: Vec<f32> = (0..n).map(|_| (25.0 + 3.0 * normal(&mut s)) as f32).collect();
+        let x: Vec<f32> = (0..n)
+            .map(|_| (25.0 + 3.0 * normal(&mut s)) as f32)
+            .collect();
         let mx = x.iter().cloned().fold(f32::NEG_INFINITY, f32::max) as f64;
-        let y: Vec<f32> = x.iter().map(|&v| (v as f64 - mx + lift + eps * normal(&mut s)) as f32).collect();
+        let y: Vec<f32> = x
+            .iter()
+            .map(|&v| (v as f64 - mx + lift + eps * normal(&mut s)) as f32)
+            .collect();
         let (_, _, m) = run(&x, &y);
         let (kl, kr, tv, _, _) = reference(&x, &y);
-        assert!(close(m.kl, kl, 1e-4, 1e-9), "eps={eps} lift={lift}: kl {} vs {kl}", m.kl);
-        assert!(close(m.kl_reverse, kr, 1e-3, 1e-9), "kl_reverse {} vs {kr}", m.kl_reverse);
+        assert!(
+            close(m.kl, kl, 1e-4, 1e-9),
+            "eps={eps} lift={lift}: kl {} vs {kl}",
+            m.kl
+        );
+        assert!(
+            close(m.kl_reverse, kr, 1e-3, 1e-9),
+            "kl_reverse {} vs {kr}",
+            m.kl_reverse
+        );
         assert!(close(m.tv, tv, 1e-3, 1e-9), "tv {} vs {tv}", m.tv);
     }
 }

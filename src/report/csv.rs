@@ -3,7 +3,9 @@
 //! The columns are SPEC's. With several candidates a leading `candidate`
 //! column (0-based, in command-line order) keeps them in one file.
 
-use crate::engine::{PositionSink, PositionValues, ENT_CAND, ENT_REF, JS, KL, KL_REV, NLL_CAND, NLL_REF, TOP1, TV};
+use crate::engine::{
+    PositionSink, PositionValues, ENT_CAND, ENT_REF, JS, KL, KL_REV, NLL_CAND, NLL_REF, TOP1, TV,
+};
 use crate::error::Result;
 use crate::output::AtomicFile;
 use std::io::Write;
@@ -19,7 +21,12 @@ pub struct CsvSink {
 }
 
 impl CsvSink {
-    pub fn create(path: &std::path::Path, candidates: usize, js: bool, bits: bool) -> Result<CsvSink> {
+    pub fn create(
+        path: &std::path::Path,
+        candidates: usize,
+        js: bool,
+        bits: bool,
+    ) -> Result<CsvSink> {
         let mut file = AtomicFile::create(path)?;
         let multi = candidates > 1;
         let mut h = String::new();
@@ -31,9 +38,21 @@ impl CsvSink {
             h.push_str(",js");
         }
         h.push('\n');
-        file.writer().write_all(h.as_bytes()).map_err(|e| file.write_err(e))?;
-        let scale = if bits { 1.0 / std::f64::consts::LN_2 } else { 1.0 };
-        Ok(CsvSink { file, multi, js, scale, line: String::with_capacity(256) })
+        file.writer()
+            .write_all(h.as_bytes())
+            .map_err(|e| file.write_err(e))?;
+        let scale = if bits {
+            1.0 / std::f64::consts::LN_2
+        } else {
+            1.0
+        };
+        Ok(CsvSink {
+            file,
+            multi,
+            js,
+            scale,
+            line: String::with_capacity(256),
+        })
     }
 
     pub fn finish(self) -> Result<()> {
@@ -56,7 +75,15 @@ fn num(s: &mut String, v: f64) {
 }
 
 impl PositionSink for CsvSink {
-    fn position(&mut self, cand: usize, row: usize, prompt: usize, position: usize, target: Option<i64>, v: &PositionValues) -> Result<()> {
+    fn position(
+        &mut self,
+        cand: usize,
+        row: usize,
+        prompt: usize,
+        position: usize,
+        target: Option<i64>,
+        v: &PositionValues,
+    ) -> Result<()> {
         use std::fmt::Write as _;
         let s = &mut self.line;
         s.clear();
@@ -68,7 +95,16 @@ impl PositionSink for CsvSink {
             let _ = write!(s, "{t}");
         }
         let m = &v.m;
-        for (i, scaled) in [(KL, true), (KL_REV, true), (TV, false), (TOP1, false), (ENT_REF, true), (ENT_CAND, true), (NLL_REF, true), (NLL_CAND, true)] {
+        for (i, scaled) in [
+            (KL, true),
+            (KL_REV, true),
+            (TV, false),
+            (TOP1, false),
+            (ENT_REF, true),
+            (ENT_CAND, true),
+            (NLL_REF, true),
+            (NLL_CAND, true),
+        ] {
             s.push(',');
             if i == TOP1 {
                 let _ = write!(s, "{}", m[i] as u8);
@@ -82,7 +118,11 @@ impl PositionSink for CsvSink {
         }
         s.push('\n');
         let line = std::mem::take(&mut self.line);
-        let r = self.file.writer().write_all(line.as_bytes()).map_err(|e| self.file.write_err(e));
+        let r = self
+            .file
+            .writer()
+            .write_all(line.as_bytes())
+            .map_err(|e| self.file.write_err(e));
         self.line = line;
         r
     }
@@ -92,7 +132,15 @@ impl PositionSink for CsvSink {
 pub struct NoSink;
 
 impl PositionSink for NoSink {
-    fn position(&mut self, _: usize, _: usize, _: usize, _: usize, _: Option<i64>, _: &PositionValues) -> Result<()> {
+    fn position(
+        &mut self,
+        _: usize,
+        _: usize,
+        _: usize,
+        _: usize,
+        _: Option<i64>,
+        _: &PositionValues,
+    ) -> Result<()> {
         Ok(())
     }
 }

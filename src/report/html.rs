@@ -16,9 +16,13 @@ use std::io::Write;
 pub struct Html;
 
 /// One colour per candidate, in command-line order.
-const PALETTE: [&str; 6] = ["#23708f", "#c25a1b", "#6b4d9a", "#2f7d4a", "#b33d62", "#7d6a1c"];
+const PALETTE: [&str; 6] = [
+    "#23708f", "#c25a1b", "#6b4d9a", "#2f7d4a", "#b33d62", "#7d6a1c",
+];
 /// Lighter fills of the same hues (bands, bars).
-const PALE: [&str; 6] = ["#b9d7e3", "#f1cdb6", "#d6cbe8", "#bfdcc8", "#ecc1cf", "#e3d9b0"];
+const PALE: [&str; 6] = [
+    "#b9d7e3", "#f1cdb6", "#d6cbe8", "#bfdcc8", "#ecc1cf", "#e3d9b0",
+];
 
 fn colour(i: usize) -> &'static str {
     PALETTE[i % PALETTE.len()]
@@ -49,7 +53,11 @@ pub fn num(v: f64) -> String {
         return "–".into();
     }
     if v.is_infinite() {
-        return if v > 0.0 { "∞".into() } else { "−∞".into() };
+        return if v > 0.0 {
+            "∞".into()
+        } else {
+            "−∞".into()
+        };
     }
     if v == 0.0 {
         return "0".into();
@@ -118,11 +126,23 @@ struct Scale {
 
 impl Scale {
     fn lin(d0: f64, d1: f64, r0: f64, r1: f64) -> Scale {
-        Scale { d0, d1, r0, r1, log: false }
+        Scale {
+            d0,
+            d1,
+            r0,
+            r1,
+            log: false,
+        }
     }
     /// `d0`, `d1` are exponents of ten.
     fn log(d0: f64, d1: f64, r0: f64, r1: f64) -> Scale {
-        Scale { d0, d1, r0, r1, log: true }
+        Scale {
+            d0,
+            d1,
+            r0,
+            r1,
+            log: true,
+        }
     }
     fn at(&self, v: f64) -> f64 {
         let x = if self.log {
@@ -134,7 +154,11 @@ impl Scale {
         } else {
             v
         };
-        let t = if self.d1 == self.d0 { 0.5 } else { (x - self.d0) / (self.d1 - self.d0) };
+        let t = if self.d1 == self.d0 {
+            0.5
+        } else {
+            (x - self.d0) / (self.d1 - self.d0)
+        };
         self.r0 + t.clamp(-0.02, 1.02) * (self.r1 - self.r0)
     }
 }
@@ -157,17 +181,36 @@ impl Svg {
     }
     fn wide(label: &str, w: f64, h: f64, class: &str) -> Svg {
         let mut s = String::new();
-        let _ = write!(s, r#"<svg class="{class}" viewBox="0 0 {} {}" role="img" aria-label="{}">"#, f(w), f(h), esc(label));
+        let _ = write!(
+            s,
+            r#"<svg class="{class}" viewBox="0 0 {} {}" role="img" aria-label="{}">"#,
+            f(w),
+            f(h),
+            esc(label)
+        );
         Svg { s }
     }
     fn raw(&mut self, x: &str) {
         self.s.push_str(x);
     }
     fn line(&mut self, x1: f64, y1: f64, x2: f64, y2: f64, class: &str) {
-        let _ = write!(self.s, r#"<path class="{class}" d="M{} {}L{} {}"/>"#, f(x1), f(y1), f(x2), f(y2));
+        let _ = write!(
+            self.s,
+            r#"<path class="{class}" d="M{} {}L{} {}"/>"#,
+            f(x1),
+            f(y1),
+            f(x2),
+            f(y2)
+        );
     }
     fn text(&mut self, x: f64, y: f64, anchor: &str, class: &str, t: &str) {
-        let _ = write!(self.s, r#"<text x="{}" y="{}" text-anchor="{anchor}" class="{class}">{}</text>"#, f(x), f(y), esc(t));
+        let _ = write!(
+            self.s,
+            r#"<text x="{}" y="{}" text-anchor="{anchor}" class="{class}">{}</text>"#,
+            f(x),
+            f(y),
+            esc(t)
+        );
     }
     fn finish(mut self) -> String {
         self.s.push_str("</svg>");
@@ -189,7 +232,14 @@ fn log_x_axis(svg: &mut Svg, sx: &Scale, e0: i32, e1: i32, y0: f64, y1: f64, tit
 }
 
 fn frame(svg: &mut Svg, x0: f64, y0: f64, x1: f64, y1: f64) {
-    let _ = write!(svg.s, r#"<rect class="frame" x="{}" y="{}" width="{}" height="{}"/>"#, f(x0), f(y1), f(x1 - x0), f(y0 - y1));
+    let _ = write!(
+        svg.s,
+        r#"<rect class="frame" x="{}" y="{}" width="{}" height="{}"/>"#,
+        f(x0),
+        f(y1),
+        f(x1 - x0),
+        f(y0 - y1)
+    );
 }
 
 /// A short "nice" step for a linear axis covering `span` in about `n` steps.
@@ -239,11 +289,16 @@ fn gate_value(g: &Gate) -> String {
 fn gate_strip(g: &Gate) -> String {
     let (w, h) = (190.0, 22.0);
     let is_top1 = g.name == "min-top1";
-    let vals: Vec<f64> = [Some(g.value), Some(g.limit), g.interval.map(|i| i[0]), g.interval.map(|i| i[1])]
-        .into_iter()
-        .flatten()
-        .filter(|v| v.is_finite())
-        .collect();
+    let vals: Vec<f64> = [
+        Some(g.value),
+        Some(g.limit),
+        g.interval.map(|i| i[0]),
+        g.interval.map(|i| i[1]),
+    ]
+    .into_iter()
+    .flatten()
+    .filter(|v| v.is_finite())
+    .collect();
     if vals.is_empty() {
         return String::new();
     }
@@ -254,23 +309,51 @@ fn gate_strip(g: &Gate) -> String {
     } else {
         let pos: Vec<f64> = vals.iter().cloned().filter(|&v| v > 0.0).collect();
         let lo = pos.iter().cloned().fold(f64::INFINITY, f64::min).log10();
-        let hi = pos.iter().cloned().fold(f64::NEG_INFINITY, f64::max).log10();
-        let (lo, hi) = if lo.is_finite() { (lo - 0.4, hi + 0.4) } else { (-3.0, 0.0) };
+        let hi = pos
+            .iter()
+            .cloned()
+            .fold(f64::NEG_INFINITY, f64::max)
+            .log10();
+        let (lo, hi) = if lo.is_finite() {
+            (lo - 0.4, hi + 0.4)
+        } else {
+            (-3.0, 0.0)
+        };
         Scale::log(lo, hi, 8.0, w - 8.0)
     };
     let mut s = String::new();
-    let _ = write!(s, r#"<svg class="strip" viewBox="0 0 {w} {h}" role="img" aria-label="value against limit">"#);
+    let _ = write!(
+        s,
+        r#"<svg class="strip" viewBox="0 0 {w} {h}" role="img" aria-label="value against limit">"#
+    );
     // The side of the limit that fails is shaded.
     let xl = sc.at(g.limit);
     let (fx0, fx1) = if is_top1 { (8.0, xl) } else { (xl, w - 8.0) };
-    let _ = write!(s, r#"<rect class="failside" x="{}" y="3" width="{}" height="16"/>"#, f(fx0.min(fx1)), f((fx1 - fx0).abs()));
+    let _ = write!(
+        s,
+        r#"<rect class="failside" x="{}" y="3" width="{}" height="16"/>"#,
+        f(fx0.min(fx1)),
+        f((fx1 - fx0).abs())
+    );
     let _ = write!(s, r#"<path class="stripaxis" d="M8 11H{}"/>"#, f(w - 8.0));
     if let Some([a, b]) = g.interval {
-        let _ = write!(s, r#"<path class="whisker" d="M{} 11H{}M{} 7V15M{} 7V15"/>"#, f(sc.at(a)), f(sc.at(b)), f(sc.at(a)), f(sc.at(b)));
+        let _ = write!(
+            s,
+            r#"<path class="whisker" d="M{} 11H{}M{} 7V15M{} 7V15"/>"#,
+            f(sc.at(a)),
+            f(sc.at(b)),
+            f(sc.at(a)),
+            f(sc.at(b))
+        );
     }
     let _ = write!(s, r#"<path class="limit" d="M{} 2V20"/>"#, f(xl));
     let cls = if g.pass { "dot pass" } else { "dot fail" };
-    let _ = write!(s, r#"<circle class="{cls}" cx="{}" cy="11" r="4.5"><title>value {}</title></circle>"#, f(sc.at(g.value)), esc(&gate_value(g)));
+    let _ = write!(
+        s,
+        r#"<circle class="{cls}" cx="{}" cy="11" r="4.5"><title>value {}</title></circle>"#,
+        f(sc.at(g.value)),
+        esc(&gate_value(g))
+    );
     s.push_str("</svg>");
     s
 }
@@ -299,10 +382,20 @@ fn verdict_cards(out: &mut String, r: &Report, cands: &[Cand]) {
         if !c.gates.is_empty() {
             out.push_str(r#"<table class="gates">"#);
             for g in &c.gates {
-                let mark = if g.pass { r#"<span class="ok">pass</span>"# } else { r#"<span class="bad">fail</span>"# };
+                let mark = if g.pass {
+                    r#"<span class="ok">pass</span>"#
+                } else {
+                    r#"<span class="bad">fail</span>"#
+                };
                 let note = if g.uncertain {
-                    let iv = g.interval.map(|[a, b]| format!(" ({} … {})", num(a), num(b))).unwrap_or_default();
-                    format!(r#"<div class="unsure">uncertain: the limit lies inside the 95% interval{}</div>"#, esc(&iv))
+                    let iv = g
+                        .interval
+                        .map(|[a, b]| format!(" ({} … {})", num(a), num(b)))
+                        .unwrap_or_default();
+                    format!(
+                        r#"<div class="unsure">uncertain: the limit lies inside the 95% interval{}</div>"#,
+                        esc(&iv)
+                    )
                 } else {
                     String::new()
                 };
@@ -321,7 +414,11 @@ fn verdict_cards(out: &mut String, r: &Report, cands: &[Cand]) {
         }
         let w = c.warnings.len();
         if w > 0 {
-            let _ = write!(out, r##"<p class="small warnlink"><a href="#warnings">{w} warning{}</a> below</p>"##, if w == 1 { "" } else { "s" });
+            let _ = write!(
+                out,
+                r##"<p class="small warnlink"><a href="#warnings">{w} warning{}</a> below</p>"##,
+                if w == 1 { "" } else { "s" }
+            );
         }
         out.push_str("</div>");
     }
@@ -338,7 +435,10 @@ fn ranking(out: &mut String, r: &Report) {
     }
     out.push_str(r#"<section id="ranking"><h2>Ranking</h2><p class="lead">Candidates by mean kl, lowest first. “Next below” tells whether the paired difference to the next candidate, measured on the same positions, excludes zero at 95%.</p><table class="data"><thead><tr><th>rank</th><th>candidate</th><th>mean kl</th><th>95% interval</th><th>p99</th><th>top-1 agreement</th><th>gates</th><th>next below</th></tr></thead><tbody>"#);
     for e in &r.ranking {
-        let ci = e.kl_ci95.map(|[a, b]| format!("{} … {}", num(a), num(b))).unwrap_or_else(|| "–".into());
+        let ci = e
+            .kl_ci95
+            .map(|[a, b]| format!("{} … {}", num(a), num(b)))
+            .unwrap_or_else(|| "–".into());
         let next = match e.vs_next {
             Some("lower") => "clearly lower",
             Some(_) => "not distinguishable",
@@ -397,14 +497,41 @@ fn pairs_plot(r: &Report) -> String {
     let mut t = -m;
     while t <= m + 1e-12 * m {
         let x = sx.at(t);
-        svg.line(x, yb, x, MT - 6.0, if t.abs() < 1e-12 * m { "zero" } else { "grid" });
-        svg.text(x, yb + 14.0, "middle", "tick", &tick_num(if t.abs() < 1e-12 * m { 0.0 } else { t }));
+        svg.line(
+            x,
+            yb,
+            x,
+            MT - 6.0,
+            if t.abs() < 1e-12 * m { "zero" } else { "grid" },
+        );
+        svg.text(
+            x,
+            yb + 14.0,
+            "middle",
+            "tick",
+            &tick_num(if t.abs() < 1e-12 * m { 0.0 } else { t }),
+        );
         t += step;
     }
-    svg.text((x0 + x1) / 2.0, yb + 31.0, "middle", "axis", &format!("difference of mean kl ({}) — left of zero: the first is lower", r.units));
+    svg.text(
+        (x0 + x1) / 2.0,
+        yb + 31.0,
+        "middle",
+        "axis",
+        &format!(
+            "difference of mean kl ({}) — left of zero: the first is lower",
+            r.units
+        ),
+    );
     for (j, p) in r.comparisons.iter().enumerate() {
         let y = MT + rowh * (j as f64 + 0.5);
-        svg.text(x0 - 8.0, y - 2.0, "end", "label", &format!("{} − {}", p.a_name, p.b_name));
+        svg.text(
+            x0 - 8.0,
+            y - 2.0,
+            "end",
+            "label",
+            &format!("{} − {}", p.a_name, p.b_name),
+        );
         let verdict = match p.verdict {
             "a lower" => format!("{} lower", p.a_name),
             "b lower" => format!("{} lower", p.b_name),
@@ -412,9 +539,24 @@ fn pairs_plot(r: &Report) -> String {
         };
         svg.text(x0 - 8.0, y + 10.0, "end", "sublabel", &verdict);
         if let Some([a, b]) = p.ci95 {
-            let _ = write!(svg.s, r#"<path class="whisk" d="M{} {}H{}M{} {}V{}M{} {}V{}"/>"#, f(sx.at(a)), f(y), f(sx.at(b)), f(sx.at(a)), f(y - 5.0), f(y + 5.0), f(sx.at(b)), f(y - 5.0), f(y + 5.0));
+            let _ = write!(
+                svg.s,
+                r#"<path class="whisk" d="M{} {}H{}M{} {}V{}M{} {}V{}"/>"#,
+                f(sx.at(a)),
+                f(y),
+                f(sx.at(b)),
+                f(sx.at(a)),
+                f(y - 5.0),
+                f(y + 5.0),
+                f(sx.at(b)),
+                f(y - 5.0),
+                f(y + 5.0)
+            );
         }
-        let ci = p.ci95.map(|[a, b]| format!(", 95% {} … {}", num(a), num(b))).unwrap_or_default();
+        let ci = p
+            .ci95
+            .map(|[a, b]| format!(", 95% {} … {}", num(a), num(b)))
+            .unwrap_or_default();
         let _ = write!(
             svg.s,
             r#"<circle class="pt" cx="{}" cy="{}" r="4.5"><title>{} minus {}: {}{} ({} positions)</title></circle>"#,
@@ -431,14 +573,22 @@ fn pairs_plot(r: &Report) -> String {
 }
 
 fn ci_text(ci: Option<[f64; 2]>) -> String {
-    ci.map(|[a, b]| format!(r#"<div class="ci">{} … {}</div>"#, num(a), num(b))).unwrap_or_default()
+    ci.map(|[a, b]| format!(r#"<div class="ci">{} … {}</div>"#, num(a), num(b)))
+        .unwrap_or_default()
 }
 
 fn summary(out: &mut String, r: &Report, cands: &[Cand]) {
     let u = r.units;
-    out.push_str(r#"<section id="summary"><h2>Summary</h2><table class="data summary"><thead><tr><th></th>"#);
+    out.push_str(
+        r#"<section id="summary"><h2>Summary</h2><table class="data summary"><thead><tr><th></th>"#,
+    );
     for k in cands {
-        let _ = write!(out, r#"<th><span class="swatch" style="--c:{}"></span>{}</th>"#, colour(k.i), esc(&k.c.name));
+        let _ = write!(
+            out,
+            r#"<th><span class="swatch" style="--c:{}"></span>{}</th>"#,
+            colour(k.i),
+            esc(&k.c.name)
+        );
     }
     out.push_str("</tr></thead><tbody>");
     let mut row = |label: &str, cell: &dyn Fn(&CandidateReport) -> String| {
@@ -449,26 +599,49 @@ fn summary(out: &mut String, r: &Report, cands: &[Cand]) {
         out.push_str("</tr>");
     };
     row("positions counted", &|c| c.positions.to_string());
-    row(&format!("mean kl ({u}) <span class=\"ci\">95% interval</span>"), &|c| format!("<b>{}</b>{}", num(c.kl.mean), ci_text(c.kl.ci95)));
+    row(
+        &format!("mean kl ({u}) <span class=\"ci\">95% interval</span>"),
+        &|c| format!("<b>{}</b>{}", num(c.kl.mean), ci_text(c.kl.ci95)),
+    );
     row("median kl", &|c| num(c.kl.p50));
     row("90th percentile", &|c| num(c.kl.p90));
-    row("99th percentile <span class=\"ci\">95% interval</span>", &|c| format!("{}{}", num(c.kl.p99), ci_text(c.kl_p99_ci95)));
+    row(
+        "99th percentile <span class=\"ci\">95% interval</span>",
+        &|c| format!("{}{}", num(c.kl.p99), ci_text(c.kl_p99_ci95)),
+    );
     row("99.9th percentile", &|c| num(c.kl.p999));
     row("largest kl", &|c| num(c.kl.max));
-    row(&format!("reverse kl, mean ({u})"), &|c| num(c.kl_reverse.mean));
+    row(&format!("reverse kl, mean ({u})"), &|c| {
+        num(c.kl_reverse.mean)
+    });
     if cands.iter().any(|k| k.c.js.is_some()) {
-        row(&format!("Jensen-Shannon, mean ({u})"), &|c| c.js.as_ref().map(|a| num(a.mean)).unwrap_or_else(|| "–".into()));
+        row(&format!("Jensen-Shannon, mean ({u})"), &|c| {
+            c.js.as_ref()
+                .map(|a| num(a.mean))
+                .unwrap_or_else(|| "–".into())
+        });
     }
     row("total variation, mean", &|c| num(c.tv.mean));
     row("top-1 agreement", &|c| pct(c.top1_agree));
-    row(&format!("entropy reference / candidate ({u})"), &|c| format!("{} / {}", num(c.entropy_ref.mean), num(c.entropy_cand.mean)));
-    row("perplexity reference / candidate", &|c| match (c.ppl_ref, c.ppl_cand) {
-        (Some(a), Some(b)) => format!("{} / {}", num(a), num(b)),
-        _ => "no targets".into(),
+    row(&format!("entropy reference / candidate ({u})"), &|c| {
+        format!("{} / {}", num(c.entropy_ref.mean), num(c.entropy_cand.mean))
     });
-    row("perplexity ratio", &|c| c.ppl_ratio.map(|x| format!("{x:.4}")).unwrap_or_else(|| "–".into()));
+    row(
+        "perplexity reference / candidate",
+        &|c| match (c.ppl_ref, c.ppl_cand) {
+            (Some(a), Some(b)) => format!("{} / {}", num(a), num(b)),
+            _ => "no targets".into(),
+        },
+    );
+    row("perplexity ratio", &|c| {
+        c.ppl_ratio
+            .map(|x| format!("{x:.4}"))
+            .unwrap_or_else(|| "–".into())
+    });
     row(&format!("storage floor ({u})"), &|c| num(c.storage_floor));
-    row("skipped rows / infinite kl", &|c| format!("{} / {}", c.skipped_rows, c.infinite_kl));
+    row("skipped rows / infinite kl", &|c| {
+        format!("{} / {}", c.skipped_rows, c.infinite_kl)
+    });
     out.push_str("</tbody></table>");
     let _ = write!(
         out,
@@ -546,20 +719,48 @@ fn distribution(out: &mut String, r: &Report, cands: &[Cand]) {
         // Storage floor zone.
         if c.storage_floor > 0.0 && c.storage_floor.is_finite() {
             let xf = sx.at(c.storage_floor);
-            let _ = write!(svg.s, r#"<rect class="floor" x="{}" y="{}" width="{}" height="{}"><title>storage floor {} {u}</title></rect>"#, f(x0), f(y1), f((xf - x0).max(0.0)), f(y0 - y1), esc(&num(c.storage_floor)));
+            let _ = write!(
+                svg.s,
+                r#"<rect class="floor" x="{}" y="{}" width="{}" height="{}"><title>storage floor {} {u}</title></rect>"#,
+                f(x0),
+                f(y1),
+                f((xf - x0).max(0.0)),
+                f(y0 - y1),
+                esc(&num(c.storage_floor))
+            );
         }
         frame(&mut svg, x0, y0, x1, y1);
-        log_x_axis(&mut svg, &sx, e0, e1, y0, y1, &format!("kl per position ({u}, log scale)"));
+        log_x_axis(
+            &mut svg,
+            &sx,
+            e0,
+            e1,
+            y0,
+            y1,
+            &format!("kl per position ({u}, log scale)"),
+        );
         let mut t = 0.0;
         while t <= ymax + 1e-12 {
             let y = sy.at(t);
             svg.line(x0 - 3.0, y, x0, y, "tickmark");
-            svg.text(x0 - 5.0, y + 3.5, "end", "tick", &format!("{}%", trim_pct(100.0 * t)));
+            svg.text(
+                x0 - 5.0,
+                y + 3.5,
+                "end",
+                "tick",
+                &format!("{}%", trim_pct(100.0 * t)),
+            );
             t += ystep;
         }
         for q in [0.0, 0.5, 1.0] {
             let y = sc.at(q);
-            svg.text(x1 + 5.0, y + 3.5, "start", "tick cum", &format!("{:.0}%", 100.0 * q));
+            svg.text(
+                x1 + 5.0,
+                y + 3.5,
+                "start",
+                "tick cum",
+                &format!("{:.0}%", 100.0 * q),
+            );
         }
         for b in &c.kl_histogram.bins {
             let (xa, xb) = (sx.at(b.lo), sx.at(b.hi));
@@ -589,12 +790,23 @@ fn distribution(out: &mut String, r: &Report, cands: &[Cand]) {
             let _ = write!(d, "L{} {}", f(sx.at(b.hi)), f(sc.at(cum / n)));
         }
         let _ = write!(d, "L{} {}", f(x1), f(sc.at(cum / n)));
-        let _ = write!(svg.s, r#"<path class="cumline" style="stroke:{}" d="{d}"/>"#, colour(k.i));
+        let _ = write!(
+            svg.s,
+            r#"<path class="cumline" style="stroke:{}" d="{d}"/>"#,
+            colour(k.i)
+        );
         // Markers, labels staggered so that close ones stay readable.
-        let mut marks: Vec<(f64, &str, String)> = vec![(c.kl.mean, "mark", "mean".into()), (c.kl.p99, "mark dash", "p99".into())];
+        let mut marks: Vec<(f64, &str, String)> = vec![
+            (c.kl.mean, "mark", "mean".into()),
+            (c.kl.p99, "mark dash", "p99".into()),
+        ];
         for g in &c.gates {
             if g.name == "max-kl-mean" || g.name == "max-kl-p99" {
-                let what = if g.name == "max-kl-mean" { "mean limit" } else { "p99 limit" };
+                let what = if g.name == "max-kl-mean" {
+                    "mean limit"
+                } else {
+                    "p99 limit"
+                };
                 marks.push((g.limit, "limit", what.into()));
             }
         }
@@ -613,7 +825,11 @@ fn distribution(out: &mut String, r: &Report, cands: &[Cand]) {
             let _ = write!(
                 svg.s,
                 r#"<text class="{}" text-anchor="end" transform="translate({} {}) rotate(-90)">{}</text>"#,
-                if *cls == "limit" { "mlabel lim" } else { "mlabel" },
+                if *cls == "limit" {
+                    "mlabel lim"
+                } else {
+                    "mlabel"
+                },
                 f(lx),
                 f(y1 + 4.0),
                 esc(label)
@@ -621,7 +837,16 @@ fn distribution(out: &mut String, r: &Report, cands: &[Cand]) {
         }
         let above = c.kl_histogram.above;
         if above > 0 {
-            svg.text(x1 - 4.0, y0 - 6.0, "end", "note", &format!("{above} at ≥ {} or infinite", num(c.kl_histogram.highest_edge)));
+            svg.text(
+                x1 - 4.0,
+                y0 - 6.0,
+                "end",
+                "note",
+                &format!(
+                    "{above} at ≥ {} or infinite",
+                    num(c.kl_histogram.highest_edge)
+                ),
+            );
         }
         out.push_str(&svg.finish());
     }
@@ -659,15 +884,34 @@ fn trim_pct(v: f64) -> String {
 /// log-log axes, where the tail (and so the 99th percentile) is easy to see.
 fn tail_plot(out: &mut String, r: &Report, cands: &[Cand], e0: i32, e1: i32) {
     let u = r.units;
-    let nmax = cands.iter().map(|k| k.c.positions).max().unwrap_or(1).max(10);
+    let nmax = cands
+        .iter()
+        .map(|k| k.c.positions)
+        .max()
+        .unwrap_or(1)
+        .max(10);
     let ye0 = -((nmax as f64).log10().ceil() as i32);
     let (x0, x1, y0, y1) = (ML, W - MR, H - MB, MT);
     let sx = Scale::log(e0 as f64, e1 as f64, x0, x1);
     let sy = Scale::log(ye0 as f64, 0.0, y0, y1);
     let mut svg = Svg::new("share of positions above each kl, all candidates", H);
-    svg.text(x0, 18.0, "start", "ptitle", "Tail: share of positions with kl above x");
+    svg.text(
+        x0,
+        18.0,
+        "start",
+        "ptitle",
+        "Tail: share of positions with kl above x",
+    );
     frame(&mut svg, x0, y0, x1, y1);
-    log_x_axis(&mut svg, &sx, e0, e1, y0, y1, &format!("kl ({u}, log scale)"));
+    log_x_axis(
+        &mut svg,
+        &sx,
+        e0,
+        e1,
+        y0,
+        y1,
+        &format!("kl ({u}, log scale)"),
+    );
     for e in ye0..=0 {
         let y = sy.at(10f64.powi(e));
         svg.line(x0, y, x1, y, "grid");
@@ -683,7 +927,13 @@ fn tail_plot(out: &mut String, r: &Report, cands: &[Cand], e0: i32, e1: i32) {
     // The 1% line: where a curve crosses it is that candidate's p99.
     let y99 = sy.at(0.01);
     svg.line(x0, y99, x1, y99, "p99line");
-    svg.text(x0 + 4.0, y99 - 4.0, "start", "mlabel", "1% of positions: p99 where crossed");
+    svg.text(
+        x0 + 4.0,
+        y99 - 4.0,
+        "start",
+        "mlabel",
+        "1% of positions: p99 where crossed",
+    );
     for k in cands {
         for g in &k.c.gates {
             if g.name == "max-kl-p99" {
@@ -704,7 +954,13 @@ fn tail_plot(out: &mut String, r: &Report, cands: &[Cand], e0: i32, e1: i32) {
                 break;
             }
             let y = sy.at(share);
-            let _ = write!(d, "{}{} {}", if first { "M" } else { "L" }, f(sx.at(b.lo)), f(y));
+            let _ = write!(
+                d,
+                "{}{} {}",
+                if first { "M" } else { "L" },
+                f(sx.at(b.lo)),
+                f(y)
+            );
             first = false;
             rest -= b.count as f64;
             let _ = write!(d, "L{} {}", f(sx.at(b.hi)), f(y));
@@ -713,10 +969,20 @@ fn tail_plot(out: &mut String, r: &Report, cands: &[Cand], e0: i32, e1: i32) {
             }
         }
         if !d.is_empty() {
-            let _ = write!(svg.s, r#"<path class="tailline" style="stroke:{}" d="{d}"><title>{}</title></path>"#, colour(k.i), esc(&c.name));
+            let _ = write!(
+                svg.s,
+                r#"<path class="tailline" style="stroke:{}" d="{d}"><title>{}</title></path>"#,
+                colour(k.i),
+                esc(&c.name)
+            );
         }
     }
-    legend(&mut svg, cands, x0 + 8.0, y0 - 10.0 - 14.0 * (cands.len() as f64 - 1.0));
+    legend(
+        &mut svg,
+        cands,
+        x0 + 8.0,
+        y0 - 10.0 - 14.0 * (cands.len() as f64 - 1.0),
+    );
     out.push_str(r#"<div class="panels">"#);
     out.push_str(&svg.finish());
     out.push_str(&threshold_table(r, cands, e0, e1));
@@ -726,9 +992,16 @@ fn tail_plot(out: &mut String, r: &Report, cands: &[Cand], e0: i32, e1: i32) {
 /// Share of positions above each decade of kl, from the histogram (the
 /// decades are bin edges, so these shares are exact counts).
 fn threshold_table(r: &Report, cands: &[Cand], e0: i32, e1: i32) -> String {
-    let mut s = String::from(r#"<div class="side"><h4>Share of positions above</h4><table class="data"><thead><tr><th>kl above</th>"#);
+    let mut s = String::from(
+        r#"<div class="side"><h4>Share of positions above</h4><table class="data"><thead><tr><th>kl above</th>"#,
+    );
     for k in cands {
-        let _ = write!(s, r#"<th><span class="swatch" style="--c:{}"></span>{}</th>"#, colour(k.i), esc(&k.c.name));
+        let _ = write!(
+            s,
+            r#"<th><span class="swatch" style="--c:{}"></span>{}</th>"#,
+            colour(k.i),
+            esc(&k.c.name)
+        );
     }
     s.push_str("</tr></thead><tbody>");
     // Positions above 10^e, per candidate: bins whose lower edge is at or
@@ -736,21 +1009,37 @@ fn threshold_table(r: &Report, cands: &[Cand], e0: i32, e1: i32) -> String {
     let above = |k: &Cand, e: i32| -> u64 {
         let t = 10f64.powi(e);
         let h = &k.c.kl_histogram;
-        h.bins.iter().filter(|b| b.lo >= t * (1.0 - 1e-9)).map(|b| b.count).sum::<u64>() + h.above
+        h.bins
+            .iter()
+            .filter(|b| b.lo >= t * (1.0 - 1e-9))
+            .map(|b| b.count)
+            .sum::<u64>()
+            + h.above
     };
     // Only the decades where some candidate is neither at 100% nor at 0.
-    let informative = |e: i32| cands.iter().any(|k| {
-        let a = above(k, e);
-        a > 0 && a < k.c.positions
-    });
+    let informative = |e: i32| {
+        cands.iter().any(|k| {
+            let a = above(k, e);
+            a > 0 && a < k.c.positions
+        })
+    };
     let first = (e0..e1).find(|&e| informative(e)).unwrap_or(e0);
     let last = (e0..e1).rev().find(|&e| informative(e)).unwrap_or(e1 - 1);
     for e in first..=(last + 1).min(e1) {
-        let _ = write!(s, r#"<tr><th class="n">{} {}</th>"#, decade_label(e), r.units);
+        let _ = write!(
+            s,
+            r#"<tr><th class="n">{} {}</th>"#,
+            decade_label(e),
+            r.units
+        );
         for k in cands {
             let a = above(k, e);
             let n = k.c.positions.max(1) as f64;
-            let cell = if a == 0 { "0".to_string() } else { format!("{} <span class=\"ci\">({a})</span>", pct(a as f64 / n)) };
+            let cell = if a == 0 {
+                "0".to_string()
+            } else {
+                format!("{} <span class=\"ci\">({a})</span>", pct(a as f64 / n))
+            };
             let _ = write!(s, r#"<td class="n">{cell}</td>"#);
         }
         s.push_str("</tr>");
@@ -762,7 +1051,13 @@ fn threshold_table(r: &Report, cands: &[Cand], e0: i32, e1: i32) -> String {
 fn legend(svg: &mut Svg, cands: &[Cand], x: f64, y: f64) {
     for (j, k) in cands.iter().enumerate() {
         let yy = y + 14.0 * j as f64;
-        let _ = write!(svg.s, r#"<rect class="key" style="fill:{}" x="{}" y="{}" width="14" height="4"/>"#, colour(k.i), f(x), f(yy - 4.0));
+        let _ = write!(
+            svg.s,
+            r#"<rect class="key" style="fill:{}" x="{}" y="{}" width="14" height="4"/>"#,
+            colour(k.i),
+            f(x),
+            f(yy - 4.0)
+        );
         svg.text(x + 19.0, yy, "start", "label", &k.c.name);
     }
 }
@@ -772,7 +1067,11 @@ fn position_profile(out: &mut String, r: &Report, cands: &[Cand]) {
     if cands.iter().all(|k| k.c.kl_by_position.is_empty()) {
         return;
     }
-    let xmax = cands.iter().filter_map(|k| k.c.kl_by_position.last().map(|b| b.last + 1)).max().unwrap_or(1) as f64;
+    let xmax = cands
+        .iter()
+        .filter_map(|k| k.c.kl_by_position.last().map(|b| b.last + 1))
+        .max()
+        .unwrap_or(1) as f64;
     let mut lo = f64::INFINITY;
     let mut hi = f64::NEG_INFINITY;
     for k in cands {
@@ -785,7 +1084,14 @@ fn position_profile(out: &mut String, r: &Report, cands: &[Cand]) {
             }
         }
     }
-    let (e0, e1) = if lo.is_finite() { (lo.log10().floor() as i32, (hi.log10().ceil() as i32).max(lo.log10().floor() as i32 + 1)) } else { (-6, 0) };
+    let (e0, e1) = if lo.is_finite() {
+        (
+            lo.log10().floor() as i32,
+            (hi.log10().ceil() as i32).max(lo.log10().floor() as i32 + 1),
+        )
+    } else {
+        (-6, 0)
+    };
     let (x0, x1, y0, y1) = (ML, W - MR, H - MB, MT);
     let sx = Scale::lin(0.0, xmax, x0, x1);
     let sy = Scale::log(e0 as f64, e1 as f64, y0, y1);
@@ -803,13 +1109,25 @@ fn position_profile(out: &mut String, r: &Report, cands: &[Cand]) {
             svg.text(x, y0 + 14.0, "middle", "tick", &format!("{t:.0}"));
             t += xstep;
         }
-        svg.text((x0 + x1) / 2.0, y0 + 31.0, "middle", "axis", "position in the prompt");
+        svg.text(
+            (x0 + x1) / 2.0,
+            y0 + 31.0,
+            "middle",
+            "axis",
+            "position in the prompt",
+        );
         for e in e0..=e1 {
             let y = sy.at(10f64.powi(e));
             svg.line(x0, y, x1, y, "grid");
             svg.text(x0 - 5.0, y + 3.5, "end", "tick", &decade_label(e));
         }
-        svg.text(12.0, (y0 + y1) / 2.0, "middle", "axis vert", &format!("kl ({u})"));
+        svg.text(
+            12.0,
+            (y0 + y1) / 2.0,
+            "middle",
+            "axis vert",
+            &format!("kl ({u})"),
+        );
         let _ = write!(svg.s, "<g style=\"fill:{}\">", pale(k.i));
         for b in &c.kl_by_position {
             let (xa, xb) = (sx.at(b.first as f64), sx.at(b.last as f64 + 1.0));
@@ -841,9 +1159,21 @@ fn position_profile(out: &mut String, r: &Report, cands: &[Cand]) {
                 continue;
             }
             let y = sy.at(b.kl_mean);
-            let _ = write!(d, "{}{} {}L{} {}", if d.is_empty() { "M" } else { "L" }, f(sx.at(b.first as f64)), f(y), f(sx.at(b.last as f64 + 1.0)), f(y));
+            let _ = write!(
+                d,
+                "{}{} {}L{} {}",
+                if d.is_empty() { "M" } else { "L" },
+                f(sx.at(b.first as f64)),
+                f(y),
+                f(sx.at(b.last as f64 + 1.0)),
+                f(y)
+            );
         }
-        let _ = write!(svg.s, r#"<path class="meanline" style="stroke:{}" d="{d}"/>"#, colour(k.i));
+        let _ = write!(
+            svg.s,
+            r#"<path class="meanline" style="stroke:{}" d="{d}"/>"#,
+            colour(k.i)
+        );
         out.push_str(&svg.finish());
     }
     out.push_str("</div></section>");
@@ -859,19 +1189,23 @@ fn estimators(out: &mut String, r: &Report, cands: &[Cand]) {
     let mut lo = 1f64;
     let mut hi = 1f64;
     let budgets: Vec<usize> = {
-        let mut b: Vec<usize> = cands.iter().flat_map(|k| k.c.estimators.iter().map(|e| e.samples_per_position)).collect();
+        let mut b: Vec<usize> = cands
+            .iter()
+            .flat_map(|k| k.c.estimators.iter().map(|e| e.samples_per_position))
+            .collect();
         b.sort_unstable();
         b.dedup();
         b
     };
-    let ratio = |e: &super::EstimatorBlock, k: &crate::estimators::KSummary| -> Option<(f64, f64, f64)> {
-        if !(e.exact_mean > 0.0) || e.positions == 0 {
-            return None;
-        }
-        let r = k.mean / e.exact_mean;
-        let h = crate::stats::Z95 * k.std / (e.positions as f64).sqrt() / e.exact_mean;
-        Some((r, r - h, r + h))
-    };
+    let ratio =
+        |e: &super::EstimatorBlock, k: &crate::estimators::KSummary| -> Option<(f64, f64, f64)> {
+            if !(e.exact_mean > 0.0) || e.positions == 0 {
+                return None;
+            }
+            let r = k.mean / e.exact_mean;
+            let h = crate::stats::Z95 * k.std / (e.positions as f64).sqrt() / e.exact_mean;
+            Some((r, r - h, r + h))
+        };
     for k in cands {
         for e in k.c.estimators.iter().filter(|e| e.direction == "forward") {
             for ks in [&e.k1, &e.k2, &e.k3] {
@@ -886,7 +1220,10 @@ fn estimators(out: &mut String, r: &Report, cands: &[Cand]) {
     }
     let pad = 0.08 * (hi - lo).max(0.1);
     let step = nice_step(hi - lo + 2.0 * pad, 5.0);
-    let (lo, hi) = (((lo - pad) / step).floor() * step, ((hi + pad) / step).ceil() * step);
+    let (lo, hi) = (
+        ((lo - pad) / step).floor() * step,
+        ((hi + pad) / step).ceil() * step,
+    );
     let (x0, x1, y0, y1) = (ML, W - MR, H - MB, MT);
     let sy = Scale::lin(lo, hi, y0, y1);
     let nb = budgets.len().max(1) as f64;
@@ -899,20 +1236,65 @@ fn estimators(out: &mut String, r: &Report, cands: &[Cand]) {
         let mut t = lo;
         while t <= hi + 1e-9 {
             let y = sy.at(t);
-            svg.line(x0, y, x1, y, if (t - 1.0).abs() < 1e-9 { "zero" } else { "grid" });
+            svg.line(
+                x0,
+                y,
+                x1,
+                y,
+                if (t - 1.0).abs() < 1e-9 {
+                    "zero"
+                } else {
+                    "grid"
+                },
+            );
             svg.text(x0 - 5.0, y + 3.5, "end", "tick", &trim_pct(t).to_string());
             t += step;
         }
-        svg.text(12.0, (y0 + y1) / 2.0, "middle", "axis vert", "estimate / exact");
-        svg.text((x0 + x1) / 2.0, y0 + 31.0, "middle", "axis", "tokens drawn per position");
+        svg.text(
+            12.0,
+            (y0 + y1) / 2.0,
+            "middle",
+            "axis vert",
+            "estimate / exact",
+        );
+        svg.text(
+            (x0 + x1) / 2.0,
+            y0 + 31.0,
+            "middle",
+            "axis",
+            "tokens drawn per position",
+        );
         for (bi, &n) in budgets.iter().enumerate() {
             let cx = x0 + band * (bi as f64 + 0.5);
             svg.text(cx, y0 + 14.0, "middle", "tick", &n.to_string());
-            let Some(e) = c.estimators.iter().find(|e| e.direction == "forward" && e.samples_per_position == n) else { continue };
-            for (j, (name, ks)) in [("k1", &e.k1), ("k2", &e.k2), ("k3", &e.k3)].into_iter().enumerate() {
-                let Some((rv, a, b)) = ratio(e, ks) else { continue };
+            let Some(e) = c
+                .estimators
+                .iter()
+                .find(|e| e.direction == "forward" && e.samples_per_position == n)
+            else {
+                continue;
+            };
+            for (j, (name, ks)) in [("k1", &e.k1), ("k2", &e.k2), ("k3", &e.k3)]
+                .into_iter()
+                .enumerate()
+            {
+                let Some((rv, a, b)) = ratio(e, ks) else {
+                    continue;
+                };
                 let x = cx + (j as f64 - 1.0) * band * 0.22;
-                let _ = write!(svg.s, r#"<path class="whisk" d="M{} {}V{}M{} {}H{}M{} {}H{}"/>"#, f(x), f(sy.at(a)), f(sy.at(b)), f(x - 4.0), f(sy.at(a)), f(x + 4.0), f(x - 4.0), f(sy.at(b)), f(x + 4.0));
+                let _ = write!(
+                    svg.s,
+                    r#"<path class="whisk" d="M{} {}V{}M{} {}H{}M{} {}H{}"/>"#,
+                    f(x),
+                    f(sy.at(a)),
+                    f(sy.at(b)),
+                    f(x - 4.0),
+                    f(sy.at(a)),
+                    f(x + 4.0),
+                    f(x - 4.0),
+                    f(sy.at(b)),
+                    f(x + 4.0)
+                );
                 let y = sy.at(rv);
                 let tip = format!(
                     "{name}, {n} per position: mean {} vs exact {} {u}; bias {}; per-position spread {}; about {} positions for ±10%",
@@ -923,9 +1305,24 @@ fn estimators(out: &mut String, r: &Report, cands: &[Cand]) {
                     num(ks.positions_for_10pct)
                 );
                 let shape = match j {
-                    0 => format!(r#"<circle class="est" style="fill:{}" cx="{}" cy="{}" r="4.5">"#, colour(k.i), f(x), f(y)),
-                    1 => format!(r#"<rect class="est hollow" style="stroke:{}" x="{}" y="{}" width="8" height="8">"#, colour(k.i), f(x - 4.0), f(y - 4.0)),
-                    _ => format!(r#"<path class="est" style="fill:{}" d="M{} {}l5 5l-5 5l-5 -5z">"#, colour(k.i), f(x), f(y - 5.0)),
+                    0 => format!(
+                        r#"<circle class="est" style="fill:{}" cx="{}" cy="{}" r="4.5">"#,
+                        colour(k.i),
+                        f(x),
+                        f(y)
+                    ),
+                    1 => format!(
+                        r#"<rect class="est hollow" style="stroke:{}" x="{}" y="{}" width="8" height="8">"#,
+                        colour(k.i),
+                        f(x - 4.0),
+                        f(y - 4.0)
+                    ),
+                    _ => format!(
+                        r#"<path class="est" style="fill:{}" d="M{} {}l5 5l-5 5l-5 -5z">"#,
+                        colour(k.i),
+                        f(x),
+                        f(y - 5.0)
+                    ),
                 };
                 svg.raw(&shape);
                 let _ = write!(svg.s, "<title>{}</title>", esc(&tip));
@@ -949,12 +1346,20 @@ fn estimators(out: &mut String, r: &Report, cands: &[Cand]) {
                 r#"<tr><td><span class="swatch" style="--c:{}"></span>{}</td><td>{}</td><td class="n">{}</td><td class="n">{}</td>"#,
                 colour(k.i),
                 esc(&k.c.name),
-                if e.direction == "forward" { "forward, x ~ reference" } else { "reverse, x ~ candidate" },
+                if e.direction == "forward" {
+                    "forward, x ~ reference"
+                } else {
+                    "reverse, x ~ candidate"
+                },
                 e.samples_per_position,
                 num(e.exact_mean)
             );
             for ks in [&e.k1, &e.k2, &e.k3] {
-                let need = if ks.positions_for_10pct.is_finite() { format!("{:.0}", ks.positions_for_10pct) } else { "–".into() };
+                let need = if ks.positions_for_10pct.is_finite() {
+                    format!("{:.0}", ks.positions_for_10pct)
+                } else {
+                    "–".into()
+                };
                 let _ = write!(
                     out,
                     r#"<td class="n"><b>{}</b><div class="ci">bias {} · spread {} · rmse {}</div><div class="ci">±10% needs {need} positions</div></td>"#,
@@ -970,7 +1375,11 @@ fn estimators(out: &mut String, r: &Report, cands: &[Cand]) {
     out.push_str(r#"</tbody></table><p class="small">Spread: standard deviation of one position's estimate across positions. rmse: root mean square of (estimate − exact) per position. The reverse direction estimates KL(candidate ‖ reference) from tokens drawn from the candidate.</p></details>"#);
     if let Some(c) = cands.first() {
         let s = &c.c.sampling_cost;
-        let per: Vec<String> = s.sampled_bytes_per_position.iter().map(|(n, b)| format!("{b} bytes for {n} draw{}", if *n == 1 { "" } else { "s" })).collect();
+        let per: Vec<String> = s
+            .sampled_bytes_per_position
+            .iter()
+            .map(|(n, b)| format!("{b} bytes for {n} draw{}", if *n == 1 { "" } else { "s" }))
+            .collect();
         let _ = write!(
             out,
             r#"<p class="small">Storage per position: full logits of both models take {} bytes; sampled logging takes {}.</p>"#,
@@ -984,7 +1393,10 @@ fn estimators(out: &mut String, r: &Report, cands: &[Cand]) {
 /// A token as a chip; spaces stay visible.
 fn chip(text: Option<&str>, id: u32, class: &str) -> String {
     match text {
-        Some(t) => format!(r#"<span class="tok {class}" title="id {id}">{}</span>"#, esc(&t.replace(' ', "␣"))),
+        Some(t) => format!(
+            r#"<span class="tok {class}" title="id {id}">{}</span>"#,
+            esc(&t.replace(' ', "␣"))
+        ),
         None => format!(r#"<span class="tok {class} id">#{id}</span>"#),
     }
 }
@@ -1029,14 +1441,22 @@ fn worst_row(w: &WorstPositionReport) -> String {
                 ctx.push_str(r#"<span class="small">(start of prompt)</span>"#);
             }
             for t in toks {
-                let _ = write!(ctx, r#"<span class="tok">{}</span>"#, esc(&t.replace(' ', "␣")));
+                let _ = write!(
+                    ctx,
+                    r#"<span class="tok">{}</span>"#,
+                    esc(&t.replace(' ', "␣"))
+                );
             }
             ctx.push_str("</span>");
         }
         None => ctx.push_str(r#"<span class="small">–</span>"#),
     }
     if let Some(t) = w.target {
-        let _ = write!(ctx, r#" <span class="arrow">→</span> {}"#, chip(w.target_text.as_deref(), t as u32, "target"));
+        let _ = write!(
+            ctx,
+            r#" <span class="arrow">→</span> {}"#,
+            chip(w.target_text.as_deref(), t as u32, "target")
+        );
     }
     format!(
         r#"<tr><td class="n"><b>{}</b></td><td class="where">prompt {}<br>position {}<br><span class="small">row {}</span></td><td>{ctx}</td><td>{}</td><td>{}</td></tr>"#,
@@ -1053,7 +1473,12 @@ fn worst_prompts(out: &mut String, c: &CandidateReport, units: &str, i: usize) {
     if c.worst_prompts.is_empty() {
         return;
     }
-    let top = c.worst_prompts.iter().map(|p| p.kl_max).filter(|v| v.is_finite()).fold(0.0, f64::max);
+    let top = c
+        .worst_prompts
+        .iter()
+        .map(|p| p.kl_max)
+        .filter(|v| v.is_finite())
+        .fold(0.0, f64::max);
     let lo = c.kl.p50.max(top * 1e-4);
     let sc = |v: f64| -> f64 {
         if !(v > 0.0) || !(top > lo) {
@@ -1112,7 +1537,12 @@ fn warnings(out: &mut String, cands: &[Cand]) {
             continue;
         }
         any = true;
-        let _ = write!(out, r#"<div class="warnbox" style="--c:{}"><b>{}</b><ul>"#, colour(k.i), esc(&k.c.name));
+        let _ = write!(
+            out,
+            r#"<div class="warnbox" style="--c:{}"><b>{}</b><ul>"#,
+            colour(k.i),
+            esc(&k.c.name)
+        );
         for w in &k.c.warnings {
             let _ = write!(out, "<li>{}</li>", esc(w));
         }
@@ -1120,11 +1550,23 @@ fn warnings(out: &mut String, cands: &[Cand]) {
         if !k.c.skipped.is_empty() {
             out.push_str(r#"<table class="data skipped"><thead><tr><th>row</th><th>prompt</th><th>position</th><th>file</th><th>problem</th></tr></thead><tbody>"#);
             for s in k.c.skipped.iter().take(50) {
-                let _ = write!(out, r#"<tr><td class="n">{}</td><td class="n">{}</td><td class="n">{}</td><td>{}</td><td>{}</td></tr>"#, s.row, s.prompt, s.position, esc(&s.file), esc(&s.fault));
+                let _ = write!(
+                    out,
+                    r#"<tr><td class="n">{}</td><td class="n">{}</td><td class="n">{}</td><td>{}</td><td>{}</td></tr>"#,
+                    s.row,
+                    s.prompt,
+                    s.position,
+                    esc(&s.file),
+                    esc(&s.fault)
+                );
             }
             out.push_str("</tbody></table>");
             if k.c.skipped.len() > 50 {
-                let _ = write!(out, r#"<p class="small">… and {} more in the JSON report.</p>"#, k.c.skipped.len() - 50);
+                let _ = write!(
+                    out,
+                    r#"<p class="small">… and {} more in the JSON report.</p>"#,
+                    k.c.skipped.len() - 50
+                );
             }
         }
         out.push_str("</div>");
@@ -1240,14 +1682,41 @@ b.setAttribute('data-check','done');});})();
 
 /// The whole page as a string.
 pub fn render(r: &Report) -> String {
-    let cands: Vec<Cand> = r.candidates.iter().enumerate().map(|(i, c)| Cand { i, c }).collect();
-    let refname = r.reference.model.clone().unwrap_or_else(|| r.reference.path.clone());
+    let cands: Vec<Cand> = r
+        .candidates
+        .iter()
+        .enumerate()
+        .map(|(i, c)| Cand { i, c })
+        .collect();
+    let refname = r
+        .reference
+        .model
+        .clone()
+        .unwrap_or_else(|| r.reference.path.clone());
     let mut out = String::with_capacity(256 * 1024);
     out.push_str("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"/><meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"/>");
-    let _ = write!(out, "<title>klgauge: {} against {} candidate{}</title>", esc(&refname), cands.len(), if cands.len() == 1 { "" } else { "s" });
+    let _ = write!(
+        out,
+        "<title>klgauge: {} against {} candidate{}</title>",
+        esc(&refname),
+        cands.len(),
+        if cands.len() == 1 { "" } else { "s" }
+    );
     // The check script goes first, so that its error listener sees everything.
-    let _ = write!(out, "<style>{STYLE}</style><script>{SCRIPT}</script></head><body data-check=\"pending\"><main>");
-    let names: Vec<String> = cands.iter().map(|k| format!(r#"<span class="swatch" style="--c:{}"></span>{}"#, colour(k.i), esc(&k.c.name))).collect();
+    let _ = write!(
+        out,
+        "<style>{STYLE}</style><script>{SCRIPT}</script></head><body data-check=\"pending\"><main>"
+    );
+    let names: Vec<String> = cands
+        .iter()
+        .map(|k| {
+            format!(
+                r#"<span class="swatch" style="--c:{}"></span>{}"#,
+                colour(k.i),
+                esc(&k.c.name)
+            )
+        })
+        .collect();
     let _ = write!(
         out,
         r##"<header><h1>How far the candidates moved from {}</h1><p class="sub">{} · {} prompts, {} rows · divergences in {}</p><p class="sub">{}</p><nav><a href="#verdict">verdict</a>{}<a href="#summary">summary</a><a href="#distribution">distribution</a><a href="#position">along the prompt</a><a href="#estimators">estimators</a><a href="#worst">worst positions</a><a href="#warnings">warnings</a></nav></header>"##,
@@ -1257,7 +1726,11 @@ pub fn render(r: &Report) -> String {
         r.reference.rows,
         r.units,
         names.join(" &nbsp; "),
-        if r.ranking.len() > 1 { r##"<a href="#ranking">ranking</a>"## } else { "" }
+        if r.ranking.len() > 1 {
+            r##"<a href="#ranking">ranking</a>"##
+        } else {
+            ""
+        }
     );
     verdict_cards(&mut out, r, &cands);
     ranking(&mut out, r);
@@ -1273,7 +1746,12 @@ pub fn render(r: &Report) -> String {
         esc(r.notice),
         r.tool.name,
         r.tool.version,
-        r.settings.samples.iter().map(|s| s.to_string()).collect::<Vec<_>>().join(", "),
+        r.settings
+            .samples
+            .iter()
+            .map(|s| s.to_string())
+            .collect::<Vec<_>>()
+            .join(", "),
         r.settings.seed,
         r.settings.top,
         r.timing.exact_pass_seconds,

@@ -6,7 +6,9 @@ pub mod html;
 pub mod json;
 pub mod text;
 
-use crate::engine::{self, CandidateAccum, EngineResult, PairAccum, SkippedRow, WorstPosition, KL, KL_REV, NMETRIC};
+use crate::engine::{
+    self, CandidateAccum, EngineResult, PairAccum, SkippedRow, WorstPosition, KL, KL_REV, NMETRIC,
+};
 use crate::estimators::KSummary;
 use crate::input::{Grouping, LogitFile, StoredDtype};
 use crate::stats::{cluster_mean, Aggregate};
@@ -347,7 +349,13 @@ pub struct ResolvedWorst {
 }
 
 /// Reads the top tokens and context of a worst position from the files.
-pub fn resolve_worst(reference: &LogitFile, candidate: &LogitFile, cols: usize, targets: Option<&[i64]>, w: &WorstPosition) -> ResolvedWorst {
+pub fn resolve_worst(
+    reference: &LogitFile,
+    candidate: &LogitFile,
+    cols: usize,
+    targets: Option<&[i64]>,
+    w: &WorstPosition,
+) -> ResolvedWorst {
     let row = w.row as usize;
     ResolvedWorst {
         at: w.clone(),
@@ -363,7 +371,11 @@ pub fn context_ids(targets: Option<&[i64]>, row: usize, position: usize) -> Opti
     let t = targets?;
     let first = row - position;
     let lo = (row + 1).saturating_sub(8).max(first + 1);
-    Some(if lo <= row { t[lo - 1..row].to_vec() } else { Vec::new() })
+    Some(if lo <= row {
+        t[lo - 1..row].to_vec()
+    } else {
+        Vec::new()
+    })
 }
 
 /// One candidate's results with everything that needs the input files
@@ -402,29 +414,47 @@ pub const FEW_PROMPTS: u64 = 30;
 
 fn aggregate(acc: &mut CandidateAccum, metric: usize) -> Aggregate {
     let prompts = &acc.prompts;
-    let groups = prompts.iter().map(move |p| (p.count(metric), p.sum[metric]));
+    let groups = prompts
+        .iter()
+        .map(move |p| (p.count(metric), p.sum[metric]));
     Aggregate::exact(&mut acc.values[metric], groups)
 }
 
 pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
     let r = inputs.reference;
-    let aggregates: Vec<Vec<Aggregate>> =
-        result.candidates.iter_mut().map(|acc| (0..NMETRIC).map(|m| aggregate(acc, m)).collect()).collect();
+    let aggregates: Vec<Vec<Aggregate>> = result
+        .candidates
+        .iter_mut()
+        .map(|acc| (0..NMETRIC).map(|m| aggregate(acc, m)).collect())
+        .collect();
     let mut cands = Vec::new();
     for ((k, acc), aggregates) in result.candidates.iter().enumerate().zip(aggregates) {
         let file = &inputs.candidates[k];
         let sorted = &acc.values[KL];
-        let p99_ci = p99_interval(acc, aggregates[KL].p99, |q| crate::stats::percentile(sorted, q));
+        let p99_ci = p99_interval(acc, aggregates[KL].p99, |q| {
+            crate::stats::percentile(sorted, q)
+        });
         cands.push(CandidateSource {
             file: FileSummary::of(file),
             acc,
             aggregates,
-            worst: acc.worst.iter().map(|w| resolve_worst(r, file, inputs.cols, inputs.targets, w)).collect(),
+            worst: acc
+                .worst
+                .iter()
+                .map(|w| resolve_worst(r, file, inputs.cols, inputs.targets, w))
+                .collect(),
             storage_floor: crate::floor::storage_floor(r, file, inputs.cols, FLOOR_SAMPLE_ROWS),
             kl_p99_ci95: p99_ci,
         });
     }
-    assemble(&inputs.settings(), &FileSummary::of(r), cands, &result.pairs, result.seconds, result.rows_processed)
+    assemble(
+        &inputs.settings(),
+        &FileSummary::of(r),
+        cands,
+        &result.pairs,
+        result.seconds,
+        result.rows_processed,
+    )
 }
 
 /// The report from resolved results; `build` and `merge` both end here.
@@ -436,8 +466,15 @@ pub fn assemble(
     seconds: f64,
     rows_processed: u64,
 ) -> Report {
-    let scale = if settings.bits { 1.0 / std::f64::consts::LN_2 } else { 1.0 };
-    let cands: Vec<CandidateReport> = candidates.into_iter().map(|c| candidate_report(settings, reference, c, scale, seconds)).collect();
+    let scale = if settings.bits {
+        1.0 / std::f64::consts::LN_2
+    } else {
+        1.0
+    };
+    let cands: Vec<CandidateReport> = candidates
+        .into_iter()
+        .map(|c| candidate_report(settings, reference, c, scale, seconds))
+        .collect();
     let mut comparisons: Vec<PairReport> = pairs.iter().map(|p| pair_report(p, scale)).collect();
     name_pairs(&mut comparisons, &cands);
     let ranking = ranking(&cands, &comparisons);
@@ -445,7 +482,10 @@ pub fn assemble(
     Report {
         schema: SCHEMA,
         units: if settings.bits { "bits" } else { "nats" },
-        tool: ToolInfo { name: "klgauge", version: env!("CARGO_PKG_VERSION") },
+        tool: ToolInfo {
+            name: "klgauge",
+            version: env!("CARGO_PKG_VERSION"),
+        },
         reference: FileInfo {
             path: r.path.clone(),
             dtype: r.dtype.name(),
@@ -469,7 +509,11 @@ pub fn assemble(
         ranking,
         timing: Timing {
             exact_pass_seconds: seconds,
-            rows_per_second: if seconds > 0.0 { rows_processed as f64 / seconds } else { 0.0 },
+            rows_per_second: if seconds > 0.0 {
+                rows_processed as f64 / seconds
+            } else {
+                0.0
+            },
         },
         notice: DISCLAIMER,
     }
@@ -561,7 +605,11 @@ pub fn display_name(file: &FileSummary) -> String {
     match &file.model {
         Some(m) if !m.trim().is_empty() => m.trim().to_string(),
         _ => {
-            let base = file.path.rsplit(['/', '\\']).find(|s| !s.is_empty()).unwrap_or(&file.path);
+            let base = file
+                .path
+                .rsplit(['/', '\\'])
+                .find(|s| !s.is_empty())
+                .unwrap_or(&file.path);
             base.trim_end_matches(".safetensors").to_string()
         }
     }
@@ -570,10 +618,22 @@ pub fn display_name(file: &FileSummary) -> String {
 /// The 95% interval of kl's p99 (`histo::quantile_interval`), from the
 /// accumulated tail sums; `quantile` reads kl's quantile function (exact
 /// values in a single run, the sketch after a merge).
-pub fn p99_interval(acc: &CandidateAccum, p99: f64, quantile: impl Fn(f64) -> f64) -> Option<[f64; 2]> {
+pub fn p99_interval(
+    acc: &CandidateAccum,
+    p99: f64,
+    quantile: impl Fn(f64) -> f64,
+) -> Option<[f64; 2]> {
     let counted = acc.prompts.iter().filter(|p| p.n > 0.0);
     let n_sq: f64 = counted.clone().map(|p| p.n * p.n).sum();
-    crate::histo::quantile_interval(&acc.kl_hist, &acc.kl_tail, n_sq, counted.count(), 0.99, p99, quantile)
+    crate::histo::quantile_interval(
+        &acc.kl_hist,
+        &acc.kl_tail,
+        n_sq,
+        counted.count(),
+        0.99,
+        p99,
+        quantile,
+    )
 }
 
 fn histogram_report(h: &crate::histo::KlHistogram, scale: f64) -> KlHistogramReport {
@@ -584,7 +644,15 @@ fn histogram_report(h: &crate::histo::KlHistogram, scale: f64) -> KlHistogramRep
         lowest_edge: 10f64.powi(KL_LO_EXP) * scale,
         above: h.above(),
         highest_edge: 10f64.powi(KL_HI_EXP) * scale,
-        bins: h.bins().filter(|b| b.2 > 0).map(|(lo, hi, count)| HistBin { lo: lo * scale, hi: hi * scale, count }).collect(),
+        bins: h
+            .bins()
+            .filter(|b| b.2 > 0)
+            .map(|(lo, hi, count)| HistBin {
+                lo: lo * scale,
+                hi: hi * scale,
+                count,
+            })
+            .collect(),
     }
 }
 
@@ -609,14 +677,30 @@ fn position_report(p: &crate::histo::PositionProfile, scale: f64) -> Vec<Positio
         .collect()
 }
 
-fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSource, scale: f64, seconds: f64) -> CandidateReport {
-    let CandidateSource { file, acc, aggregates: mut agg, worst, storage_floor: floor_nats, kl_p99_ci95 } = c;
+fn candidate_report(
+    settings: &ReportSettings,
+    r: &FileSummary,
+    c: CandidateSource,
+    scale: f64,
+    seconds: f64,
+) -> CandidateReport {
+    let CandidateSource {
+        file,
+        acc,
+        aggregates: mut agg,
+        worst,
+        storage_floor: floor_nats,
+        kl_p99_ci95,
+    } = c;
     let p99_ci = kl_p99_ci95.map(|[a, b]| [a * scale, b * scale]);
     let n = acc.positions;
     let has_nll = agg[engine::NLL_REF].n > 0;
     let top1 = agg[engine::TOP1].mean;
     let (ppl_ref, ppl_cand) = if has_nll {
-        (Some(agg[engine::NLL_REF].mean.exp()), Some(agg[engine::NLL_CAND].mean.exp()))
+        (
+            Some(agg[engine::NLL_REF].mean.exp()),
+            Some(agg[engine::NLL_CAND].mean.exp()),
+        )
     } else {
         (None, None)
     };
@@ -625,7 +709,15 @@ fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSour
         _ => None,
     };
     // Unit conversion of everything measured in nats.
-    for m in [engine::KL, engine::KL_REV, engine::JS, engine::ENT_REF, engine::ENT_CAND, engine::NLL_REF, engine::NLL_CAND] {
+    for m in [
+        engine::KL,
+        engine::KL_REV,
+        engine::JS,
+        engine::ENT_REF,
+        engine::ENT_CAND,
+        engine::NLL_REF,
+        engine::NLL_CAND,
+    ] {
         agg[m] = agg[m].scaled(scale);
     }
     let floor = floor_nats * scale;
@@ -649,13 +741,22 @@ fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSour
         }
     }
     let sampling_cost = SamplingCost {
-        sampled_bytes_per_position: settings.samples.iter().map(|&s| (s, 8 * s as u64)).collect(),
-        full_logit_bytes_per_position: (settings.cols * (r.dtype.size() + file.dtype.size())) as u64,
+        sampled_bytes_per_position: settings
+            .samples
+            .iter()
+            .map(|&s| (s, 8 * s as u64))
+            .collect(),
+        full_logit_bytes_per_position: (settings.cols * (r.dtype.size() + file.dtype.size()))
+            as u64,
         exact_pass_seconds: seconds,
     };
 
     let vocab = settings.vocabulary;
-    let tok = |&(id, p): &(u32, f64)| TokenProb { id, p, text: vocab.and_then(|v| v.text(id)) };
+    let tok = |&(id, p): &(u32, f64)| TokenProb {
+        id,
+        p,
+        text: vocab.and_then(|v| v.text(id)),
+    };
     let worst_positions = worst
         .iter()
         .map(|rw| {
@@ -677,11 +778,20 @@ fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSour
         })
         .collect();
     let mut prompts: Vec<&engine::PromptSums> = acc.prompts.iter().filter(|p| p.n > 0.0).collect();
-    prompts.sort_by(|a, b| (b.sum[KL] / b.n).total_cmp(&(a.sum[KL] / a.n)).then(a.prompt.cmp(&b.prompt)));
+    prompts.sort_by(|a, b| {
+        (b.sum[KL] / b.n)
+            .total_cmp(&(a.sum[KL] / a.n))
+            .then(a.prompt.cmp(&b.prompt))
+    });
     let worst_prompts = prompts
         .iter()
         .take(settings.top)
-        .map(|p| WorstPromptReport { prompt: p.prompt, positions: p.n as u64, kl_mean: p.sum[KL] / p.n * scale, kl_max: p.max_kl * scale })
+        .map(|p| WorstPromptReport {
+            prompt: p.prompt,
+            positions: p.n as u64,
+            kl_mean: p.sum[KL] / p.n * scale,
+            kl_max: p.max_kl * scale,
+        })
         .collect();
 
     let kl = agg[KL].clone();
@@ -696,11 +806,23 @@ fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSour
         kl,
         kl_reverse: agg[KL_REV].clone(),
         tv: agg[engine::TV].clone(),
-        js: if settings.js { Some(agg[engine::JS].clone()) } else { None },
+        js: if settings.js {
+            Some(agg[engine::JS].clone())
+        } else {
+            None
+        },
         entropy_ref: agg[engine::ENT_REF].clone(),
         entropy_cand: agg[engine::ENT_CAND].clone(),
-        nll_ref: if has_nll { Some(agg[engine::NLL_REF].clone()) } else { None },
-        nll_cand: if has_nll { Some(agg[engine::NLL_CAND].clone()) } else { None },
+        nll_ref: if has_nll {
+            Some(agg[engine::NLL_REF].clone())
+        } else {
+            None
+        },
+        nll_cand: if has_nll {
+            Some(agg[engine::NLL_CAND].clone())
+        } else {
+            None
+        },
         top1_agree: top1,
         ppl_ref,
         ppl_cand,
@@ -724,36 +846,80 @@ fn candidate_report(settings: &ReportSettings, r: &FileSummary, c: CandidateSour
 /// The context tokens as text (with a tokenizer and targets).
 fn context_text(v: Option<&crate::tokens::Vocabulary>, ids: Option<&[i64]>) -> Option<Vec<String>> {
     let (v, ids) = (v?, ids?);
-    Some(ids.iter().filter(|&&id| id >= 0).map(|&id| v.text(id as u32).unwrap_or_else(|| format!("<{id}>"))).collect())
+    Some(
+        ids.iter()
+            .filter(|&&id| id >= 0)
+            .map(|&id| v.text(id as u32).unwrap_or_else(|| format!("<{id}>")))
+            .collect(),
+    )
 }
 
 /// The gates asked for. `p99_ci` is the interval of kl.p99 (see
 /// `quantile_interval`); a gate is `uncertain` when its limit lies inside the
 /// interval of its value.
-pub fn evaluate_gates(limits: &GateLimits, kl: &Aggregate, p99_ci: Option<[f64; 2]>, top1: f64, prompts: &[engine::PromptSums]) -> Vec<Gate> {
+pub fn evaluate_gates(
+    limits: &GateLimits,
+    kl: &Aggregate,
+    p99_ci: Option<[f64; 2]>,
+    top1: f64,
+    prompts: &[engine::PromptSums],
+) -> Vec<Gate> {
     let mut g = Vec::new();
     let inside = |ci: Option<[f64; 2]>, x: f64| ci.map_or(false, |[a, b]| a <= x && x <= b);
     if let Some(x) = limits.max_kl_mean {
         let v = kl.mean;
-        g.push(Gate { name: "max-kl-mean".into(), limit: x, value: v, pass: v <= x, uncertain: inside(kl.ci95, x), interval: kl.ci95 });
+        g.push(Gate {
+            name: "max-kl-mean".into(),
+            limit: x,
+            value: v,
+            pass: v <= x,
+            uncertain: inside(kl.ci95, x),
+            interval: kl.ci95,
+        });
     }
     if let Some(x) = limits.max_kl_p99 {
         let v = kl.p99;
-        g.push(Gate { name: "max-kl-p99".into(), limit: x, value: v, pass: v <= x, uncertain: inside(p99_ci, x), interval: p99_ci });
+        g.push(Gate {
+            name: "max-kl-p99".into(),
+            limit: x,
+            value: v,
+            pass: v <= x,
+            uncertain: inside(p99_ci, x),
+            interval: p99_ci,
+        });
     }
     if let Some(x) = limits.min_top1 {
         let (_, ci) = cluster_mean(prompts.iter().map(|p| (p.n, p.sum[engine::TOP1])));
-        g.push(Gate { name: "min-top1".into(), limit: x, value: top1, pass: top1 >= x, uncertain: inside(ci, x), interval: ci });
+        g.push(Gate {
+            name: "min-top1".into(),
+            limit: x,
+            value: top1,
+            pass: top1 >= x,
+            uncertain: inside(ci, x),
+            interval: ci,
+        });
     }
     g
 }
 
 #[allow(clippy::too_many_arguments)]
-fn warnings(settings: &ReportSettings, reference: &FileSummary, file: &FileSummary, acc: &CandidateAccum, kl: &Aggregate, floor: f64, n: u64, has_nll: bool) -> Vec<String> {
+fn warnings(
+    settings: &ReportSettings,
+    reference: &FileSummary,
+    file: &FileSummary,
+    acc: &CandidateAccum,
+    kl: &Aggregate,
+    floor: f64,
+    n: u64,
+    has_nll: bool,
+) -> Vec<String> {
     let mut w = Vec::new();
     let units = if settings.bits { "bits" } else { "nats" };
     if n == 0 {
-        w.push("no position was counted: every row is masked or skipped, so there is nothing to judge".into());
+        w.push(
+            "no position was counted: every row is masked or skipped, so there is nothing to judge"
+                .into(),
+        );
     } else if n < FEW_POSITIONS {
         w.push(format!("only {n} positions were counted: percentiles and intervals are rough; use more prompts before deciding"));
     }
@@ -761,7 +927,9 @@ fn warnings(settings: &ReportSettings, reference: &FileSummary, file: &FileSumma
     if reference.grouping == "rows" {
         w.push("no prompt grouping in the input (neither 3-D logits nor prompt_offsets): every row counts as its own prompt, so intervals ignore the correlation within a prompt and are too narrow".into());
     } else if prompts > 0 && prompts < FEW_PROMPTS {
-        w.push(format!("only {prompts} prompts: the 95% intervals rest on few clusters and are unreliable"));
+        w.push(format!(
+            "only {prompts} prompts: the 95% intervals rest on few clusters and are unreliable"
+        ));
     }
     if acc.skipped_rows > 0 {
         w.push(format!("{} rows were skipped for invalid values (NaN, +inf or all -inf logits); they are listed under `skipped`", acc.skipped_rows));

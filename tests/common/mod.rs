@@ -18,25 +18,48 @@ pub struct T {
 pub fn floats(dtype: Dtype, shape: &[usize], v: &[f32]) -> T {
     let data = match dtype {
         Dtype::F32 => v.iter().flat_map(|x| x.to_le_bytes()).collect(),
-        Dtype::F16 => v.iter().flat_map(|x| f16::from_f32(*x).to_le_bytes()).collect(),
-        Dtype::BF16 => v.iter().flat_map(|x| bf16::from_f32(*x).to_le_bytes()).collect(),
+        Dtype::F16 => v
+            .iter()
+            .flat_map(|x| f16::from_f32(*x).to_le_bytes())
+            .collect(),
+        Dtype::BF16 => v
+            .iter()
+            .flat_map(|x| bf16::from_f32(*x).to_le_bytes())
+            .collect(),
         d => panic!("not a float dtype: {d}"),
     };
-    T { dtype, shape: shape.to_vec(), data }
+    T {
+        dtype,
+        shape: shape.to_vec(),
+        data,
+    }
 }
 
 pub fn i64s(shape: &[usize], v: &[i64]) -> T {
-    T { dtype: Dtype::I64, shape: shape.to_vec(), data: v.iter().flat_map(|x| x.to_le_bytes()).collect() }
+    T {
+        dtype: Dtype::I64,
+        shape: shape.to_vec(),
+        data: v.iter().flat_map(|x| x.to_le_bytes()).collect(),
+    }
 }
 
 pub fn u8s(shape: &[usize], v: &[u8]) -> T {
-    T { dtype: Dtype::U8, shape: shape.to_vec(), data: v.to_vec() }
+    T {
+        dtype: Dtype::U8,
+        shape: shape.to_vec(),
+        data: v.to_vec(),
+    }
 }
 
 pub fn write(path: &Path, tensors: Vec<(&str, T)>, metadata: Option<HashMap<String, String>>) {
     let views: Vec<(String, TensorView)> = tensors
         .iter()
-        .map(|(n, t)| (n.to_string(), TensorView::new(t.dtype, t.shape.clone(), &t.data).unwrap()))
+        .map(|(n, t)| {
+            (
+                n.to_string(),
+                TensorView::new(t.dtype, t.shape.clone(), &t.data).unwrap(),
+            )
+        })
         .collect();
     safetensors::serialize_to_file(views, metadata, path).unwrap();
 }
@@ -47,7 +70,10 @@ pub struct Rng(pub u64);
 
 impl Rng {
     pub fn uniform(&mut self) -> f64 {
-        self.0 = self.0.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+        self.0 = self
+            .0
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
         ((self.0 >> 11) as f64) / ((1u64 << 53) as f64)
     }
     /// Standard normal by Box-Muller (common practice).
@@ -73,9 +99,16 @@ pub struct Pair {
 pub fn random_pair(rows: usize, vocab: usize, prompts: usize, noise: f64, seed: u64) -> Pair {
     let dir = tempdir::Dir::new();
     let mut r = Rng(seed);
-    let x: Vec<f32> = (0..rows * vocab).map(|_| (3.0 * r.normal()) as f32).collect();
-    let y: Vec<f32> = x.iter().map(|&v| (v as f64 + noise * r.normal()) as f32).collect();
-    let targets: Vec<i64> = (0..rows).map(|_| (r.uniform() * vocab as f64) as i64).collect();
+    let x: Vec<f32> = (0..rows * vocab)
+        .map(|_| (3.0 * r.normal()) as f32)
+        .collect();
+    let y: Vec<f32> = x
+        .iter()
+        .map(|&v| (v as f64 + noise * r.normal()) as f32)
+        .collect();
+    let targets: Vec<i64> = (0..rows)
+        .map(|_| (r.uniform() * vocab as f64) as i64)
+        .collect();
     let mut offs: Vec<i64> = (0..prompts).map(|p| (p * rows / prompts) as i64).collect();
     offs.push(rows as i64);
     let reference = dir.path().join("ref.safetensors");
@@ -91,11 +124,23 @@ pub fn random_pair(rows: usize, vocab: usize, prompts: usize, noise: f64, seed: 
             None,
         );
     }
-    Pair { dir, reference, candidate, x, y, targets, rows, vocab }
+    Pair {
+        dir,
+        reference,
+        candidate,
+        x,
+        y,
+        targets,
+        rows,
+        vocab,
+    }
 }
 
 pub fn klgauge(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_klgauge")).args(args).output().expect("run klgauge")
+    Command::new(env!("CARGO_BIN_EXE_klgauge"))
+        .args(args)
+        .output()
+        .expect("run klgauge")
 }
 
 pub fn json(path: &Path) -> serde_json::Value {
