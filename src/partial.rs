@@ -373,10 +373,6 @@ pub fn fingerprint(f: &LogitFile) -> String {
     format!("{:016x}", h.0)
 }
 
-fn grouping_name(f: &LogitFile) -> String {
-    FileSummary::of(f).grouping.to_string()
-}
-
 pub fn input_record(f: &LogitFile) -> InputRecord {
     InputRecord {
         path: f.path.display().to_string(),
@@ -384,7 +380,7 @@ pub fn input_record(f: &LogitFile) -> InputRecord {
         rows: f.rows as u64,
         vocab: f.vocab as u64,
         prompts: f.prompts() as u64,
-        grouping: grouping_name(f),
+        grouping: f.grouping.name().to_string(),
         shape: f.shape.iter().map(|&d| d as u64).collect(),
         model: f.metadata.get("model").cloned(),
         fingerprint: fingerprint(f),

@@ -296,19 +296,13 @@ pub fn build(f: &LogprobFile, bits: bool) -> EstimateReport {
     EstimateReport {
         schema: SCHEMA,
         units,
-        tool: ToolInfo {
-            name: "klgauge",
-            version: env!("CARGO_PKG_VERSION"),
-        },
+        tool: ToolInfo::current(),
         file: EstimateFileInfo {
             path: f.path.display().to_string(),
             draws: f.n as u64,
             counted,
             prompts,
-            grouping: match f.grouping {
-                Grouping::Offsets => "offsets",
-                _ => "rows",
-            },
+            grouping: f.grouping.name(),
             model: f
                 .metadata
                 .get("model")

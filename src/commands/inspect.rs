@@ -200,14 +200,6 @@ fn entry(f: &MappedFile) -> FileEntry {
     }
 }
 
-fn grouping_name(g: &Grouping) -> &'static str {
-    match g {
-        Grouping::Sequences { .. } => "sequences",
-        Grouping::Offsets => "offsets",
-        Grouping::PerRow => "rows",
-    }
-}
-
 /// Validates the file, gathers everything, and writes `--json` if asked.
 pub fn inspect(args: &InspectArgs) -> Result<InspectReport> {
     let report = build(&args.file)?;
@@ -232,10 +224,7 @@ pub fn build(path: &Path) -> Result<InspectReport> {
         first.tensors.contains_key("logprob_ref") || first.tensors.contains_key("logprob_cand");
     let mut report = InspectReport {
         schema: SCHEMA,
-        tool: ToolInfo {
-            name: "klgauge",
-            version: env!("CARGO_PKG_VERSION"),
-        },
+        tool: ToolInfo::current(),
         path: path.display().to_string(),
         kind: "logits",
         files: mapped.iter().map(entry).collect(),
@@ -407,7 +396,7 @@ fn logit_findings(lf: &LogitFile, r: &mut InspectReport) {
         vocab: lf.vocab as u64,
         shape: lf.shape.clone(),
         prompts: lf.prompts() as u64,
-        grouping: grouping_name(&lf.grouping),
+        grouping: lf.grouping.name(),
         targets: lf.targets.is_some(),
         mask: lf.mask.as_ref().map(|m| {
             let c = m.iter().filter(|&&b| b).count() as u64;
@@ -522,7 +511,7 @@ fn logprob_findings(lp: &LogprobFile, r: &mut InspectReport) {
     r.logprobs = Some(LogprobSummary {
         draws: lp.n as u64,
         prompts: lp.prompts() as u64,
-        grouping: grouping_name(&lp.grouping),
+        grouping: lp.grouping.name(),
         skipped,
         infinite,
         logprob_ref: range3(&lp.logprob_ref),

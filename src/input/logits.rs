@@ -73,6 +73,17 @@ impl Grouping {
     }
 }
 
+impl Grouping {
+    /// The name reports use: "sequences", "offsets" or "rows" (each row its own prompt).
+    pub fn name(&self) -> &'static str {
+        match self {
+            Grouping::Sequences { .. } => "sequences",
+            Grouping::Offsets => "offsets",
+            Grouping::PerRow => "rows",
+        }
+    }
+}
+
 #[derive(Debug)]
 struct Shard {
     file: MappedFile,

@@ -10,7 +10,7 @@ use crate::engine::{
     self, CandidateAccum, EngineResult, PairAccum, SkippedRow, WorstPosition, KL, KL_REV, NMETRIC,
 };
 use crate::estimators::KSummary;
-use crate::input::{Grouping, LogitFile, StoredDtype};
+use crate::input::{LogitFile, StoredDtype};
 use crate::stats::{cluster_mean, Aggregate};
 use serde::Serialize;
 use std::io::Write;
@@ -45,6 +45,16 @@ pub struct Report {
 pub struct ToolInfo {
     pub name: &'static str,
     pub version: &'static str,
+}
+
+impl ToolInfo {
+    /// This build of klgauge.
+    pub fn current() -> ToolInfo {
+        ToolInfo {
+            name: "klgauge",
+            version: env!("CARGO_PKG_VERSION"),
+        }
+    }
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -330,7 +340,7 @@ impl FileSummary {
             rows: f.rows as u64,
             vocab: f.vocab as u64,
             prompts: f.prompts() as u64,
-            grouping: grouping_name(&f.grouping),
+            grouping: f.grouping.name(),
             model: f.metadata.get("model").cloned(),
         }
     }
@@ -394,14 +404,6 @@ pub struct CandidateSource<'a> {
     pub storage_floor: f64,
     /// The 95% interval of kl's p99, in nats (see `p99_interval`).
     pub kl_p99_ci95: Option<[f64; 2]>,
-}
-
-fn grouping_name(g: &Grouping) -> &'static str {
-    match g {
-        Grouping::Sequences { .. } => "sequences",
-        Grouping::Offsets => "offsets",
-        Grouping::PerRow => "rows",
-    }
 }
 
 /// Rows sampled, evenly spaced, for the storage floor (partial results sample the same ones).
@@ -482,10 +484,7 @@ pub fn assemble(
     Report {
         schema: SCHEMA,
         units: if settings.bits { "bits" } else { "nats" },
-        tool: ToolInfo {
-            name: "klgauge",
-            version: env!("CARGO_PKG_VERSION"),
-        },
+        tool: ToolInfo::current(),
         reference: FileInfo {
             path: r.path.clone(),
             dtype: r.dtype.name(),
