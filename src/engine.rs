@@ -28,8 +28,6 @@ pub const NMETRIC: usize = 9;
 
 #[derive(Debug, Clone)]
 pub struct EngineOptions {
-    /// Compare only the first N columns of each file (both renormalised).
-    pub vocab: Option<usize>,
     pub js: bool,
     /// Draws per position for each estimator block, e.g. [1, 4, 16]. Blocks are
     /// nested: the first n draws of the largest budget.
@@ -45,7 +43,6 @@ pub struct EngineOptions {
 impl Default for EngineOptions {
     fn default() -> Self {
         EngineOptions {
-            vocab: None,
             js: false,
             samples: vec![1, 4, 16],
             seed: 0,
@@ -211,7 +208,6 @@ pub fn compared_columns(
 pub fn check_alignment<'a>(
     reference: &'a LogitFile,
     candidates: &'a [LogitFile],
-    cols: usize,
 ) -> Result<Option<&'a [i64]>> {
     // The first file that carries targets sets them; every other file that
     // carries them must agree (also between candidates when the reference has none).
@@ -291,8 +287,36 @@ pub fn check_alignment<'a>(
             ));
         }
     }
-    let _ = cols;
     Ok(targets)
+}
+
+/// What `run` needs to know about inputs that passed validation: the columns
+/// compared and the targets to use.
+#[derive(Debug, Clone, Copy)]
+pub struct Alignment<'a> {
+    pub cols: usize,
+    pub targets: Option<&'a [i64]>,
+}
+
+/// Validates that the candidates line up with the reference and fixes the
+/// compared columns (`--vocab` or the common vocabulary).
+pub fn align<'a>(
+    reference: &'a LogitFile,
+    candidates: &'a [LogitFile],
+    vocab: Option<usize>,
+) -> Result<Alignment<'a>> {
+    let cols = compared_columns(reference, candidates, vocab)?;
+    let targets = check_alignment(reference, candidates)?;
+    Ok(Alignment { cols, targets })
+}
+
+/// The estimator budgets in force: sorted, without duplicates or zeros.
+pub fn budgets(samples: &[usize]) -> Vec<usize> {
+    let mut s = samples.to_vec();
+    s.sort_unstable();
+    s.dedup();
+    s.retain(|&n| n > 0);
+    s
 }
 
 /// Per-candidate results of one row.
@@ -489,18 +513,15 @@ fn counted(row: usize, files: &[&LogitFile]) -> bool {
 pub fn run(
     reference: &LogitFile,
     candidates: &[LogitFile],
+    aligned: &Alignment,
     opts: &EngineOptions,
     sink: &mut dyn PositionSink,
 ) -> Result<EngineResult> {
     if candidates.is_empty() {
         return Err(Error::usage("compare needs at least one candidate file"));
     }
-    let cols = compared_columns(reference, candidates, opts.vocab)?;
-    let targets = check_alignment(reference, candidates, cols)?;
-    let mut samples = opts.samples.clone();
-    samples.sort_unstable();
-    samples.dedup();
-    samples.retain(|&n| n > 0);
+    let Alignment { cols, targets } = *aligned;
+    let samples = budgets(&opts.samples);
     let opts = &EngineOptions {
         samples: samples.clone(),
         ..opts.clone()

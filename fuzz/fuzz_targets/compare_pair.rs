@@ -54,14 +54,11 @@ fuzz_target!(|data: &[u8]| {
     let vocab = if opts & 1 != 0 { Some(1 + (opts as usize >> 4)) } else { None };
     let samples = if opts & 2 != 0 { vec![1, 3] } else { vec![] };
     let cands = vec![c];
-    let Ok(cols) = engine::compared_columns(&r, &cands, vocab) else {
+    let Ok(aligned) = engine::align(&r, &cands, vocab) else {
         return;
     };
-    let Ok(targets) = engine::check_alignment(&r, &cands, cols) else {
-        return;
-    };
+    let (cols, targets) = (aligned.cols, aligned.targets);
     let eo = EngineOptions {
-        vocab,
         js: opts & 4 != 0,
         samples: samples.clone(),
         seed: opts as u64,
@@ -78,7 +75,7 @@ fuzz_target!(|data: &[u8]| {
         })
     };
     let numbers = largest(&r).max(largest(&cands[0])) <= PRECISE_UP_TO;
-    let res = engine::run(&r, &cands, &eo, &mut Check { numbers }).expect("validated inputs run");
+    let res = engine::run(&r, &cands, &aligned, &eo, &mut Check { numbers }).expect("validated inputs run");
     let inputs = BuildInputs {
         reference: &r,
         candidates: &cands,

@@ -91,14 +91,13 @@ pub fn compare(args: &CompareArgs) -> Result<Outcome> {
         .iter()
         .map(|p| LogitFile::open(p))
         .collect::<Result<Vec<_>>>()?;
-    let cols = engine::compared_columns(&reference, &candidates, args.vocab)?;
-    let targets = engine::check_alignment(&reference, &candidates, cols)?;
+    let aligned = engine::align(&reference, &candidates, args.vocab)?;
+    let (cols, targets) = (aligned.cols, aligned.targets);
     let vocabulary = match &args.tokenizer {
         Some(p) => Some(crate::tokens::Vocabulary::load(p)?),
         None => None,
     };
     let opts = EngineOptions {
-        vocab: args.vocab,
         js: args.js,
         samples: args.samples.clone(),
         seed: args.seed,
@@ -107,12 +106,9 @@ pub fn compare(args: &CompareArgs) -> Result<Outcome> {
         block_rows: 64,
         progress: args.progress,
     };
-    let mut samples = args.samples.clone();
-    samples.sort_unstable();
-    samples.dedup();
-    samples.retain(|&n| n > 0);
+    let samples = engine::budgets(&args.samples);
 
-    let result = run_engine(args, &reference, &candidates, &opts)?;
+    let result = run_engine(args, &reference, &candidates, &aligned, &opts)?;
     let inputs = BuildInputs {
         reference: &reference,
         candidates: &candidates,
@@ -144,17 +140,18 @@ fn run_engine(
     args: &CompareArgs,
     reference: &LogitFile,
     candidates: &[LogitFile],
+    aligned: &engine::Alignment,
     opts: &EngineOptions,
 ) -> Result<engine::EngineResult> {
     with_threads(args.threads, || -> Result<engine::EngineResult> {
         match &args.csv {
             Some(p) => {
                 let mut sink = CsvSink::create(p, candidates.len(), args.js, args.bits)?;
-                let r = engine::run(reference, candidates, opts, &mut sink)?;
+                let r = engine::run(reference, candidates, aligned, opts, &mut sink)?;
                 sink.finish()?;
                 Ok(r)
             }
-            None => engine::run(reference, candidates, opts, &mut NoSink),
+            None => engine::run(reference, candidates, aligned, opts, &mut NoSink),
         }
     })?
 }
@@ -245,15 +242,11 @@ pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
         .iter()
         .map(|p| LogitFile::open(p))
         .collect::<Result<Vec<_>>>()?;
-    let cols = engine::compared_columns(&reference, &candidates, args.vocab)?;
-    let targets = engine::check_alignment(&reference, &candidates, cols)?;
+    let aligned = engine::align(&reference, &candidates, args.vocab)?;
+    let (cols, targets) = (aligned.cols, aligned.targets);
     let (prompts, rows) = crate::partial::shard_range(&reference, index, count);
-    let mut samples = args.samples.clone();
-    samples.sort_unstable();
-    samples.dedup();
-    samples.retain(|&n| n > 0);
+    let samples = engine::budgets(&args.samples);
     let opts = EngineOptions {
-        vocab: args.vocab,
         js: args.js,
         samples: samples.clone(),
         seed: args.seed,
@@ -262,7 +255,7 @@ pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
         block_rows: 64,
         progress: args.progress,
     };
-    let result = run_engine(args, &reference, &candidates, &opts)?;
+    let result = run_engine(args, &reference, &candidates, &aligned, &opts)?;
     let counted = result
         .candidates
         .iter()

@@ -238,7 +238,7 @@ pub fn build(path: &Path) -> Result<InspectReport> {
     if is_logits {
         let lf = LogitFile::open(path)?;
         // What compare checks of one file beyond the reader: targets inside the vocabulary.
-        crate::engine::check_alignment(&lf, &[], lf.vocab)?;
+        crate::engine::check_alignment(&lf, &[])?;
         logit_findings(&lf, &mut report);
         for f in &mapped {
             unknown_tensors(f, &LOGIT_TENSORS, &mut report.notes);
