@@ -74,38 +74,20 @@ pub fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Sen
 }
 
 pub fn compare(args: &CompareArgs) -> Result<Outcome> {
-    if args.candidates.is_empty() {
-        return Err(Error::usage(
-            "compare needs a reference and at least one candidate",
-        ));
-    }
     if args.shard.is_some() || args.partial.is_some() {
         return Err(Error::usage(
             "--shard and --partial write a partial result: use `compare_shard`",
         ));
     }
     // Open and validate everything before any computation or output.
-    let reference = LogitFile::open(&args.reference)?;
-    let candidates = args
-        .candidates
-        .iter()
-        .map(|p| LogitFile::open(p))
-        .collect::<Result<Vec<_>>>()?;
+    let (reference, candidates) = open_inputs(args)?;
     let aligned = engine::align(&reference, &candidates, args.vocab)?;
     let (cols, targets) = (aligned.cols, aligned.targets);
     let vocabulary = match &args.tokenizer {
         Some(p) => Some(crate::tokens::Vocabulary::load(p)?),
         None => None,
     };
-    let opts = EngineOptions {
-        js: args.js,
-        samples: args.samples.clone(),
-        seed: args.seed,
-        top: args.top,
-        rows: None,
-        block_rows: 64,
-        progress: args.progress,
-    };
+    let opts = engine_options(args, None);
     let samples = engine::budgets(&args.samples);
 
     let result = run_engine(args, &reference, &candidates, &aligned, &opts)?;
@@ -133,6 +115,35 @@ pub fn compare(args: &CompareArgs) -> Result<Outcome> {
         report,
         gate_failed,
     })
+}
+
+/// Opens and validates the reference and every candidate, before any
+/// computation or output.
+fn open_inputs(args: &CompareArgs) -> Result<(LogitFile, Vec<LogitFile>)> {
+    if args.candidates.is_empty() {
+        return Err(Error::usage(
+            "compare needs a reference and at least one candidate",
+        ));
+    }
+    let reference = LogitFile::open(&args.reference)?;
+    let candidates = args
+        .candidates
+        .iter()
+        .map(|p| LogitFile::open(p))
+        .collect::<Result<Vec<_>>>()?;
+    Ok((reference, candidates))
+}
+
+fn engine_options(args: &CompareArgs, rows: Option<std::ops::Range<usize>>) -> EngineOptions {
+    EngineOptions {
+        js: args.js,
+        samples: args.samples.clone(),
+        seed: args.seed,
+        top: args.top,
+        rows,
+        block_rows: 64,
+        progress: args.progress,
+    }
 }
 
 /// Runs the engine on the requested thread pool, streaming `--csv` if asked.
@@ -215,11 +226,6 @@ impl ShardOutcome {
 /// `compare --shard I/N --partial FILE`: the rows of one shard, written as a
 /// partial result for `merge`. Without `--shard` the whole input is shard 0/1.
 pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
-    if args.candidates.is_empty() {
-        return Err(Error::usage(
-            "compare needs a reference and at least one candidate",
-        ));
-    }
     let partial_path = args.partial.clone().ok_or_else(|| {
         Error::usage("--shard needs --partial FILE, where the shard writes its partial result")
     })?;
@@ -236,25 +242,12 @@ pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
     if g.max_kl_mean.is_some() || g.max_kl_p99.is_some() || g.min_top1.is_some() {
         return Err(Error::usage("gates judge the whole run: give --max-kl-mean, --max-kl-p99 and --min-top1 to `klgauge merge`, not to a shard"));
     }
-    let reference = LogitFile::open(&args.reference)?;
-    let candidates = args
-        .candidates
-        .iter()
-        .map(|p| LogitFile::open(p))
-        .collect::<Result<Vec<_>>>()?;
+    let (reference, candidates) = open_inputs(args)?;
     let aligned = engine::align(&reference, &candidates, args.vocab)?;
     let (cols, targets) = (aligned.cols, aligned.targets);
     let (prompts, rows) = crate::partial::shard_range(&reference, index, count);
     let samples = engine::budgets(&args.samples);
-    let opts = EngineOptions {
-        js: args.js,
-        samples: samples.clone(),
-        seed: args.seed,
-        top: args.top,
-        rows: Some(rows.clone()),
-        block_rows: 64,
-        progress: args.progress,
-    };
+    let opts = engine_options(args, Some(rows.clone()));
     let result = run_engine(args, &reference, &candidates, &aligned, &opts)?;
     let counted = result
         .candidates
