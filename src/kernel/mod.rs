@@ -22,9 +22,12 @@
 
 pub mod exp;
 pub mod lanes;
+pub mod row;
 
 use exp::{exp_nonpos, exp_step, mul_add};
 use lanes::{all_abs_below, any_above, hmax, hsum, hsum64, load, padded, widen_add, F, W};
+pub use row::Row;
+use row::{with_src, Src};
 use std::sync::atomic::{AtomicU8, Ordering};
 
 /// Columns per partial-sum block of the normalising pass; also the block
@@ -194,65 +197,37 @@ pub const SCALAR_FMA: bool = exp::fused(0);
 // ---------------------------------------------------------------------------
 // Decoding stored values.
 
-/// 2^112: moves an f16 exponent (bias 15) to an f32 one (bias 127).
-const F16_SCALE: f32 = 5.192_297e33;
-
+/// Widens a stored row into `out` (as many columns as `out` holds).
 #[inline(always)]
-fn bf16_to_f32(h: u16) -> f32 {
-    f32::from_bits((h as u32) << 16)
-}
-
-/// IEEE half to single, exact for every input: the 15 magnitude bits moved
-/// into an f32 and scaled by 2^112 (normals and subnormals alike), infinities
-/// and NaNs rebuilt with the top exponent, then the sign.
-#[inline(always)]
-fn f16_to_f32(h: u16) -> f32 {
-    let h = h as u32;
-    let em = h & 0x7fff;
-    let mag = f32::from_bits(em << 13) * F16_SCALE;
-    let mag = if em >= 0x7c00 {
-        f32::from_bits((em << 13) | 0x7f80_0000)
-    } else {
-        mag
-    };
-    f32::from_bits(mag.to_bits() | ((h & 0x8000) << 16))
-}
-
-#[inline(always)]
-fn decode_2byte(bytes: &[u8], out: &mut [f32], conv: impl Fn(u16) -> f32) {
-    assert_eq!(bytes.len(), 2 * out.len(), "decode: byte count");
-    let mut ob = out.chunks_exact_mut(W);
-    let mut ib = bytes.chunks_exact(2 * W);
-    for (o, c) in (&mut ob).zip(&mut ib) {
-        for j in 0..W {
-            o[j] = conv(u16::from_le_bytes([c[2 * j], c[2 * j + 1]]));
-        }
+fn decode_src<const L: u8, S: Src>(x: S, out: &mut [f32]) {
+    assert!(x.len() >= out.len(), "decode: byte count");
+    let n = out.len();
+    let mut i = 0;
+    while i + W <= n {
+        out[i..i + W].copy_from_slice(&x.chunk::<L>(i));
+        i += W;
     }
-    for (o, c) in ob
-        .into_remainder()
-        .iter_mut()
-        .zip(ib.remainder().chunks_exact(2))
-    {
-        *o = conv(u16::from_le_bytes([c[0], c[1]]));
+    for (j, o) in out.iter_mut().enumerate().skip(i) {
+        *o = x.at(j);
     }
 }
 
 #[inline(always)]
 fn decode_bf16_impl<const L: u8>(bytes: &[u8], out: &mut [f32]) {
-    decode_2byte(bytes, out, bf16_to_f32)
+    assert_eq!(bytes.len(), 2 * out.len(), "decode: byte count");
+    decode_src::<L, _>(row::Bf16Le(bytes), out)
 }
 
 #[inline(always)]
 fn decode_f16_impl<const L: u8>(bytes: &[u8], out: &mut [f32]) {
-    decode_2byte(bytes, out, f16_to_f32)
+    assert_eq!(bytes.len(), 2 * out.len(), "decode: byte count");
+    decode_src::<L, _>(row::F16Le(bytes), out)
 }
 
 #[inline(always)]
 fn decode_f32_impl<const L: u8>(bytes: &[u8], out: &mut [f32]) {
     assert_eq!(bytes.len(), 4 * out.len(), "decode: byte count");
-    for (o, c) in out.iter_mut().zip(bytes.chunks_exact(4)) {
-        *o = f32::from_le_bytes([c[0], c[1], c[2], c[3]]);
-    }
+    decode_src::<L, _>(row::F32Le(bytes), out)
 }
 
 dispatched! {
@@ -332,32 +307,36 @@ fn scan_step<const L: u8>(c: &F, chunk: u32, m: &mut F, at: &mut [u32; W]) {
 /// compare-and-select chains overlap instead of waiting on each other; they
 /// are separate variables so that they stay in registers.
 #[inline(always)]
-fn scan_max<const L: u8>(x: &[f32]) -> (f32, usize) {
+fn scan_max<const L: u8, S: Src>(x: S) -> (f32, usize) {
     let (mut m0, mut m1, mut m2, mut m3) = ([NEG_INF; W], [NEG_INF; W], [NEG_INF; W], [NEG_INF; W]);
     let (mut a0, mut a1, mut a2, mut a3) = ([0u32; W], [0u32; W], [0u32; W], [0u32; W]);
-    let quads = x.chunks_exact(4 * W);
-    let rest = quads.remainder();
+    let n = x.len();
     let mut ci = 0u32;
-    for q in quads {
-        scan_step::<L>(load(&q[..W]), ci, &mut m0, &mut a0);
-        scan_step::<L>(load(&q[W..]), ci + 1, &mut m1, &mut a1);
-        scan_step::<L>(load(&q[2 * W..]), ci + 2, &mut m2, &mut a2);
-        scan_step::<L>(load(&q[3 * W..]), ci + 3, &mut m3, &mut a3);
+    let mut i = 0usize;
+    while i + 4 * W <= n {
+        scan_step::<L>(&x.chunk::<L>(i), ci, &mut m0, &mut a0);
+        scan_step::<L>(&x.chunk::<L>(i + W), ci + 1, &mut m1, &mut a1);
+        scan_step::<L>(&x.chunk::<L>(i + 2 * W), ci + 2, &mut m2, &mut a2);
+        scan_step::<L>(&x.chunk::<L>(i + 3 * W), ci + 3, &mut m3, &mut a3);
         ci += 4;
+        i += 4 * W;
     }
     // At most three whole chunks and a partial one are left: to m0, m1, m2, m3 in turn.
     let mut k = 0;
-    let mut left = rest;
-    while !left.is_empty() {
-        let n = left.len().min(W);
-        let c = padded(&left[..n], NEG_INF);
+    while i < n {
+        let hi = (i + W).min(n);
+        let c = if hi - i == W {
+            x.chunk::<L>(i)
+        } else {
+            x.padded(i, hi, NEG_INF)
+        };
         match k {
             0 => scan_step::<L>(&c, ci, &mut m0, &mut a0),
             1 => scan_step::<L>(&c, ci, &mut m1, &mut a1),
             2 => scan_step::<L>(&c, ci, &mut m2, &mut a2),
             _ => scan_step::<L>(&c, ci, &mut m3, &mut a3),
         }
-        left = &left[n..];
+        i = hi;
         ci += 1;
         k += 1;
     }
@@ -382,10 +361,11 @@ fn scan_max<const L: u8>(x: &[f32]) -> (f32, usize) {
 /// What is wrong with a row that did not normalise (NaN first, as SPEC
 /// lists faults by the value that causes them).
 #[cold]
-fn classify_fault(x: &[f32]) -> RowFault {
-    if x.iter().any(|v| v.is_nan()) {
+fn classify_fault<S: Src>(x: S) -> RowFault {
+    let n = x.len();
+    if (0..n).any(|i| x.at(i).is_nan()) {
         RowFault::Nan
-    } else if x.contains(&f32::INFINITY) {
+    } else if (0..n).any(|i| x.at(i) == f32::INFINITY) {
         RowFault::PosInf
     } else {
         RowFault::AllNegInf
@@ -394,7 +374,7 @@ fn classify_fault(x: &[f32]) -> RowFault {
 
 #[inline(always)]
 fn scan_impl<const L: u8>(x: &[f32]) -> (f32, usize) {
-    scan_max::<L>(x)
+    scan_max::<L, _>(row::F32Le(bytemuck::cast_slice(x)))
 }
 
 dispatched! {
@@ -405,8 +385,8 @@ dispatched! {
 /// Stores exp(x - m) into `e`, the sum of every NORM_BLOCK columns into
 /// `blocks`, and returns (sum exp(x - m), sum (x - m) exp(x - m)).
 #[inline(always)]
-fn exp_pass<const L: u8, const STORE: bool>(
-    x: &[f32],
+fn exp_pass<const L: u8, const STORE: bool, S: Src>(
+    x: S,
     m: f32,
     e: &mut [f32],
     blocks: &mut [f64],
@@ -436,30 +416,22 @@ fn exp_pass<const L: u8, const STORE: bool>(
         for k in 0..g {
             let lo = (bi + k) * NORM_BLOCK;
             let hi = (lo + NORM_BLOCK).min(n);
-            let bx = &x[lo..hi];
             // Both sums start afresh in every block, so consecutive blocks'
             // dependency chains overlap.
             let mut s = [0f32; W];
             let mut t = [0f32; W];
-            let cx = bx.chunks_exact(W);
-            let tail = cx.remainder();
-            if STORE {
-                let mut ce = e[lo..hi].chunks_exact_mut(W);
-                for (c, o) in cx.zip(&mut ce) {
-                    let v = exp_step::<L>(load(c), m, &mut s, &mut t);
-                    o.copy_from_slice(&v);
+            let mut c = lo;
+            while c + W <= hi {
+                let v = exp_step::<L>(&x.chunk::<L>(c), m, &mut s, &mut t);
+                if STORE {
+                    e[c..c + W].copy_from_slice(&v);
                 }
-                if !tail.is_empty() {
-                    let v = exp_step::<L>(&padded(tail, NEG_INF), m, &mut s, &mut t);
-                    let o = ce.into_remainder();
-                    o.copy_from_slice(&v[..o.len()]);
-                }
-            } else {
-                for c in cx {
-                    exp_step::<L>(load(c), m, &mut s, &mut t);
-                }
-                if !tail.is_empty() {
-                    exp_step::<L>(&padded(tail, NEG_INF), m, &mut s, &mut t);
+                c += W;
+            }
+            if c < hi {
+                let v = exp_step::<L>(&x.padded(c, hi, NEG_INF), m, &mut s, &mut t);
+                if STORE {
+                    e[c..hi].copy_from_slice(&v[..hi - c]);
                 }
             }
             lanes[k] = s;
@@ -477,8 +449,8 @@ fn exp_pass<const L: u8, const STORE: bool>(
 }
 
 #[inline(always)]
-fn normalise_any<const L: u8, const STORE: bool>(
-    x: &[f32],
+fn normalise_any<const L: u8, const STORE: bool, S: Src>(
+    x: S,
     e: &mut [f32],
     blocks: &mut [f64],
 ) -> Result<RowNorm, RowFault> {
@@ -490,11 +462,11 @@ fn normalise_any<const L: u8, const STORE: bool>(
         blocks.len() >= norm_blocks(x.len()),
         "normalise: block buffer too short"
     );
-    let (max, argmax) = scan_max::<L>(x);
+    let (max, argmax) = scan_max::<L, S>(x);
     if !max.is_finite() {
         return Err(classify_fault(x));
     }
-    let (s, t) = exp_pass::<L, STORE>(x, max, e, blocks);
+    let (s, t) = exp_pass::<L, STORE, S>(x, max, e, blocks);
     // A NaN logit went through exp into the sum (NaN lanes are kept), so
     // one test here replaces a test per column.
     if s.is_nan() {
@@ -516,12 +488,26 @@ fn normalise_impl<const L: u8>(
     e: &mut [f32],
     blocks: &mut [f64],
 ) -> Result<RowNorm, RowFault> {
-    normalise_any::<L, true>(x, e, blocks)
+    normalise_any::<L, true, _>(row::F32Le(bytemuck::cast_slice(x)), e, blocks)
 }
 
 #[inline(always)]
 fn normalise_only_impl<const L: u8>(x: &[f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
-    normalise_any::<L, false>(x, &mut [], blocks)
+    normalise_any::<L, false, _>(row::F32Le(bytemuck::cast_slice(x)), &mut [], blocks)
+}
+
+#[inline(always)]
+fn normalise_row_impl<const L: u8>(
+    x: Row,
+    e: &mut [f32],
+    blocks: &mut [f64],
+) -> Result<RowNorm, RowFault> {
+    with_src!(x, s => normalise_any::<L, true, _>(s, e, blocks))
+}
+
+dispatched! {
+    /// `normalise_store` of a row in its stored form, widened as it is read.
+    pub fn normalise_row / normalise_row_at(x: Row, e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> => normalise_row_impl
 }
 
 dispatched! {
@@ -824,12 +810,13 @@ fn step_sq(x: f32, r: Rounding) -> f64 {
 fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> f64 {
     let n = x.len().min(y.len());
     let (x, y) = (&x[..n], &y[..n]);
-    let (m, _) = scan_max::<L>(x);
+    let xs = row::F32Le(bytemuck::cast_slice(x));
+    let (m, _) = scan_max::<L, _>(xs);
     if !m.is_finite() {
         return f64::NAN;
     }
     let mut blocks = vec![0f64; norm_blocks(n)];
-    let (sum, _) = exp_pass::<L, false>(x, m, &mut [], &mut blocks);
+    let (sum, _) = exp_pass::<L, false, _>(xs, m, &mut [], &mut blocks);
     if sum.is_nan() {
         return f64::NAN;
     }
