@@ -150,6 +150,22 @@ fn main() {
             let c = kernel::normalise_store_at(l, &xc, &mut ec3, &mut bc).unwrap();
             black_box(kernel::compare_stored_at(l, &xr, &xc, &er3, &ec3, &r, &c));
         });
+        // The engine's row now: the reference normalised from its stored
+        // bytes, the candidate normalised inside the fused pair pass.
+        let mut ps = kernel::PairScratch::new(cols);
+        let (rx, ry) = (kernel::Row::Bf16(&bf), kernel::Row::Bf16(&bfy));
+        let rr = kernel::normalise_row_at(l, rx, &mut er3, &mut br).unwrap();
+        let mut bw = vec![0f64; kernel::norm_blocks(cols)];
+        let mut vb = vec![0f32; cols];
+        run("compare_fused_bf16", &mut || {
+            black_box(kernel::compare_fused_at(
+                l, rx, ry, &er3, &br, &rr, &mut vb, &mut bw,
+            ));
+        });
+        run("fused_row_bf16", &mut || {
+            let r = kernel::normalise_row_at(l, black_box(rx), &mut er3, &mut br).unwrap();
+            black_box(kernel::compare_pair(rx, black_box(ry), &er3, &br, &r, &mut ps).ok());
+        });
         let rd = kernel::Rounding {
             mantissa_bits: 7,
             min_exp: -133,

@@ -10,7 +10,7 @@
 use crate::error::{Error, Result};
 use crate::estimators::{draw_tokens, k_values, EstimatorSums};
 use crate::input::LogitFile;
-use crate::kernel::{self, RowFault, RowNorm};
+use crate::kernel::{self, Row, RowFault, RowNorm};
 use serde::{Deserialize, Serialize};
 use std::ops::Range;
 
@@ -337,33 +337,36 @@ struct RowOut {
 
 /// Per-thread working memory, allocated once per run and reused for every row.
 struct Scratch {
-    /// Decoded rows (unused when the file stores aligned F32: the map is read directly).
-    xr: Vec<f32>,
-    xc: Vec<f32>,
-    /// exp(x - max) of the reference row and of the current candidate row.
+    cols: usize,
+    /// The stored bytes of the reference row and of the current candidate row.
+    raw_r: Vec<u8>,
+    raw_c: Vec<u8>,
+    /// exp(x - max) of the reference row, and its block sums.
     er: Vec<f32>,
-    ec: Vec<f32>,
     br: Vec<f64>,
-    bc: Vec<f64>,
+    pair: kernel::PairScratch,
+    /// Decoded rows, for the opt-in Jensen-Shannon pass only.
+    xd: Vec<f32>,
+    yd: Vec<f32>,
     order: Vec<(f64, usize)>,
     tok_p: Vec<u32>,
     tok_q: Vec<u32>,
-    raw: Vec<u8>,
 }
 
 impl Scratch {
     fn new(cols: usize, draws: usize) -> Scratch {
         Scratch {
-            xr: vec![0.0; cols],
-            xc: vec![0.0; cols],
+            cols,
+            raw_r: Vec::new(),
+            raw_c: Vec::new(),
             er: vec![0.0; cols],
-            ec: vec![0.0; cols],
             br: vec![0.0; kernel::norm_blocks(cols)],
-            bc: vec![0.0; kernel::norm_blocks(cols)],
+            pair: kernel::PairScratch::new(cols),
+            xd: Vec::new(),
+            yd: Vec::new(),
             order: Vec::with_capacity(draws),
             tok_p: vec![0; draws],
             tok_q: vec![0; draws],
-            raw: Vec::new(),
         }
     }
 }
@@ -378,8 +381,8 @@ struct RowCtx<'a> {
 
 /// log q(t) - log p(t) for token t, in f64.
 #[inline]
-fn log_ratio(xr: &[f32], nr: &RowNorm, xc: &[f32], nc: &RowNorm, t: u32) -> f64 {
-    (xc[t as usize] as f64 - nc.lse) - (xr[t as usize] as f64 - nr.lse)
+fn log_ratio(xr: Row, nr: &RowNorm, xc: Row, nc: &RowNorm, t: u32) -> f64 {
+    (xc.get(t as usize) as f64 - nc.lse) - (xr.get(t as usize) as f64 - nr.lse)
 }
 
 /// Fills `est[b][dir]` with the mean k-values of the first samples[b] draws.
@@ -407,20 +410,21 @@ fn fold_draws(
 
 fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
     let Scratch {
-        xr: xr_buf,
-        xc: xc_buf,
+        cols,
+        raw_r,
+        raw_c,
         er,
-        ec,
         br,
-        bc,
+        pair,
+        xd,
+        yd,
         order,
         tok_p,
         tok_q,
-        raw,
     } = s;
-    let cols = xr_buf.len();
-    let xr = ctx.reference.load_row(row, xr_buf, raw);
-    let nr = match kernel::normalise_store(xr, er, br) {
+    let cols = *cols;
+    let xr = ctx.reference.stored_row(row, cols, raw_r);
+    let nr = match kernel::normalise_row(xr, er, br) {
         Ok(n) => n,
         Err(f) => {
             out.ref_fault = Some(f);
@@ -441,28 +445,35 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
             &mut tok_p[..draws],
         );
     }
+    if ctx.opts.js {
+        xd.resize(cols, 0.0);
+        kernel::decode(xr, xd);
+    }
     let target = ctx
         .targets
         .map(|t| t[row])
         .filter(|&t| t >= 0 && (t as usize) < cols);
     for (k, cand) in ctx.candidates.iter().enumerate() {
         let co = &mut out.cands[k];
-        let xc = cand.load_row(row, xc_buf, raw);
-        let nc = match kernel::normalise_store(xc, ec, bc) {
-            Ok(n) => n,
-            Err(f) => {
-                co.fault = Some(f);
+        let xc = cand.stored_row(row, cols, raw_c);
+        // The candidate is normalised inside the pair pass (see `kernel::compare_pair`).
+        let (f, _) = match kernel::compare_pair(xr, xc, er, br, &nr, pair) {
+            Ok(v) => v,
+            Err(fault) => {
+                co.fault = Some(fault);
                 continue;
             }
         };
         co.fault = None;
-        let pm = kernel::compare_stored(xr, xc, er, ec, &nr, &nc);
+        let (pm, nc) = (f.m, f.c);
         let m = &mut co.m;
         m[KL] = pm.kl;
         m[KL_REV] = pm.kl_reverse;
         m[TV] = pm.tv;
         m[JS] = if ctx.opts.js {
-            kernel::js_divergence(xr, xc, &nr, &nc)
+            yd.resize(cols, 0.0);
+            kernel::decode(xc, yd);
+            kernel::js_divergence(xd, yd, &nr, &nc)
         } else {
             f64::NAN
         };
@@ -471,8 +482,8 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
         m[TOP1] = if nr.argmax == nc.argmax { 1.0 } else { 0.0 };
         match target {
             Some(t) => {
-                m[NLL_REF] = nr.lse - xr[t as usize] as f64;
-                m[NLL_CAND] = nc.lse - xc[t as usize] as f64;
+                m[NLL_REF] = nr.lse - xr.get(t as usize) as f64;
+                m[NLL_CAND] = nc.lse - xc.get(t as usize) as f64;
             }
             None => {
                 m[NLL_REF] = f64::NAN;
@@ -486,8 +497,8 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
             });
             draw_tokens(
                 xc,
-                nc.max,
-                bc,
+                f.anchor,
+                &pair.blocks,
                 ctx.opts.seed,
                 row as u64,
                 1 + k as u64,

@@ -19,7 +19,7 @@
 //! k3 only at second order, since E_p[r] = 1. Both are far below the sampling
 //! noise of any feasible number of positions.
 
-use crate::kernel::NORM_BLOCK;
+use crate::kernel::{Row, NORM_BLOCK};
 use serde::{Deserialize, Serialize};
 
 /// The three per-draw values for a given log r.
@@ -76,9 +76,11 @@ pub fn uniform(seed: u64, row: u64, direction: u64, j: u64) -> f64 {
 
 /// Draws `out.len()` tokens from softmax(x) by inverse CDF. `blocks` holds
 /// the sums of exp(x - max) per NORM_BLOCK columns, as left by
-/// `kernel::normalise`. `order` is scratch of the same length as `out`.
+/// `kernel::normalise` (or of exp(x - anchor), as `kernel::compare_pair`
+/// leaves them for the candidate: `max` is then the anchor). `order` is
+/// scratch of the same length as `out`.
 pub fn draw_tokens(
-    x: &[f32],
+    x: Row,
     max: f32,
     blocks: &[f64],
     seed: u64,
@@ -104,8 +106,8 @@ pub fn draw_tokens(
         let mut a = acc;
         let mut pick = None;
         let mut last_nonzero = lo;
-        for (i, &v) in x[lo..hi].iter().enumerate() {
-            let e = (v as f64 - max as f64).exp();
+        for i in 0..hi - lo {
+            let e = (x.get(lo + i) as f64 - max as f64).exp();
             if e > 0.0 {
                 last_nonzero = lo + i;
                 a += e;
@@ -295,7 +297,16 @@ mod tests {
         let n = 200_000usize;
         let mut out = vec![0u32; n];
         let mut order = Vec::new();
-        draw_tokens(&x, mx, &blocks, 7, 3, 0, &mut order, &mut out);
+        draw_tokens(
+            Row::from_f32(&x),
+            mx,
+            &blocks,
+            7,
+            3,
+            0,
+            &mut order,
+            &mut out,
+        );
         assert!(
             out.iter().all(|&t| !(256..320).contains(&(t as usize))),
             "drew a token of probability 0"
@@ -324,11 +335,11 @@ mod tests {
         crate::kernel::normalise(&x, &mut blocks).unwrap();
         let mut order = Vec::new();
         let (mut a, mut b) = (vec![0u32; 16], vec![0u32; 4]);
-        draw_tokens(&x, mx, &blocks, 1, 9, 0, &mut order, &mut a);
-        draw_tokens(&x, mx, &blocks, 1, 9, 0, &mut order, &mut b);
+        draw_tokens(Row::from_f32(&x), mx, &blocks, 1, 9, 0, &mut order, &mut a);
+        draw_tokens(Row::from_f32(&x), mx, &blocks, 1, 9, 0, &mut order, &mut b);
         assert_eq!(&a[..4], &b[..]);
         let mut c = vec![0u32; 16];
-        draw_tokens(&x, mx, &blocks, 1, 10, 0, &mut order, &mut c);
+        draw_tokens(Row::from_f32(&x), mx, &blocks, 1, 10, 0, &mut order, &mut c);
         assert_ne!(a, c, "another row draws other tokens");
     }
 
@@ -354,7 +365,16 @@ mod tests {
         let n = 20000;
         let mut out = vec![0u32; n];
         let mut order = Vec::new();
-        draw_tokens(&x, mx, &blocks, 42, 0, 0, &mut order, &mut out);
+        draw_tokens(
+            Row::from_f32(&x),
+            mx,
+            &blocks,
+            42,
+            0,
+            0,
+            &mut order,
+            &mut out,
+        );
         for (t, p) in [(0u32, 0.5f64), (1, 0.3), (2, 0.2)] {
             let f = out.iter().filter(|&&o| o == t).count() as f64 / n as f64;
             let se = (p * (1.0 - p) / n as f64).sqrt();

@@ -4,6 +4,7 @@
 
 use super::file::MappedFile;
 use crate::error::{Error, Result};
+use crate::kernel::Row;
 use safetensors::Dtype;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -29,6 +30,14 @@ impl StoredDtype {
         match self {
             StoredDtype::F32 => 4,
             StoredDtype::F16 | StoredDtype::BF16 => 2,
+        }
+    }
+    /// Stored little-endian bytes of this format as a kernel row.
+    pub fn row(self, bytes: &[u8]) -> Row<'_> {
+        match self {
+            StoredDtype::F32 => Row::F32(bytes),
+            StoredDtype::F16 => Row::F16(bytes),
+            StoredDtype::BF16 => Row::Bf16(bytes),
         }
     }
     /// Explicit mantissa bits: the rounding step at value x is 2^(floor(log2|x|) - bits).
@@ -360,29 +369,31 @@ impl LogitFile {
         buf
     }
 
-    /// The first `buf.len()` columns of `row` as f32, for the streaming
-    /// pass: read with positioned reads in pieces that stay in cache while
-    /// they are decoded into `buf` (F32 is read straight into `buf`); `raw`
-    /// is the caller's reusable piece buffer. Falls back to the map (see
-    /// `row_view`) where positioned reads are unavailable, fail, or
+    /// The first `cols` columns of `row` in their stored form, for the
+    /// streaming pass: read with one positioned read into the caller's
+    /// reusable `raw`, where it stays in cache for the kernel's passes. Falls
+    /// back to the map where positioned reads are unavailable, fail, or
     /// `KLGAUGE_IO=map` asks for it.
     ///
     /// Why not the map: faulting every page in (and releasing it behind)
     /// costs the kernel more than copying the same bytes out of the page
-    /// cache, and the copy lands in cache right before the decode.
-    pub fn load_row<'a>(&'a self, row: usize, buf: &'a mut [f32], raw: &mut Vec<u8>) -> &'a [f32] {
+    /// cache, and the copy lands in cache right before the first pass.
+    pub fn stored_row<'a>(&'a self, row: usize, cols: usize, raw: &'a mut Vec<u8>) -> Row<'a> {
+        let es = self.dtype.size();
         #[cfg(unix)]
         {
+            use std::os::unix::fs::FileExt;
             let s = self.shard_of(row);
             if let (Some(f), false) = (s.reader.as_ref(), map_only()) {
-                let start = s.logits_start + (row - s.first_row) * s.stride * self.dtype.size();
-                if read_decode(f, self.dtype, start as u64, buf, raw).is_ok() {
-                    return buf;
+                let start = s.logits_start + (row - s.first_row) * s.stride * es;
+                raw.resize(cols * es, 0);
+                if f.read_exact_at(raw, start as u64).is_ok() {
+                    return self.dtype.row(raw);
                 }
             }
         }
         let _ = raw;
-        self.row_view(row, buf)
+        self.dtype.row(self.row_bytes(row, cols))
     }
 
     /// Asks the kernel to read ahead `rows` rows starting at `row` (an
@@ -459,35 +470,6 @@ fn map_only() -> bool {
     *V.get_or_init(|| std::env::var("KLGAUGE_IO").is_ok_and(|v| v == "map"))
 }
 
-/// Bytes per positioned read: small enough to stay in the core's cache
-/// between the copy and the decode, large enough that calls are few.
-const READ_PIECE: usize = 64 << 10;
-
-#[cfg(unix)]
-fn read_decode(
-    f: &std::fs::File,
-    dtype: StoredDtype,
-    start: u64,
-    out: &mut [f32],
-    raw: &mut Vec<u8>,
-) -> std::io::Result<()> {
-    use std::os::unix::fs::FileExt;
-    if dtype == StoredDtype::F32 && cfg!(target_endian = "little") {
-        return f.read_exact_at(bytemuck::cast_slice_mut(out), start);
-    }
-    let es = dtype.size();
-    let per = READ_PIECE / es;
-    raw.resize(READ_PIECE, 0);
-    let mut off = start;
-    for piece in out.chunks_mut(per) {
-        let bytes = &mut raw[..piece.len() * es];
-        f.read_exact_at(bytes, off)?;
-        decode_row(dtype, bytes, piece);
-        off += bytes.len() as u64;
-    }
-    Ok(())
-}
-
 /// The virtual-memory page size (4 KiB where it cannot be asked).
 fn page_size() -> usize {
     #[cfg(unix)]
@@ -516,9 +498,5 @@ fn names(f: &MappedFile) -> String {
 /// Converts stored little-endian values to f32 (any alignment; the format
 /// allows a misaligned tensor) with the kernel's vectorised decoders.
 pub fn decode_row(dtype: StoredDtype, bytes: &[u8], out: &mut [f32]) {
-    match dtype {
-        StoredDtype::F32 => crate::kernel::decode_f32(bytes, out),
-        StoredDtype::BF16 => crate::kernel::decode_bf16(bytes, out),
-        StoredDtype::F16 => crate::kernel::decode_f16(bytes, out),
-    }
+    crate::kernel::decode(dtype.row(bytes), out)
 }

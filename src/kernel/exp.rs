@@ -192,11 +192,17 @@ pub fn exp_step<const L: u8>(
 /// exp(x) for any x (clamped to [-87.3, 88.3] first; below -87.3 gives 0).
 #[inline(always)]
 pub fn exp_f32(x: f32) -> f32 {
+    exp_clamped::<0>(x)
+}
+
+/// `exp_f32` built for kernel level `L` (fused multiply-adds where `L` fuses).
+#[inline(always)]
+pub fn exp_clamped<const L: u8>(x: f32) -> f32 {
     // Written as compare-and-select so that NaN passes through both clamps.
     // n up to 127 keeps (n + 127) inside the exponent field, so the bit
     // construction in `exp_nonpos` holds for positive arguments up to 88.3.
     let xc = if x > EXP_CLAMP_HI { EXP_CLAMP_HI } else { x };
-    exp_nonpos::<0>(xc)
+    exp_nonpos::<L>(xc)
 }
 
 #[cfg(test)]

@@ -96,6 +96,16 @@ pub fn widen_add<const L: u8>(acc: &mut [f64; W], v: &F) {
 #[inline(always)]
 pub fn all_abs_below<const L: u8>(v: &F, bound: f32) -> bool {
     #[cfg(target_arch = "x86_64")]
+    if L >= 2 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 2 is only instantiated inside functions compiled with
+        // AVX-512F, called after run-time detection; the load stays inside `v`.
+        unsafe {
+            let a = _mm512_abs_ps(_mm512_loadu_ps(v.as_ptr()));
+            return _mm512_cmp_ps_mask::<_CMP_LT_OQ>(a, _mm512_set1_ps(bound)) == 0xffff;
+        }
+    }
+    #[cfg(target_arch = "x86_64")]
     if L >= 1 {
         use std::arch::x86_64::*;
         // SAFETY: as in `hsum`.

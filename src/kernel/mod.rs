@@ -204,7 +204,7 @@ fn decode_src<const L: u8, S: Src>(x: S, out: &mut [f32]) {
     let n = out.len();
     let mut i = 0;
     while i + W <= n {
-        out[i..i + W].copy_from_slice(&x.chunk::<L>(i));
+        out[i..i + W].copy_from_slice(&unsafe { x.chunk::<L>(i) });
         i += W;
     }
     for (j, o) in out.iter_mut().enumerate().skip(i) {
@@ -228,6 +228,16 @@ fn decode_f16_impl<const L: u8>(bytes: &[u8], out: &mut [f32]) {
 fn decode_f32_impl<const L: u8>(bytes: &[u8], out: &mut [f32]) {
     assert_eq!(bytes.len(), 4 * out.len(), "decode: byte count");
     decode_src::<L, _>(row::F32Le(bytes), out)
+}
+
+#[inline(always)]
+fn decode_impl<const L: u8>(x: Row, out: &mut [f32]) {
+    with_src!(x, s => decode_src::<L, _>(s, out))
+}
+
+dispatched! {
+    /// The first `out.len()` columns of a stored row, widened to f32.
+    pub fn decode / decode_at(x: Row, out: &mut [f32]) -> () => decode_impl
 }
 
 dispatched! {
@@ -314,10 +324,20 @@ fn scan_max<const L: u8, S: Src>(x: S) -> (f32, usize) {
     let mut ci = 0u32;
     let mut i = 0usize;
     while i + 4 * W <= n {
-        scan_step::<L>(&x.chunk::<L>(i), ci, &mut m0, &mut a0);
-        scan_step::<L>(&x.chunk::<L>(i + W), ci + 1, &mut m1, &mut a1);
-        scan_step::<L>(&x.chunk::<L>(i + 2 * W), ci + 2, &mut m2, &mut a2);
-        scan_step::<L>(&x.chunk::<L>(i + 3 * W), ci + 3, &mut m3, &mut a3);
+        scan_step::<L>(&unsafe { x.chunk::<L>(i) }, ci, &mut m0, &mut a0);
+        scan_step::<L>(&unsafe { x.chunk::<L>(i + W) }, ci + 1, &mut m1, &mut a1);
+        scan_step::<L>(
+            &unsafe { x.chunk::<L>(i + 2 * W) },
+            ci + 2,
+            &mut m2,
+            &mut a2,
+        );
+        scan_step::<L>(
+            &unsafe { x.chunk::<L>(i + 3 * W) },
+            ci + 3,
+            &mut m3,
+            &mut a3,
+        );
         ci += 4;
         i += 4 * W;
     }
@@ -326,7 +346,7 @@ fn scan_max<const L: u8, S: Src>(x: S) -> (f32, usize) {
     while i < n {
         let hi = (i + W).min(n);
         let c = if hi - i == W {
-            x.chunk::<L>(i)
+            unsafe { x.chunk::<L>(i) }
         } else {
             x.padded(i, hi, NEG_INF)
         };
@@ -422,7 +442,7 @@ fn exp_pass<const L: u8, const STORE: bool, S: Src>(
             let mut t = [0f32; W];
             let mut c = lo;
             while c + W <= hi {
-                let v = exp_step::<L>(&x.chunk::<L>(c), m, &mut s, &mut t);
+                let v = exp_step::<L>(&unsafe { x.chunk::<L>(c) }, m, &mut s, &mut t);
                 if STORE {
                     e[c..c + W].copy_from_slice(&v);
                 }
@@ -766,18 +786,506 @@ dispatched! {
     pub fn compare_stored / compare_stored_at(x: &[f32], y: &[f32], er: &[f32], ec: &[f32], r: &RowNorm, c: &RowNorm) -> PairMetrics => compare_impl
 }
 
-/// KL both ways and total variation between two normalised rows
-/// (recomputes the exponentials; allocates; same result as `compare_stored`).
-pub fn compare_rows(x: &[f32], y: &[f32], r: &RowNorm, c: &RowNorm) -> PairMetrics {
-    let mut er = vec![0f32; x.len()];
-    let mut ec = vec![0f32; y.len()];
-    let mut b = vec![0f64; norm_blocks(x.len().max(y.len()))];
-    let (r2, c2) = (
-        normalise_store(x, &mut er, &mut b),
-        normalise_store(y, &mut ec, &mut b),
+// ---------------------------------------------------------------------------
+// The fused pair pass: the candidate normalised inside the comparison.
+//
+// `normalise_store` + `compare_stored` cost the candidate a pass of its own
+// (a max scan and an exp per column) before the pair pass. The fused pass
+// needs neither. It takes the candidate relative to its value at the
+// reference's top column a (the anchor y_a) and the reference relative to
+// its maximum x_a, and works with d = (x - x_a) - (y - y_a), the log ratio
+// up to one unknown constant: with e = exp(x - x_a) (stored by the reference
+// pass), S = sum e, w = exp(y - y_a) = e exp(-d) and Z = sum w,
+//
+//   p = e / S,  q = w / Z,  log p - log q = d + log(Z / S).
+//
+// For close rows (every |d| < 0.5 in a chunk of 16) w - e = e (e^-d - 1)
+// comes from the same series as g(d) = d + e^-d - 1, so the candidate costs
+// no exp at all. With u = (sum e g(d) - sum e d) / S = Z / S - 1 (summed
+// from the series, not by differencing two rounded sums):
+//
+//   KL(p||q) = sum p d + log(1 + u) = sum p g(d) + (log1p(u) - u),
+//
+// a non-negative sum plus a second-order term, so rows at 1e-7 nats keep
+// their precision. KL(q||p) follows from sum (p - q) log(p/q) =
+// KL(p||q) + KL(q||p), whose left side is (u_z sum e d - sum v d) / Z with
+// v = w - e and u_z = sum v / S. Total variation needs the constant inside
+// the absolute value: |p - q| = |v - u_z e| / Z, summed by a short second
+// pass over v (kept by the first) and e. The candidate's log-sum-exp,
+// entropy, maximum and block sums for the sampler come out of the same
+// sums. Rows this form cannot hold (a non-finite sum, the candidate's
+// maximum more than 80 above its anchor, where exp(y - y_a) would overflow)
+// give None, and the caller takes the two-pass route.
+
+/// Result of the fused pass.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Fused {
+    pub m: PairMetrics,
+    /// The candidate's log-softmax summary, as `normalise` gives it (to rounding).
+    pub c: RowNorm,
+    /// The candidate's value at the reference's top column: the block sums
+    /// the pass wrote are sums of exp(y - anchor).
+    pub anchor: f32,
+}
+
+struct FusedConsts {
+    /// d = ((x - sx) - (y - sy)) - kc.
+    sx: f32,
+    sy: f32,
+    kc: f32,
+    /// The anchor y_a.
+    ya: f32,
+}
+
+/// f32 partial sums of one chunk run: e g(d) (with the candidate's mass
+/// where e = 0), e d, v d, v (x - sx), and the lane maxima of y.
+struct FusedLanes {
+    g: F,
+    a: F,
+    j: F,
+    t: F,
+    my: F,
+}
+
+/// Adds 16 columns to the fused sums; returns v = w - e of each column.
+#[inline(always)]
+fn fused_step<const L: u8>(
+    x: &F,
+    y: &F,
+    er: &F,
+    k: &FusedConsts,
+    s: &mut FusedLanes,
+    vb: &mut F,
+) -> F {
+    let ma = mul_add::<L>;
+    let mut d = [0f32; W];
+    let mut xs = [0f32; W];
+    for j in 0..W {
+        xs[j] = x[j] - k.sx;
+        d[j] = (xs[j] - (y[j] - k.sy)) - k.kc;
+    }
+    let mut out = [0f32; W];
+    if all_abs_below::<L>(&d, SERIES_BELOW) {
+        // The common case: every column close. Both logits are finite.
+        for j in 0..W {
+            let e = er[j];
+            let d2 = d[j] * d[j];
+            let ev = ma(d2, ma(d2, ma(d2, C[6], C[4]), C[2]), C[0]);
+            let od = d[j] * ma(d2, ma(d2, C[5], C[3]), C[1]);
+            let gd = d2 * (ev + od);
+            let v = e * (gd - d[j]);
+            s.g[j] = ma(e, gd, s.g[j]);
+            s.a[j] = ma(e, d[j], s.a[j]);
+            s.j[j] = ma(v, d[j], s.j[j]);
+            s.t[j] = ma(v, xs[j], s.t[j]);
+            vb[j] += v;
+            s.my[j] = if y[j] > s.my[j] { y[j] } else { s.my[j] };
+            out[j] = v;
+        }
+        return out;
+    }
+    for j in 0..W {
+        let e = er[j];
+        let dj = d[j];
+        let w = exp::exp_clamped::<L>(y[j] - k.ya);
+        let small = dj.abs() < SERIES_BELOW;
+        let d2 = dj * dj;
+        let ev = ma(d2, ma(d2, ma(d2, C[6], C[4]), C[2]), C[0]);
+        let od = dj * ma(d2, ma(d2, C[5], C[3]), C[1]);
+        let gd = d2 * (ev + od);
+        let pos = e > 0.0;
+        // e g(d) in the direct form e d + w - e away from 0; where the
+        // reference has no mass the candidate's mass w (the sum's R term).
+        let g = if pos {
+            if small {
+                e * gd
+            } else {
+                ma(e, dj, w - e)
+            }
+        } else {
+            w
+        };
+        let a = if pos { e * dj } else { 0.0 };
+        let v = if pos && small { e * (gd - dj) } else { w - e };
+        // Columns where neither side has mass add nothing (their d may be NaN).
+        let jt = if v == 0.0 { 0.0 } else { v * dj };
+        let tt = if v == 0.0 { 0.0 } else { v * xs[j] };
+        s.g[j] += g;
+        s.a[j] += a;
+        s.j[j] += jt;
+        s.t[j] += tt;
+        vb[j] += v;
+        s.my[j] = if y[j] > s.my[j] { y[j] } else { s.my[j] };
+        out[j] = v;
+    }
+    out
+}
+
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
+fn fused_src<const L: u8, SX: Src, SY: Src>(
+    x: SX,
+    y: SY,
+    er: &[f32],
+    br: &[f64],
+    r: &RowNorm,
+    vbuf: &mut [f32],
+    bw: &mut [f64],
+) -> Option<Fused> {
+    const GROUP: usize = 16;
+    let n = x.len();
+    let nb = norm_blocks(n);
+    assert!(
+        y.len() == n && er.len() >= n && vbuf.len() >= n && bw.len() >= nb && br.len() >= nb,
+        "compare_fused: row or buffer lengths differ"
     );
-    debug_assert!(r2.is_ok() && c2.is_ok());
-    compare_stored(x, y, &er, &ec, r, c)
+    if n == 0 {
+        return None;
+    }
+    let xa = r.max;
+    let ya = y.at(r.argmax as usize);
+    if !ya.is_finite() {
+        return None;
+    }
+    // As in compare_stored: x - y is exact for close logits, so when both
+    // rows sit at about the same (moderate) level d is formed from it; else
+    // each row is first taken relative to its own anchor, exact for every
+    // column that carries mass.
+    let kraw = xa - ya;
+    let k = if kraw.abs() <= 1.0 && xa.abs() <= 64.0 {
+        FusedConsts {
+            sx: 0.0,
+            sy: 0.0,
+            kc: kraw,
+            ya,
+        }
+    } else {
+        FusedConsts {
+            sx: xa,
+            sy: ya,
+            kc: 0.0,
+            ya,
+        }
+    };
+    let mut s = FusedLanes {
+        g: [0f32; W],
+        a: [0f32; W],
+        j: [0f32; W],
+        t: [0f32; W],
+        my: [NEG_INF; W],
+    };
+    let mut acc = [[0f64; W]; 4];
+    let mut lanes_v = [[0f32; W]; GROUP];
+    let mut vtot = 0f64;
+    let per_pair = PAIR_BLOCK / NORM_BLOCK;
+    let mut bi = 0usize;
+    while bi < nb {
+        let g = GROUP.min(nb - bi);
+        for kb in 0..g {
+            let lo = (bi + kb) * NORM_BLOCK;
+            let hi = (lo + NORM_BLOCK).min(n);
+            let mut vb = [0f32; W];
+            let mut c = lo;
+            while c + W <= hi {
+                // SAFETY: c + 16 <= hi <= n, and every buffer holds n columns
+                // (asserted above).
+                let (xc, yc, ec) = unsafe {
+                    (
+                        x.chunk::<L>(c),
+                        y.chunk::<L>(c),
+                        std::ptr::read_unaligned(er.as_ptr().add(c) as *const F),
+                    )
+                };
+                let v = fused_step::<L>(&xc, &yc, &ec, &k, &mut s, &mut vb);
+                // SAFETY: as above, for the 16 columns written.
+                unsafe { std::ptr::write_unaligned(vbuf.as_mut_ptr().add(c) as *mut F, v) };
+                c += W;
+            }
+            if c < hi {
+                // Padding columns have no mass on either side and add exactly 0.
+                let v = fused_step::<L>(
+                    &x.padded(c, hi, NEG_INF),
+                    &y.padded(c, hi, NEG_INF),
+                    &padded(&er[c..hi], 0.0),
+                    &k,
+                    &mut s,
+                    &mut vb,
+                );
+                vbuf[c..hi].copy_from_slice(&v[..hi - c]);
+            }
+            lanes_v[kb] = vb;
+            if (bi + kb) % per_pair == per_pair - 1 {
+                for (q, l) in [&mut s.g, &mut s.a, &mut s.j, &mut s.t]
+                    .into_iter()
+                    .enumerate()
+                {
+                    widen_add::<L>(&mut acc[q], l);
+                    *l = [0f32; W];
+                }
+            }
+        }
+        for (kb, l) in lanes_v[..g].iter().enumerate() {
+            let b = hsum::<L>(l) as f64;
+            bw[bi + kb] = b;
+            vtot += b;
+        }
+        bi += g;
+    }
+    for (q, l) in [&s.g, &s.a, &s.j, &s.t].into_iter().enumerate() {
+        widen_add::<L>(&mut acc[q], l);
+    }
+    let (gs, as_, js, ts) = (
+        hsum64(&acc[0]),
+        hsum64(&acc[1]),
+        hsum64(&acc[2]),
+        hsum64(&acc[3]),
+    );
+    let max_c = hmax(&s.my);
+    let sum_r = r.sum;
+    let z = sum_r + vtot;
+    let sane = gs.is_finite()
+        && as_.is_finite()
+        && js.is_finite()
+        && ts.is_finite()
+        && vtot.is_finite()
+        && z > 0.0
+        && max_c - ya <= 80.0;
+    if !sane {
+        return None;
+    }
+    let u = (gs - as_) / sum_r;
+    if u <= -1.0 {
+        return None;
+    }
+    let kl = gs / sum_r + (u.ln_1p() - u);
+    let uz = vtot / sum_r;
+    let kl_reverse = (uz * as_ - js) / z - kl;
+    let tv = 0.5 * tv_pass::<L>(&vbuf[..n], &er[..n], uz as f32) / z;
+    for (b, &r) in bw[..nb].iter_mut().zip(br) {
+        *b = (*b + r).max(0.0);
+    }
+    // The candidate's summary. Its entropy: log Z - sum w (y - y_a) / Z, where
+    // sum w (y - y_a) = sum (e + v)(x - x_a) - sum w d, from the sums above and
+    // the reference's own sum e (x - x_a) = S (log S - H_r).
+    let ln_z = z.ln();
+    let t_r = sum_r * (sum_r.ln() - r.entropy);
+    let hw = t_r + (ts - (xa - k.sx) as f64 * vtot) - as_ - js;
+    let argmax = if max_c > ya {
+        scan_max::<L, SY>(y).1
+    } else {
+        // y_a is the maximum; the top column is the first that holds it.
+        first_equal::<L, SY>(y, r.argmax as usize, ya)
+    };
+    let c = RowNorm {
+        max: max_c,
+        argmax: argmax as u32,
+        lse: ya as f64 + ln_z,
+        sum: z * (ya as f64 - max_c as f64).exp(),
+        entropy: ln_z - hw / z,
+    };
+    Some(Fused {
+        m: PairMetrics {
+            kl: kl.max(0.0),
+            kl_reverse: kl_reverse.max(0.0),
+            tv: tv.max(0.0),
+        },
+        c,
+        anchor: ya,
+    })
+}
+
+/// The first column before `upto` holding `v`, the row's maximum, or `upto`.
+/// Whole chunks are tested 16 columns at a time (nothing exceeds `v`, so
+/// "not below v" means equal).
+#[inline(always)]
+fn first_equal<const L: u8, S: Src>(y: S, upto: usize, v: f32) -> usize {
+    let below = v.next_down();
+    let mut i = 0;
+    while i + W <= upto {
+        if any_above::<L>(&unsafe { y.chunk::<L>(i) }, below) {
+            break;
+        }
+        i += W;
+    }
+    (i..upto).find(|&j| y.at(j) == v).unwrap_or(upto)
+}
+
+/// Adds |v - uz e| of 16 columns to `t`. The vector builds are written with
+/// intrinsics (LLVM splits this loop into 4-lane pieces on its own); the
+/// arithmetic is the same, so the lanes are the same bits.
+#[inline(always)]
+fn tv_step<const L: u8>(t: &mut F, v: &F, e: &F, uz: f32) {
+    #[cfg(target_arch = "x86_64")]
+    if L >= 2 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 2 is only instantiated inside functions compiled with
+        // AVX-512F, called after run-time detection; loads and stores stay
+        // inside the arrays.
+        unsafe {
+            let d = _mm512_fnmadd_ps(
+                _mm512_set1_ps(uz),
+                _mm512_loadu_ps(e.as_ptr()),
+                _mm512_loadu_ps(v.as_ptr()),
+            );
+            let a = _mm512_andnot_ps(_mm512_set1_ps(-0.0), d);
+            _mm512_storeu_ps(
+                t.as_mut_ptr(),
+                _mm512_add_ps(_mm512_loadu_ps(t.as_ptr()), a),
+            );
+        }
+        return;
+    }
+    #[cfg(target_arch = "x86_64")]
+    if L == 1 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 1 is only instantiated inside functions compiled with
+        // AVX2 and FMA, called after run-time detection; as above.
+        unsafe {
+            for h in 0..2 {
+                let d = _mm256_fnmadd_ps(
+                    _mm256_set1_ps(uz),
+                    _mm256_loadu_ps(e.as_ptr().add(8 * h)),
+                    _mm256_loadu_ps(v.as_ptr().add(8 * h)),
+                );
+                let a = _mm256_andnot_ps(_mm256_set1_ps(-0.0), d);
+                let tp = t.as_mut_ptr().add(8 * h);
+                _mm256_storeu_ps(tp, _mm256_add_ps(_mm256_loadu_ps(tp), a));
+            }
+        }
+        return;
+    }
+    for j in 0..W {
+        t[j] += mul_add::<L>(-uz, e[j], v[j]).abs();
+    }
+}
+
+/// sum |v - uz e| in f32 lanes per PAIR_BLOCK columns, then in f64.
+#[inline(always)]
+fn tv_pass<const L: u8>(v: &[f32], e: &[f32], uz: f32) -> f64 {
+    let mut acc = [0f64; W];
+    for (bv, be) in v.chunks(PAIR_BLOCK).zip(e.chunks(PAIR_BLOCK)) {
+        let mut t = [0f32; W];
+        let (cv, ce) = (bv.chunks_exact(W), be.chunks_exact(W));
+        let (rv, re) = (cv.remainder(), ce.remainder());
+        for (vv, ve) in cv.zip(ce) {
+            tv_step::<L>(&mut t, load(vv), load(ve), uz);
+        }
+        if !rv.is_empty() {
+            tv_step::<L>(&mut t, &padded(rv, 0.0), &padded(re, 0.0), uz);
+        }
+        widen_add::<L>(&mut acc, &t);
+    }
+    hsum64(&acc)
+}
+
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
+fn fused_impl<const L: u8>(
+    x: Row,
+    y: Row,
+    er: &[f32],
+    br: &[f64],
+    r: &RowNorm,
+    v: &mut [f32],
+    bw: &mut [f64],
+) -> Option<Fused> {
+    with_src!(x, sx => with_src!(y, sy => fused_src::<L, _, _>(sx, sy, er, br, r, v, bw)))
+}
+
+dispatched! {
+    /// KL both ways, total variation and the candidate's summary in one
+    /// pass over both rows (see the section comment above). `er` and `br`
+    /// are what `normalise_row` stored for the reference `x` (summary `r`);
+    /// `v` (>= row length) is scratch; `bw` receives the candidate's block
+    /// sums of exp(y - anchor) for the sampler. None: take `normalise_row`
+    /// on the candidate and `compare_stored` instead.
+    pub fn compare_fused / compare_fused_at(x: Row, y: Row, er: &[f32], br: &[f64], r: &RowNorm, v: &mut [f32], bw: &mut [f64]) -> Option<Fused> => fused_impl
+}
+
+/// Working memory of `compare_pair`, allocated once per worker.
+pub struct PairScratch {
+    /// v = w - e of the fused pass.
+    v: Vec<f32>,
+    /// Block sums of the candidate: exp(y - anchor), summed per NORM_BLOCK columns.
+    pub blocks: Vec<f64>,
+    // The two-pass route: decoded rows and the candidate's exponentials.
+    xd: Vec<f32>,
+    yd: Vec<f32>,
+    ec: Vec<f32>,
+}
+
+impl PairScratch {
+    pub fn new(cols: usize) -> PairScratch {
+        PairScratch {
+            v: vec![0.0; cols],
+            blocks: vec![0.0; norm_blocks(cols)],
+            xd: Vec::new(),
+            yd: Vec::new(),
+            ec: Vec::new(),
+        }
+    }
+}
+
+/// How `compare_pair` got its result.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Route {
+    Fused,
+    TwoPass,
+}
+
+/// The comparison of one candidate row with the reference row: the fused
+/// pass where it holds, else the candidate normalised on its own and
+/// compared by `compare_stored` (rows with infinite divergence, a candidate
+/// whose maximum is far above its anchor). `x`, `er`, `br`, `r` are the
+/// reference row and what `normalise_row` stored for it. Afterwards
+/// `s.blocks` holds the candidate's block sums of exp(y - anchor).
+pub fn compare_pair(
+    x: Row,
+    y: Row,
+    er: &[f32],
+    br: &[f64],
+    r: &RowNorm,
+    s: &mut PairScratch,
+) -> Result<(Fused, Route), RowFault> {
+    if let Some(f) = compare_fused(x, y, er, br, r, &mut s.v, &mut s.blocks) {
+        return Ok((f, Route::Fused));
+    }
+    two_pass(x, y, er, r, s).map(|f| (f, Route::TwoPass))
+}
+
+#[cold]
+fn two_pass(
+    x: Row,
+    y: Row,
+    er: &[f32],
+    r: &RowNorm,
+    s: &mut PairScratch,
+) -> Result<Fused, RowFault> {
+    let n = x.len();
+    for (buf, row) in [(&mut s.xd, x), (&mut s.yd, y)] {
+        buf.resize(n, 0.0);
+        decode(row, buf);
+    }
+    s.ec.resize(n, 0.0);
+    let c = normalise_store(&s.yd, &mut s.ec, &mut s.blocks)?;
+    let m = compare_stored(&s.xd, &s.yd, er, &s.ec, r, &c);
+    Ok(Fused {
+        m,
+        c,
+        anchor: c.max,
+    })
+}
+
+/// Both summaries and the comparison of two f32 rows (allocates; for tests
+/// and tools, the engine keeps its buffers).
+pub fn compare_rows(x: &[f32], y: &[f32]) -> Result<(RowNorm, Fused, Route), RowFault> {
+    let n = x.len();
+    let mut er = vec![0f32; n];
+    let mut br = vec![0f64; norm_blocks(n)];
+    let r = normalise_store(x, &mut er, &mut br)?;
+    let mut s = PairScratch::new(n);
+    let (f, route) = compare_pair(Row::from_f32(x), Row::from_f32(y), &er, &br, &r, &mut s)?;
+    Ok((r, f, route))
 }
 
 // ---------------------------------------------------------------------------

@@ -87,8 +87,12 @@ pub fn f16_to_f32(h: u16) -> f32 {
 pub trait Src: Copy {
     fn len(self) -> usize;
     fn at(self, i: usize) -> f32;
-    /// Columns i .. i + 16 (the caller keeps i + 16 <= len).
-    fn chunk<const L: u8>(self, i: usize) -> F;
+    /// Columns i .. i + 16.
+    ///
+    /// # Safety
+    /// The caller keeps i + 16 <= len: the hot loops test that bound once
+    /// per chunk anyway, and a second check per load costs them measurably.
+    unsafe fn chunk<const L: u8>(self, i: usize) -> F;
     /// Columns lo .. hi (fewer than 16) followed by `fill`.
     #[inline(always)]
     fn padded(self, lo: usize, hi: usize, fill: f32) -> F {
@@ -123,11 +127,13 @@ impl Src for F32Le<'_> {
         f32::from_le_bytes([b[0], b[1], b[2], b[3]])
     }
     #[inline(always)]
-    fn chunk<const L: u8>(self, i: usize) -> F {
-        let b = &self.0[4 * i..4 * i + 4 * W];
+    unsafe fn chunk<const L: u8>(self, i: usize) -> F {
+        debug_assert!(4 * (i + W) <= self.0.len());
+        // SAFETY: the caller keeps i + 16 <= len, so the 64 bytes are inside.
+        let b = unsafe { self.0.get_unchecked(4 * i..4 * i + 4 * W) };
         if cfg!(target_endian = "little") {
-            // SAFETY: `b` holds exactly 64 bytes (checked by the slice above),
-            // every bit pattern is a valid f32, and the read is unaligned.
+            // SAFETY: `b` holds exactly 64 bytes, every bit pattern is a
+            // valid f32, and the read is unaligned.
             unsafe { std::ptr::read_unaligned(b.as_ptr() as *const F) }
         } else {
             let mut v = [0f32; W];
@@ -149,8 +155,10 @@ impl Src for Bf16Le<'_> {
         bf16_to_f32(u16_at(self.0, i))
     }
     #[inline(always)]
-    fn chunk<const L: u8>(self, i: usize) -> F {
-        let b = &self.0[2 * i..2 * i + 2 * W];
+    unsafe fn chunk<const L: u8>(self, i: usize) -> F {
+        debug_assert!(2 * (i + W) <= self.0.len());
+        // SAFETY: the caller keeps i + 16 <= len, so the 32 bytes are inside.
+        let b = unsafe { self.0.get_unchecked(2 * i..2 * i + 2 * W) };
         #[cfg(all(target_arch = "x86_64", target_endian = "little"))]
         if L >= 1 {
             use std::arch::x86_64::*;
@@ -191,8 +199,10 @@ impl Src for F16Le<'_> {
         f16_to_f32(u16_at(self.0, i))
     }
     #[inline(always)]
-    fn chunk<const L: u8>(self, i: usize) -> F {
-        let b = &self.0[2 * i..2 * i + 2 * W];
+    unsafe fn chunk<const L: u8>(self, i: usize) -> F {
+        debug_assert!(2 * (i + W) <= self.0.len());
+        // SAFETY: the caller keeps i + 16 <= len, so the 32 bytes are inside.
+        let b = unsafe { self.0.get_unchecked(2 * i..2 * i + 2 * W) };
         #[cfg(all(target_arch = "x86_64", target_endian = "little"))]
         if L >= 1 {
             use std::arch::x86_64::*;

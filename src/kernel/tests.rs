@@ -31,11 +31,10 @@ fn reference(x: &[f32], y: &[f32]) -> (f64, f64, f64, f64, f64) {
     (kl, kr, tv, hp, hq)
 }
 
+/// The comparison as the engine makes it (`compare_pair`: fused where it holds).
 fn run(x: &[f32], y: &[f32]) -> (RowNorm, RowNorm, PairMetrics) {
-    let mut b = vec![0f64; norm_blocks(x.len())];
-    let r = normalise(x, &mut b).unwrap();
-    let c = normalise(y, &mut b).unwrap();
-    (r, c, compare_rows(x, y, &r, &c))
+    let (r, f, _) = compare_rows(x, y).unwrap();
+    (r, f.c, f.m)
 }
 
 fn close(got: f64, want: f64, rel: f64, abs: f64) -> bool {
@@ -726,5 +725,315 @@ fn rows_at_different_levels_compare_exactly() {
             m.kl_reverse
         );
         assert!(close(m.tv, tv, 1e-3, 1e-9), "tv {} vs {tv}", m.tv);
+    }
+}
+
+// ---------------------------------------------------------------------------
+// The fused pair pass (candidate normalised inside the comparison).
+
+/// f64 reference for the candidate's side: log-sum-exp, entropy and the
+/// lowest column holding the maximum (the textbook definitions, common practice).
+fn reference_candidate(y: &[f32]) -> (f64, f64, usize) {
+    let m = y.iter().fold(f64::NEG_INFINITY, |a, &b| a.max(b as f64));
+    let arg = y.iter().position(|&v| v as f64 == m).unwrap();
+    let s: f64 = y.iter().map(|&b| (b as f64 - m).exp()).sum();
+    let lse = m + s.ln();
+    let h: f64 = y
+        .iter()
+        .map(|&b| {
+            let lq = b as f64 - lse;
+            if lq.exp() > 0.0 {
+                -lq.exp() * lq
+            } else {
+                0.0
+            }
+        })
+        .sum();
+    (lse, h, arg)
+}
+
+fn fused_at(l: Level, x: &[f32], y: &[f32]) -> (RowNorm, Option<Fused>, Vec<f64>) {
+    let n = x.len();
+    let mut er = vec![0f32; n];
+    let mut br = vec![0f64; norm_blocks(n)];
+    let r = normalise_store_at(l, x, &mut er, &mut br).unwrap();
+    let mut v = vec![0f32; n];
+    let mut bw = vec![0f64; norm_blocks(n)];
+    let f = compare_fused_at(
+        l,
+        Row::from_f32(x),
+        Row::from_f32(y),
+        &er,
+        &br,
+        &r,
+        &mut v,
+        &mut bw,
+    );
+    (r, f, bw)
+}
+
+#[test]
+fn fused_pass_matches_f64_near_and_far() {
+    // From near-identical rows (every column in the series range) to rows
+    // where most chunks take the direct form; levels near 0, 30 and -5.
+    let mut s = 41u64;
+    for &(n, scale, eps, shift) in &[
+        (1000usize, 3.0f64, 1e-3f64, 0.0f64),
+        (32_000, 2.0, 0.05, 0.0),
+        (32_003, 4.0, 0.3, 30.0),
+        (4_097, 1.0, 1.0, 30.0),
+        (128_256, 3.0, 0.02, -5.0),
+        (777, 2.0, 2.5, 10.0),
+    ] {
+        let x: Vec<f32> = (0..n)
+            .map(|_| (shift + scale * normal(&mut s)) as f32)
+            .collect();
+        let y: Vec<f32> = x
+            .iter()
+            .map(|&v| (v as f64 + eps * normal(&mut s)) as f32)
+            .collect();
+        let (kl, kr, tv, hp, hq) = reference(&x, &y);
+        let (lse_c, _, arg_c) = reference_candidate(&y);
+        for l in levels() {
+            let (r, f, _) = fused_at(l, &x, &y);
+            let f = f.unwrap_or_else(|| panic!("n={n} eps={eps}: fused pass declined"));
+            let what = format!("{} n={n} eps={eps}", l.name());
+            assert!(
+                close(f.m.kl, kl, 1e-4, 1e-9),
+                "{what}: kl {} vs {kl}",
+                f.m.kl
+            );
+            assert!(
+                close(f.m.kl_reverse, kr, 1e-4, 1e-9),
+                "{what}: kl_reverse {} vs {kr}",
+                f.m.kl_reverse
+            );
+            assert!(
+                close(f.m.tv, tv, 2e-5, 1e-12),
+                "{what}: tv {} vs {tv}",
+                f.m.tv
+            );
+            assert!(close(r.entropy, hp, 1e-5, 1e-6));
+            assert!(
+                close(f.c.entropy, hq, 1e-5, 1e-6),
+                "{what}: H(q) {} vs {hq}",
+                f.c.entropy
+            );
+            assert!(
+                close(f.c.lse, lse_c, 1e-6, 1e-6),
+                "{what}: lse {} vs {lse_c}",
+                f.c.lse
+            );
+            assert_eq!(f.c.argmax as usize, arg_c, "{what}");
+        }
+    }
+}
+
+#[test]
+fn fused_pass_keeps_relative_precision_below_a_micro_nat() {
+    // Reference: the cancellation-free f64 form above; 1e-4 relative.
+    let mut s = 43u64;
+    for &(n, eps, shift) in &[
+        (32_000usize, 1e-3f64, 0.0f64),
+        (32_000, 1e-4, 25.0),
+        (128_256, 3e-5, -3.0),
+        (4_096, 1e-5, 0.0),
+    ] {
+        let x: Vec<f32> = (0..n)
+            .map(|_| (shift + 2.5 * normal(&mut s)) as f32)
+            .collect();
+        let y: Vec<f32> = x
+            .iter()
+            .map(|&v| (v as f64 + eps * normal(&mut s)) as f32)
+            .collect();
+        let (kl, kr) = reference_cancellation_free(&x, &y);
+        let (_, _, tv, _, _) = reference(&x, &y);
+        assert!(kl < 1e-5);
+        for l in levels() {
+            let f = fused_at(l, &x, &y).1.expect("fused pass declined");
+            let what = format!("{} n={n} eps={eps}", l.name());
+            assert!(
+                close(f.m.kl, kl, 1e-4, 0.0),
+                "{what}: kl {} vs {kl}",
+                f.m.kl
+            );
+            assert!(
+                close(f.m.kl_reverse, kr, 1e-4, 0.0),
+                "{what}: kl_reverse {} vs {kr}",
+                f.m.kl_reverse
+            );
+            assert!(
+                close(f.m.tv, tv, 1e-4, 1e-12),
+                "{what}: tv {} vs {tv}",
+                f.m.tv
+            );
+        }
+    }
+}
+
+#[test]
+fn fused_pass_gives_identical_bits_at_every_level() {
+    let ls = levels();
+    for &n in &[
+        1usize, 2, 15, 16, 17, 63, 64, 65, 255, 256, 257, 1000, 4099, 32_003,
+    ] {
+        let (x, mut y) = awkward_pair(n, n as u64 + 5);
+        // awkward_pair gives the candidate zeros where the reference has
+        // mass (infinite KL, which the fused pass declines); fill them.
+        for i in 0..n {
+            if y[i] == f32::NEG_INFINITY && x[i].is_finite() {
+                y[i] = x[i] - 0.02;
+            }
+        }
+        let base = fused_at(ls[ls.len() - 1], &x, &y);
+        assert!(base.1.is_some(), "n={n}: declined");
+        for &l in &ls {
+            let got = fused_at(l, &x, &y);
+            if l != Level::Scalar || SCALAR_FMA {
+                assert_eq!(got.1, base.1, "n={n}: {} differs", l.name());
+                let (a, b): (Vec<u64>, Vec<u64>) = (
+                    got.2.iter().map(|v| v.to_bits()).collect(),
+                    base.2.iter().map(|v| v.to_bits()).collect(),
+                );
+                assert_eq!(a, b, "n={n}: {} block sums differ", l.name());
+            } else {
+                let (g, b) = (got.1.unwrap(), base.1.unwrap());
+                assert!(close(g.m.kl, b.m.kl, 1e-6, 1e-12));
+                assert!(close(g.m.tv, b.m.tv, 1e-6, 1e-12));
+            }
+        }
+    }
+}
+
+#[test]
+fn fused_block_sums_are_the_candidates_exponentials() {
+    // Reference: exp(y - anchor) summed per block in f64.
+    let mut s = 47u64;
+    let n = 5_000;
+    let x: Vec<f32> = (0..n).map(|_| (3.0 * normal(&mut s)) as f32).collect();
+    let y: Vec<f32> = x
+        .iter()
+        .map(|&v| (v as f64 + 0.4 * normal(&mut s)) as f32)
+        .collect();
+    for l in levels() {
+        let (_, f, bw) = fused_at(l, &x, &y);
+        let a = f.unwrap().anchor as f64;
+        let total: f64 = y.iter().map(|&v| (v as f64 - a).exp()).sum();
+        for (b, got) in bw.iter().enumerate() {
+            let lo = b * NORM_BLOCK;
+            let hi = (lo + NORM_BLOCK).min(n);
+            let want: f64 = y[lo..hi].iter().map(|&v| (v as f64 - a).exp()).sum();
+            assert!(
+                (got - want).abs() <= 1e-6 * total,
+                "{} block {b}: {got} vs {want}",
+                l.name()
+            );
+        }
+    }
+}
+
+#[test]
+fn fused_pass_declines_what_it_cannot_hold_and_the_pair_route_still_answers() {
+    // Candidate zero where the reference has mass: infinite KL.
+    let x = vec![0.0f32, 1.0, 2.0, 0.5];
+    let y = vec![f32::NEG_INFINITY, 1.0, 2.0, 0.5];
+    assert!(fused_at(detected_level(), &x, &y).1.is_none());
+    let (_, f, route) = compare_rows(&x, &y).unwrap();
+    assert_eq!(route, Route::TwoPass);
+    assert_eq!(f.m.kl, f64::INFINITY);
+    // Candidate mass where the reference has none: infinite reverse KL.
+    let (x, y) = (y, x);
+    let (_, f, route) = compare_rows(&x, &y).unwrap();
+    assert_eq!(route, Route::TwoPass);
+    assert_eq!(f.m.kl_reverse, f64::INFINITY);
+    // The candidate's maximum far above its value at the reference's top
+    // column (exp would overflow): declined, answered exactly by two passes.
+    let x = vec![5.0f32, 0.0, 0.0, 0.0];
+    let y = vec![0.0f32, 0.0, 95.0, 0.0];
+    let (_, f, route) = compare_rows(&x, &y).unwrap();
+    assert_eq!(route, Route::TwoPass);
+    let (kl, kr, tv, _, _) = reference(&x, &y);
+    assert!(close(f.m.kl, kl, 1e-6, 1e-9) && close(f.m.kl_reverse, kr, 1e-6, 1e-9));
+    assert!(close(f.m.tv, tv, 1e-6, 1e-9));
+    // A NaN or +inf candidate logit is a fault of the candidate row.
+    let x = vec![0.0f32, 1.0, 2.0];
+    for bad in [f32::NAN, f32::INFINITY] {
+        let y = vec![0.0f32, bad, 2.0];
+        let want = if bad.is_nan() {
+            RowFault::Nan
+        } else {
+            RowFault::PosInf
+        };
+        assert_eq!(compare_rows(&x, &y).unwrap_err(), want);
+    }
+}
+
+#[test]
+fn fused_candidate_argmax_takes_the_lowest_tied_column() {
+    // The reference's top column is 40; the candidate holds the same
+    // maximum at 40 and at 9 (and at 70): its top column is 9.
+    let mut x: Vec<f32> = (0..100).map(|i| ((i * 7) % 13) as f32 * 0.1).collect();
+    x[40] = 3.0;
+    let mut y = x.clone();
+    y[9] = 3.0;
+    y[70] = 3.0;
+    let f = fused_at(detected_level(), &x, &y).1.unwrap();
+    assert_eq!(f.c.argmax, 9);
+    // No tie: the anchor column is the candidate's top.
+    let f = fused_at(detected_level(), &x, &x).1.unwrap();
+    assert_eq!(f.c.argmax, 40);
+    assert_eq!(f.m.kl, 0.0);
+    // A higher maximum elsewhere.
+    y[77] = 3.5;
+    let f = fused_at(detected_level(), &x, &y).1.unwrap();
+    assert_eq!(f.c.argmax, 77);
+}
+
+#[test]
+fn fused_pass_reads_every_stored_format_exactly() {
+    // The same values stored as f32, f16 and bf16 bytes give the same bits
+    // as the f32 row (widening is exact).
+    let mut s = 53u64;
+    let n = 3_001;
+    let q = |v: f64, bf: bool| -> f32 {
+        if bf {
+            half::bf16::from_f64(v).to_f32()
+        } else {
+            half::f16::from_f64(v).to_f32()
+        }
+    };
+    for bf in [false, true] {
+        let x: Vec<f32> = (0..n).map(|_| q(2.0 * normal(&mut s), bf)).collect();
+        let y: Vec<f32> = x
+            .iter()
+            .map(|&v| q(v as f64 + 0.05 * normal(&mut s), bf))
+            .collect();
+        let enc = |v: &[f32]| -> Vec<u8> {
+            v.iter()
+                .flat_map(|&a| {
+                    if bf {
+                        half::bf16::from_f32(a).to_le_bytes()
+                    } else {
+                        half::f16::from_f32(a).to_le_bytes()
+                    }
+                })
+                .collect()
+        };
+        let (xb, yb) = (enc(&x), enc(&y));
+        let (xr, yr) = if bf {
+            (Row::Bf16(&xb), Row::Bf16(&yb))
+        } else {
+            (Row::F16(&xb), Row::F16(&yb))
+        };
+        for l in levels() {
+            let mut er = vec![0f32; n];
+            let mut br = vec![0f64; norm_blocks(n)];
+            let r = normalise_row_at(l, xr, &mut er, &mut br).unwrap();
+            let r32 = normalise_store_at(l, &x, &mut vec![0f32; n], &mut br.clone()).unwrap();
+            assert_eq!(r, r32, "{} bf16={bf}", l.name());
+            let (mut v, mut bw) = (vec![0f32; n], vec![0f64; norm_blocks(n)]);
+            let got = compare_fused_at(l, xr, yr, &er, &br, &r, &mut v, &mut bw);
+            assert_eq!(got, fused_at(l, &x, &y).1, "{} bf16={bf}", l.name());
+        }
     }
 }
