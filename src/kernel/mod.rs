@@ -849,7 +849,7 @@ struct FusedLanes {
 
 /// Adds 16 columns to the fused sums; returns v = w - e of each column.
 #[inline(always)]
-fn fused_step<const L: u8>(
+fn fused_step<const L: u8, const OFF: bool>(
     x: &F,
     y: &F,
     er: &F,
@@ -860,9 +860,17 @@ fn fused_step<const L: u8>(
     let ma = mul_add::<L>;
     let mut d = [0f32; W];
     let mut xs = [0f32; W];
+    // OFF: each row relative to its anchor (sx = x_a, sy = y_a, kc = 0);
+    // else sx = sy = 0 and the two forms below give the same bits as
+    // ((x - sx) - (y - sy)) - kc, with two subtractions fewer.
     for j in 0..W {
-        xs[j] = x[j] - k.sx;
-        d[j] = (xs[j] - (y[j] - k.sy)) - k.kc;
+        if OFF {
+            xs[j] = x[j] - k.sx;
+            d[j] = xs[j] - (y[j] - k.sy);
+        } else {
+            xs[j] = x[j];
+            d[j] = (x[j] - y[j]) - k.kc;
+        }
     }
     let mut out = [0f32; W];
     if all_abs_below::<L>(&d, SERIES_BELOW) {
@@ -921,6 +929,94 @@ fn fused_step<const L: u8>(
     out
 }
 
+/// The fused pass's loop over the row: the f64 sums of e g(d), e d, v d and
+/// v (x - sx), the sum of v (its block sums into `bw`), the lane maxima of y.
+#[inline(always)]
+fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
+    x: SX,
+    y: SY,
+    er: &[f32],
+    k: &FusedConsts,
+    vbuf: &mut [f32],
+    bw: &mut [f64],
+) -> ([[f64; W]; 4], f64, F) {
+    const GROUP: usize = 16;
+    let n = x.len();
+    let nb = norm_blocks(n);
+    assert!(
+        y.len() == n && er.len() >= n && vbuf.len() >= n && bw.len() >= nb,
+        "compare_fused: row or buffer lengths differ"
+    );
+    let mut s = FusedLanes {
+        g: [0f32; W],
+        a: [0f32; W],
+        j: [0f32; W],
+        t: [0f32; W],
+        my: [NEG_INF; W],
+    };
+    let mut acc = [[0f64; W]; 4];
+    let mut lanes_v = [[0f32; W]; GROUP];
+    let mut vtot = 0f64;
+    let per_pair = PAIR_BLOCK / NORM_BLOCK;
+    let mut bi = 0usize;
+    while bi < nb {
+        let g = GROUP.min(nb - bi);
+        for kb in 0..g {
+            let lo = (bi + kb) * NORM_BLOCK;
+            let hi = (lo + NORM_BLOCK).min(n);
+            let mut vb = [0f32; W];
+            let mut c = lo;
+            while c + W <= hi {
+                // SAFETY: c + 16 <= hi <= n, and every buffer holds n columns
+                // (asserted above).
+                let (xc, yc, ec) = unsafe {
+                    (
+                        x.chunk::<L>(c),
+                        y.chunk::<L>(c),
+                        std::ptr::read_unaligned(er.as_ptr().add(c) as *const F),
+                    )
+                };
+                let v = fused_step::<L, OFF>(&xc, &yc, &ec, k, &mut s, &mut vb);
+                // SAFETY: as above, for the 16 columns written.
+                unsafe { std::ptr::write_unaligned(vbuf.as_mut_ptr().add(c) as *mut F, v) };
+                c += W;
+            }
+            if c < hi {
+                // Padding columns have no mass on either side and add exactly 0.
+                let v = fused_step::<L, OFF>(
+                    &x.padded(c, hi, NEG_INF),
+                    &y.padded(c, hi, NEG_INF),
+                    &padded(&er[c..hi], 0.0),
+                    k,
+                    &mut s,
+                    &mut vb,
+                );
+                vbuf[c..hi].copy_from_slice(&v[..hi - c]);
+            }
+            lanes_v[kb] = vb;
+            if (bi + kb) % per_pair == per_pair - 1 {
+                for (q, l) in [&mut s.g, &mut s.a, &mut s.j, &mut s.t]
+                    .into_iter()
+                    .enumerate()
+                {
+                    widen_add::<L>(&mut acc[q], l);
+                    *l = [0f32; W];
+                }
+            }
+        }
+        for (kb, l) in lanes_v[..g].iter().enumerate() {
+            let b = hsum::<L>(l) as f64;
+            bw[bi + kb] = b;
+            vtot += b;
+        }
+        bi += g;
+    }
+    for (q, l) in [&s.g, &s.a, &s.j, &s.t].into_iter().enumerate() {
+        widen_add::<L>(&mut acc[q], l);
+    }
+    (acc, vtot, s.my)
+}
+
 #[inline(always)]
 #[allow(clippy::too_many_arguments)]
 fn fused_src<const L: u8, SX: Src, SY: Src>(
@@ -932,7 +1028,6 @@ fn fused_src<const L: u8, SX: Src, SY: Src>(
     vbuf: &mut [f32],
     bw: &mut [f64],
 ) -> Option<Fused> {
-    const GROUP: usize = 16;
     let n = x.len();
     let nb = norm_blocks(n);
     assert!(
@@ -967,80 +1062,18 @@ fn fused_src<const L: u8, SX: Src, SY: Src>(
             ya,
         }
     };
-    let mut s = FusedLanes {
-        g: [0f32; W],
-        a: [0f32; W],
-        j: [0f32; W],
-        t: [0f32; W],
-        my: [NEG_INF; W],
+    let (acc, vtot, my) = if k.kc == 0.0 && k.sx != 0.0 {
+        fused_loop::<L, true, SX, SY>(x, y, er, &k, vbuf, bw)
+    } else {
+        fused_loop::<L, false, SX, SY>(x, y, er, &k, vbuf, bw)
     };
-    let mut acc = [[0f64; W]; 4];
-    let mut lanes_v = [[0f32; W]; GROUP];
-    let mut vtot = 0f64;
-    let per_pair = PAIR_BLOCK / NORM_BLOCK;
-    let mut bi = 0usize;
-    while bi < nb {
-        let g = GROUP.min(nb - bi);
-        for kb in 0..g {
-            let lo = (bi + kb) * NORM_BLOCK;
-            let hi = (lo + NORM_BLOCK).min(n);
-            let mut vb = [0f32; W];
-            let mut c = lo;
-            while c + W <= hi {
-                // SAFETY: c + 16 <= hi <= n, and every buffer holds n columns
-                // (asserted above).
-                let (xc, yc, ec) = unsafe {
-                    (
-                        x.chunk::<L>(c),
-                        y.chunk::<L>(c),
-                        std::ptr::read_unaligned(er.as_ptr().add(c) as *const F),
-                    )
-                };
-                let v = fused_step::<L>(&xc, &yc, &ec, &k, &mut s, &mut vb);
-                // SAFETY: as above, for the 16 columns written.
-                unsafe { std::ptr::write_unaligned(vbuf.as_mut_ptr().add(c) as *mut F, v) };
-                c += W;
-            }
-            if c < hi {
-                // Padding columns have no mass on either side and add exactly 0.
-                let v = fused_step::<L>(
-                    &x.padded(c, hi, NEG_INF),
-                    &y.padded(c, hi, NEG_INF),
-                    &padded(&er[c..hi], 0.0),
-                    &k,
-                    &mut s,
-                    &mut vb,
-                );
-                vbuf[c..hi].copy_from_slice(&v[..hi - c]);
-            }
-            lanes_v[kb] = vb;
-            if (bi + kb) % per_pair == per_pair - 1 {
-                for (q, l) in [&mut s.g, &mut s.a, &mut s.j, &mut s.t]
-                    .into_iter()
-                    .enumerate()
-                {
-                    widen_add::<L>(&mut acc[q], l);
-                    *l = [0f32; W];
-                }
-            }
-        }
-        for (kb, l) in lanes_v[..g].iter().enumerate() {
-            let b = hsum::<L>(l) as f64;
-            bw[bi + kb] = b;
-            vtot += b;
-        }
-        bi += g;
-    }
-    for (q, l) in [&s.g, &s.a, &s.j, &s.t].into_iter().enumerate() {
-        widen_add::<L>(&mut acc[q], l);
-    }
     let (gs, as_, js, ts) = (
         hsum64(&acc[0]),
         hsum64(&acc[1]),
         hsum64(&acc[2]),
         hsum64(&acc[3]),
     );
-    let max_c = hmax(&s.my);
+    let max_c = hmax(&my);
     let sum_r = r.sum;
     let z = sum_r + vtot;
     let sane = gs.is_finite()
