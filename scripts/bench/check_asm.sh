@@ -16,7 +16,7 @@ dis="$(mktemp)"
 trap 'rm -f "$dis"' EXIT
 objdump -d --no-show-raw-insn -C "$bin" > "$dis"
 printf '%-44s %6s %6s %6s %8s %6s\n' function zmm ymm "ss/sd" cvttss2si calls
-for f in normalise_store_at compare_stored_at decode_bf16_at decode_f16_at storage_floor_row_at top_k_at; do
+for f in normalise_row_at compare_fused_at normalise_store_at compare_stored_at decode_at storage_floor_row_at top_k_at; do
     for w in wide512 wide256; do
         body="$(awk -v name="<klgauge::kernel::$f::$w>:" 'index($0, name) {on=1; next} on && /^$/ {exit} on {print}' "$dis")"
         [[ -z "$body" ]] && continue
