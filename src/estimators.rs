@@ -93,9 +93,13 @@ pub fn draw_tokens(
     order.clear();
     order.extend((0..out.len()).map(|j| (uniform(seed, row, direction, j as u64) * total, j)));
     order.sort_unstable_by(|a, b| a.0.total_cmp(&b.0));
-    // One walk over the blocks serves all draws, in increasing order of u.
+    // One walk over the blocks serves all draws, in increasing order of u,
+    // and inside a block it goes on from where the previous draw stopped
+    // (most draws land in the few blocks that hold the top tokens), adding
+    // the same terms in the same order as a walk from the block's start.
     let mut acc = 0f64;
     let mut bi = 0usize;
+    let mut walk: Option<Walk> = None;
     for &(u, j) in order.iter() {
         while bi + 1 < blocks.len() && acc + blocks[bi] <= u {
             acc += blocks[bi];
@@ -103,24 +107,53 @@ pub fn draw_tokens(
         }
         let lo = bi * NORM_BLOCK;
         let hi = (lo + NORM_BLOCK).min(x.len());
-        let mut a = acc;
-        let mut pick = None;
-        let mut last_nonzero = lo;
-        for i in 0..hi - lo {
-            let e = (x.get(lo + i) as f64 - max as f64).exp();
-            if e > 0.0 {
-                last_nonzero = lo + i;
-                a += e;
-                if a > u {
-                    pick = Some(lo + i);
-                    break;
-                }
-            }
-        }
+        let w = match walk {
+            Some(ref mut w) if w.block == bi => w,
+            _ => walk.insert(Walk {
+                block: bi,
+                next: lo,
+                sum: acc,
+                last_nonzero: lo,
+                pending: None,
+            }),
+        };
         // Rounding between the f32 block sums and this f64 walk can leave u just
         // past the block's end: the last token with mass is the right answer.
-        out[j] = pick.unwrap_or(last_nonzero) as u32;
+        let mut pick = w.last_nonzero;
+        while w.next < hi {
+            let i = w.next;
+            let e = w
+                .pending
+                .take()
+                .unwrap_or_else(|| (x.get(i) as f64 - max as f64).exp());
+            if e > 0.0 {
+                w.last_nonzero = i;
+                if w.sum + e > u {
+                    // Column i is this draw's; the next draw starts at it again.
+                    w.pending = Some(e);
+                    pick = i;
+                    break;
+                }
+                w.sum += e;
+            }
+            w.next += 1;
+        }
+        if w.next >= hi {
+            pick = w.last_nonzero;
+        }
+        out[j] = pick as u32;
     }
+}
+
+/// Where the inverse-CDF walk inside one block stands.
+struct Walk {
+    block: usize,
+    /// The next column to look at, and the sum of everything before it.
+    next: usize,
+    sum: f64,
+    last_nonzero: usize,
+    /// exp of column `next`, when a draw stopped there.
+    pending: Option<f64>,
 }
 
 /// Sums over positions for one (samples-per-position, direction) block.
@@ -229,6 +262,75 @@ pub struct KSummary {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Inverse CDF the plain way, each draw walked from the start of its
+    /// block (common practice); the continuing walk must pick the same tokens.
+    fn draws_from_block_start(x: &[f32], max: f32, blocks: &[f64], us: &[f64]) -> Vec<u32> {
+        us.iter()
+            .map(|&u| {
+                let (mut acc, mut bi) = (0f64, 0usize);
+                while bi + 1 < blocks.len() && acc + blocks[bi] <= u {
+                    acc += blocks[bi];
+                    bi += 1;
+                }
+                let lo = bi * NORM_BLOCK;
+                let hi = (lo + NORM_BLOCK).min(x.len());
+                let (mut a, mut last) = (acc, lo);
+                for (i, &v) in x.iter().enumerate().take(hi).skip(lo) {
+                    let e = (v as f64 - max as f64).exp();
+                    if e > 0.0 {
+                        last = i;
+                        a += e;
+                        if a > u {
+                            return i as u32;
+                        }
+                    }
+                }
+                last as u32
+            })
+            .collect()
+    }
+
+    #[test]
+    fn continuing_walk_picks_what_a_walk_from_the_block_start_picks() {
+        let mut st = 99u64;
+        let mut next = || {
+            st = st
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            ((st >> 11) as f64) / ((1u64 << 53) as f64)
+        };
+        for &(n, spread) in &[(1000usize, 1.0f64), (5000, 6.0), (130, 20.0)] {
+            let mut x: Vec<f32> = (0..n).map(|_| (spread * next()) as f32).collect();
+            x[n / 3] = f32::NEG_INFINITY;
+            x[n / 2] = spread as f32 * 2.0;
+            let mut blocks = vec![0f64; crate::kernel::norm_blocks(n)];
+            let r = crate::kernel::normalise(&x, &mut blocks).unwrap();
+            for draws in [1usize, 16, 300] {
+                let mut order = Vec::new();
+                let mut out = vec![0u32; draws];
+                draw_tokens(
+                    Row::from_f32(&x),
+                    r.max,
+                    &blocks,
+                    5,
+                    7,
+                    0,
+                    &mut order,
+                    &mut out,
+                );
+                let total: f64 = blocks.iter().sum();
+                let us: Vec<f64> = (0..draws)
+                    .map(|j| uniform(5, 7, 0, j as u64) * total)
+                    .collect();
+                assert_eq!(
+                    out,
+                    draws_from_block_start(&x, r.max, &blocks, &us),
+                    "n={n} draws={draws}"
+                );
+            }
+        }
+    }
 
     #[test]
     fn k3_is_never_negative() {

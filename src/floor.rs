@@ -44,18 +44,25 @@ pub fn storage_floor(
         return f64::NAN;
     }
     let take = rows.min(max_rows.max(1));
-    let mut x = vec![0f32; cols];
-    let mut y = vec![0f32; cols];
+    // The sampled rows in parallel (this runs after the streaming pass, on
+    // its own), summed in row order so the result does not depend on threads.
+    use rayon::prelude::*;
+    let floors: Vec<f64> = (0..take)
+        .into_par_iter()
+        .map_init(
+            || (vec![0f32; cols], vec![0f32; cols]),
+            |(x, y), i| {
+                let row = i * rows / take;
+                reference.read_row(row, x);
+                candidate.read_row(row, y);
+                row_floor(x, reference.dtype, y, candidate.dtype)
+            },
+        )
+        .collect();
     let (mut sum, mut n) = (0f64, 0usize);
-    for i in 0..take {
-        let row = i * rows / take;
-        reference.read_row(row, &mut x);
-        candidate.read_row(row, &mut y);
-        let f = row_floor(&x, reference.dtype, &y, candidate.dtype);
-        if f.is_finite() {
-            sum += f;
-            n += 1;
-        }
+    for f in floors.into_iter().filter(|f| f.is_finite()) {
+        sum += f;
+        n += 1;
     }
     if n == 0 {
         f64::NAN

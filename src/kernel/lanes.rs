@@ -124,6 +124,39 @@ pub fn all_abs_below<const L: u8>(v: &F, bound: f32) -> bool {
     v.iter().all(|x| x.abs() < bound)
 }
 
+/// Whether every lane is below `bound` (NaN lanes are not).
+#[inline(always)]
+pub fn all_below<const L: u8>(v: &F, bound: f32) -> bool {
+    #[cfg(target_arch = "x86_64")]
+    if L >= 2 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 2 is only instantiated inside functions compiled with
+        // AVX-512F, called after run-time detection; the load stays inside `v`.
+        unsafe {
+            let m = _mm512_cmp_ps_mask::<_CMP_LT_OQ>(
+                _mm512_loadu_ps(v.as_ptr()),
+                _mm512_set1_ps(bound),
+            );
+            return m == 0xffff;
+        }
+    }
+    #[cfg(target_arch = "x86_64")]
+    if L == 1 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 1 is only instantiated inside functions compiled with
+        // AVX2, called after run-time detection; loads stay inside `v`.
+        unsafe {
+            let bd = _mm256_set1_ps(bound);
+            let ok = _mm256_and_ps(
+                _mm256_cmp_ps::<_CMP_LT_OQ>(_mm256_loadu_ps(v.as_ptr()), bd),
+                _mm256_cmp_ps::<_CMP_LT_OQ>(_mm256_loadu_ps(v.as_ptr().add(8)), bd),
+            );
+            return _mm256_movemask_ps(ok) == 0xff;
+        }
+    }
+    v.iter().all(|&x| x < bound)
+}
+
 /// Whether some lane exceeds `bound` (NaN lanes do not).
 #[inline(always)]
 pub fn any_above<const L: u8>(v: &F, bound: f32) -> bool {

@@ -25,7 +25,9 @@ pub mod lanes;
 pub mod row;
 
 use exp::{exp_nonpos, exp_step, mul_add};
-use lanes::{all_abs_below, any_above, hmax, hsum, hsum64, load, padded, widen_add, F, W};
+use lanes::{
+    all_abs_below, all_below, any_above, hmax, hsum, hsum64, load, padded, widen_add, F, W,
+};
 pub use row::Row;
 use row::{with_src, Src};
 use std::sync::atomic::{AtomicU8, Ordering};
@@ -583,18 +585,22 @@ const CF: [f32; 9] = [
 ];
 const FUSED_SERIES_BELOW: f32 = 1.0;
 
-/// g(d) = d + e^-d - 1 by the series CF (for |d| < FUSED_SERIES_BELOW).
+/// g(d) = d + e^-d - 1 by its series: to d^8 (CF, for |d| < 1) where
+/// `LONG`, else to d^6 (C, for |d| < 0.5), two multiply-adds fewer. Horner's
+/// scheme: one multiply-add fewer than splitting even and odd terms, and the
+/// longer dependency chain is hidden by the independent columns in flight.
 #[inline(always)]
-fn g_series<const L: u8>(d: f32) -> f32 {
+fn g_series<const L: u8, const LONG: bool>(d: f32) -> f32 {
     let ma = mul_add::<L>;
-    let d2 = d * d;
-    let ev = ma(
-        d2,
-        ma(d2, ma(d2, ma(d2, CF[8], CF[6]), CF[4]), CF[2]),
-        CF[0],
-    );
-    let od = d * ma(d2, ma(d2, ma(d2, CF[7], CF[5]), CF[3]), CF[1]);
-    d2 * (ev + od)
+    let p = if LONG {
+        let p = ma(CF[8], d, CF[7]);
+        let p = ma(p, d, CF[6]);
+        ma(ma(p, d, CF[5]), d, CF[4])
+    } else {
+        ma(C[6], d, C[5])
+    };
+    let p = ma(ma(ma(ma(p, d, C[3]), d, C[2]), d, C[1]), d, C[0]);
+    (d * d) * p
 }
 
 struct PairConsts {
@@ -869,13 +875,38 @@ struct FusedConsts {
 }
 
 /// f32 partial sums of one chunk run: e g(d) (with the candidate's mass
-/// where e = 0), e d, v d, v (x - sx), and the lane maxima of y.
+/// where e = 0), v d, v (x - sx), and the lane maxima of y.
 struct FusedLanes {
     g: F,
-    a: F,
     j: F,
     t: F,
     my: F,
+}
+
+/// The series route of `fused_step` for 16 close columns (see there).
+#[inline(always)]
+fn fused_close<const L: u8, const LONG: bool>(
+    d: &F,
+    xs: &F,
+    y: &F,
+    er: &F,
+    s: &mut FusedLanes,
+    vb: &mut F,
+) -> F {
+    let ma = mul_add::<L>;
+    let mut out = [0f32; W];
+    for j in 0..W {
+        let e = er[j];
+        let gd = g_series::<L, LONG>(d[j]);
+        let v = e * (gd - d[j]);
+        s.g[j] = ma(e, gd, s.g[j]);
+        s.j[j] = ma(v, d[j], s.j[j]);
+        s.t[j] = ma(v, xs[j], s.t[j]);
+        vb[j] += v;
+        s.my[j] = if y[j] > s.my[j] { y[j] } else { s.my[j] };
+        out[j] = v;
+    }
+    out
 }
 
 /// Adds 16 columns to the fused sums; returns v = w - e of each column.
@@ -903,29 +934,25 @@ fn fused_step<const L: u8, const OFF: bool>(
             d[j] = (x[j] - y[j]) - k.kc;
         }
     }
-    let mut out = [0f32; W];
-    if all_abs_below::<L>(&d, FUSED_SERIES_BELOW) {
-        // The common case: every column close. Both logits are finite.
-        for j in 0..W {
-            let e = er[j];
-            let gd = g_series::<L>(d[j]);
-            let v = e * (gd - d[j]);
-            s.g[j] = ma(e, gd, s.g[j]);
-            s.a[j] = ma(e, d[j], s.a[j]);
-            s.j[j] = ma(v, d[j], s.j[j]);
-            s.t[j] = ma(v, xs[j], s.t[j]);
-            vb[j] += v;
-            s.my[j] = if y[j] > s.my[j] { y[j] } else { s.my[j] };
-            out[j] = v;
-        }
-        return out;
+    // The common case: every column of the chunk close (both logits finite).
+    // sum e d is not kept: it is sum e g(d) - sum v, column by column.
+    let mut d2 = [0f32; W];
+    for j in 0..W {
+        d2[j] = d[j] * d[j];
     }
+    if all_below::<L>(&d2, SERIES_BELOW * SERIES_BELOW) {
+        return fused_close::<L, false>(&d, &xs, y, er, s, vb);
+    }
+    if all_below::<L>(&d2, FUSED_SERIES_BELOW * FUSED_SERIES_BELOW) {
+        return fused_close::<L, true>(&d, &xs, y, er, s, vb);
+    }
+    let mut out = [0f32; W];
     for j in 0..W {
         let e = er[j];
         let dj = d[j];
         let w = exp::exp_clamped::<L>(y[j] - k.ya);
         let small = dj.abs() < FUSED_SERIES_BELOW;
-        let gd = g_series::<L>(dj);
+        let gd = g_series::<L, true>(dj);
         let pos = e > 0.0;
         // e g(d) in the direct form e d + w - e away from 0; where the
         // reference has no mass the candidate's mass w (the sum's R term).
@@ -938,13 +965,11 @@ fn fused_step<const L: u8, const OFF: bool>(
         } else {
             w
         };
-        let a = if pos { e * dj } else { 0.0 };
         let v = if pos && small { e * (gd - dj) } else { w - e };
         // Columns where neither side has mass add nothing (their d may be NaN).
         let jt = if v == 0.0 { 0.0 } else { v * dj };
         let tt = if v == 0.0 { 0.0 } else { v * xs[j] };
         s.g[j] += g;
-        s.a[j] += a;
         s.j[j] += jt;
         s.t[j] += tt;
         vb[j] += v;
@@ -954,7 +979,7 @@ fn fused_step<const L: u8, const OFF: bool>(
     out
 }
 
-/// The fused pass's loop over the row: the f64 sums of e g(d), e d, v d and
+/// The fused pass's loop over the row: the f64 sums of e g(d), v d and
 /// v (x - sx), the sum of v (its block sums into `bw`), the lane maxima of y.
 #[inline(always)]
 fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
@@ -964,7 +989,7 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
     k: &FusedConsts,
     vbuf: &mut [f32],
     bw: &mut [f64],
-) -> ([[f64; W]; 4], f64, F) {
+) -> ([[f64; W]; 3], f64, F) {
     const GROUP: usize = 16;
     let n = x.len();
     let nb = norm_blocks(n);
@@ -974,12 +999,11 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
     );
     let mut s = FusedLanes {
         g: [0f32; W],
-        a: [0f32; W],
         j: [0f32; W],
         t: [0f32; W],
         my: [NEG_INF; W],
     };
-    let mut acc = [[0f64; W]; 4];
+    let mut acc = [[0f64; W]; 3];
     let mut lanes_v = [[0f32; W]; GROUP];
     let mut vtot = 0f64;
     let per_pair = PAIR_BLOCK / NORM_BLOCK;
@@ -1020,10 +1044,7 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
             }
             lanes_v[kb] = vb;
             if (bi + kb) % per_pair == per_pair - 1 {
-                for (q, l) in [&mut s.g, &mut s.a, &mut s.j, &mut s.t]
-                    .into_iter()
-                    .enumerate()
-                {
+                for (q, l) in [&mut s.g, &mut s.j, &mut s.t].into_iter().enumerate() {
                     widen_add::<L>(&mut acc[q], l);
                     *l = [0f32; W];
                 }
@@ -1036,7 +1057,7 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
         }
         bi += g;
     }
-    for (q, l) in [&s.g, &s.a, &s.j, &s.t].into_iter().enumerate() {
+    for (q, l) in [&s.g, &s.j, &s.t].into_iter().enumerate() {
         widen_add::<L>(&mut acc[q], l);
     }
     (acc, vtot, s.my)
@@ -1092,12 +1113,9 @@ fn fused_src<const L: u8, SX: Src, SY: Src>(
     } else {
         fused_loop::<L, false, SX, SY>(x, y, er, &k, vbuf, bw)
     };
-    let (gs, as_, js, ts) = (
-        hsum64(&acc[0]),
-        hsum64(&acc[1]),
-        hsum64(&acc[2]),
-        hsum64(&acc[3]),
-    );
+    let (gs, js, ts) = (hsum64(&acc[0]), hsum64(&acc[1]), hsum64(&acc[2]));
+    // sum e d, from sum e g(d) - sum v (see fused_step).
+    let as_ = gs - vtot;
     let max_c = hmax(&my);
     let sum_r = r.sum;
     let z = sum_r + vtot;
