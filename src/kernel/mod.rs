@@ -597,7 +597,7 @@ fn g_series<const L: u8, const LONG: bool>(d: f32) -> f32 {
         let p = ma(p, d, CF[6]);
         ma(ma(p, d, CF[5]), d, CF[4])
     } else {
-        ma(C[6], d, C[5])
+        ma(ma(C[6], d, C[5]), d, C[4])
     };
     let p = ma(ma(ma(ma(p, d, C[3]), d, C[2]), d, C[1]), d, C[0]);
     (d * d) * p
@@ -870,8 +870,33 @@ struct FusedConsts {
     sx: f32,
     sy: f32,
     kc: f32,
-    /// The anchor y_a.
+    /// The candidate's anchor Q: w = exp(y - Q) = e exp(-d).
     ya: f32,
+}
+
+/// The typical (x - sx) - (y - sy) of a row pair: the mean over up to 256
+/// evenly spaced columns where both are finite, or `fallback`. Taking d
+/// relative to it centres the differences of the whole row, so a candidate
+/// whose value at the reference's top column happens to be off by its noise
+/// does not push every column of the row off the series route.
+#[inline(always)]
+fn centre<SX: Src, SY: Src>(x: SX, y: SY, sx: f32, sy: f32, fallback: f32) -> f32 {
+    const SAMPLE: usize = 256;
+    let n = x.len();
+    let step = (n / SAMPLE).max(1);
+    let (mut sum, mut count) = (0f64, 0usize);
+    for i in (0..n).step_by(step) {
+        let d = (x.at(i) - sx) - (y.at(i) - sy);
+        if d.is_finite() {
+            sum += d as f64;
+            count += 1;
+        }
+    }
+    if count == 0 {
+        fallback
+    } else {
+        (sum / count as f64) as f32
+    }
 }
 
 /// f32 partial sums of one chunk run: e g(d) (with the candidate's mass
@@ -922,13 +947,13 @@ fn fused_step<const L: u8, const OFF: bool>(
     let ma = mul_add::<L>;
     let mut d = [0f32; W];
     let mut xs = [0f32; W];
-    // OFF: each row relative to its anchor (sx = x_a, sy = y_a, kc = 0);
-    // else sx = sy = 0 and the two forms below give the same bits as
-    // ((x - sx) - (y - sy)) - kc, with two subtractions fewer.
+    // OFF: each row first taken relative to its own top value (sx = x_a,
+    // sy = y_a); else sx = sy = 0 and the second form gives the same bits
+    // with two subtractions fewer.
     for j in 0..W {
         if OFF {
             xs[j] = x[j] - k.sx;
-            d[j] = xs[j] - (y[j] - k.sy);
+            d[j] = (xs[j] - (y[j] - k.sy)) - k.kc;
         } else {
             xs[j] = x[j];
             d[j] = (x[j] - y[j]) - k.kc;
@@ -1093,22 +1118,64 @@ fn fused_src<const L: u8, SX: Src, SY: Src>(
     // each row is first taken relative to its own anchor, exact for every
     // column that carries mass.
     let kraw = xa - ya;
-    let k = if kraw.abs() <= 1.0 && xa.abs() <= 64.0 {
-        FusedConsts {
-            sx: 0.0,
-            sy: 0.0,
-            kc: kraw,
-            ya,
+    let off = !(kraw.abs() <= 1.0 && xa.abs() <= 64.0);
+    let (sx, sy) = if off { (xa, ya) } else { (0.0, 0.0) };
+    let mut kc = centre(x, y, sx, sy, kraw - (sx - sy));
+    let mut second = false;
+    loop {
+        let got = fused_pass::<L, SX, SY>(x, y, er, br, r, vbuf, bw, sx, sy, kc, off, ya)?;
+        // The sums are exact relative to their own size, and the result is a
+        // difference of two of them when the reference's mass sits at a d of
+        // its own (the row's centre is not the p-weighted one): with u = Z/S - 1,
+        // KL = sum p g(d) - (u^2/2 - ...), TV = sum |v - u e| / 2Z. Where that
+        // costs more than two digits, the pass is repeated once with d centred
+        // on its p-weighted mean, which makes u second order.
+        let (f, u, mean_p) = got;
+        let m = &f.m;
+        let lossy = 0.5 * u * u > 100.0 * m.kl.min(m.kl_reverse) || u.abs() > 100.0 * m.tv;
+        if !lossy {
+            return Some(f);
         }
-    } else {
-        FusedConsts {
-            sx: xa,
-            sy: ya,
-            kc: 0.0,
-            ya,
+        // Far from the centre (|u| > 1, the candidate's mass mostly where the
+        // reference has little) the sums have lost the digits the new centre
+        // would come from: the two-pass route answers instead.
+        if second || u.abs() > 1.0 || !mean_p.is_finite() {
+            return None;
         }
-    };
-    let (acc, vtot, my) = if k.kc == 0.0 && k.sx != 0.0 {
+        kc += mean_p as f32;
+        second = true;
+    }
+}
+
+/// One fused pass with the given centre; also returns u = Z/S - 1 and the
+/// p-weighted mean of d.
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
+fn fused_pass<const L: u8, SX: Src, SY: Src>(
+    x: SX,
+    y: SY,
+    er: &[f32],
+    br: &[f64],
+    r: &RowNorm,
+    vbuf: &mut [f32],
+    bw: &mut [f64],
+    sx: f32,
+    sy: f32,
+    kc: f32,
+    off: bool,
+    ya: f32,
+) -> Option<(Fused, f64, f64)> {
+    let n = x.len();
+    let nb = norm_blocks(n);
+    let xa = r.max;
+    // d = (x - x_a) - (y - Q) with the anchor Q = y_a - kc (offsets) or
+    // x_a - kc: what exp(y - Q) is relative to.
+    let q = sy + (xa - sx) - kc;
+    if !q.is_finite() {
+        return None;
+    }
+    let k = FusedConsts { sx, sy, kc, ya: q };
+    let (acc, vtot, my) = if off {
         fused_loop::<L, true, SX, SY>(x, y, er, &k, vbuf, bw)
     } else {
         fused_loop::<L, false, SX, SY>(x, y, er, &k, vbuf, bw)
@@ -1125,7 +1192,7 @@ fn fused_src<const L: u8, SX: Src, SY: Src>(
         && ts.is_finite()
         && vtot.is_finite()
         && z > 0.0
-        && max_c - ya <= 80.0;
+        && max_c - q <= 80.0;
     if !sane {
         return None;
     }
@@ -1140,8 +1207,8 @@ fn fused_src<const L: u8, SX: Src, SY: Src>(
     for (b, &r) in bw[..nb].iter_mut().zip(br) {
         *b = (*b + r).max(0.0);
     }
-    // The candidate's summary. Its entropy: log Z - sum w (y - y_a) / Z, where
-    // sum w (y - y_a) = sum (e + v)(x - x_a) - sum w d, from the sums above and
+    // The candidate's summary. Its entropy: log Z - sum w (y - Q) / Z, where
+    // sum w (y - Q) = sum (e + v)(x - x_a) - sum w d, from the sums above and
     // the reference's own sum e (x - x_a) = S (log S - H_r).
     let ln_z = z.ln();
     let t_r = sum_r * (sum_r.ln() - r.entropy);
@@ -1155,19 +1222,20 @@ fn fused_src<const L: u8, SX: Src, SY: Src>(
     let c = RowNorm {
         max: max_c,
         argmax: argmax as u32,
-        lse: ya as f64 + ln_z,
-        sum: z * (ya as f64 - max_c as f64).exp(),
+        lse: q as f64 + ln_z,
+        sum: z * (q as f64 - max_c as f64).exp(),
         entropy: ln_z - hw / z,
     };
-    Some(Fused {
+    let f = Fused {
         m: PairMetrics {
             kl: kl.max(0.0),
             kl_reverse: kl_reverse.max(0.0),
             tv: tv.max(0.0),
         },
         c,
-        anchor: ya,
-    })
+        anchor: q,
+    };
+    Some((f, uz, as_ / sum_r))
 }
 
 /// The first column before `upto` holding `v`, the row's maximum, or `upto`.
