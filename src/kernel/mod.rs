@@ -906,6 +906,10 @@ struct FusedLanes {
     j: F,
     t: F,
     my: F,
+    /// Set once a chunk of the row needed the longer series: from then on
+    /// every close chunk takes it, so the route stays predictable on rows
+    /// where the two mix (a coarse candidate) instead of mispredicting.
+    long: bool,
 }
 
 /// The series route of `fused_step` for 16 close columns (see there).
@@ -965,10 +969,11 @@ fn fused_step<const L: u8, const OFF: bool>(
     for j in 0..W {
         d2[j] = d[j] * d[j];
     }
-    if all_below::<L>(&d2, SERIES_BELOW * SERIES_BELOW) {
+    if !s.long && all_below::<L>(&d2, SERIES_BELOW * SERIES_BELOW) {
         return fused_close::<L, false>(&d, &xs, y, er, s, vb);
     }
     if all_below::<L>(&d2, FUSED_SERIES_BELOW * FUSED_SERIES_BELOW) {
+        s.long = true;
         return fused_close::<L, true>(&d, &xs, y, er, s, vb);
     }
     let mut out = [0f32; W];
@@ -1027,6 +1032,7 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
         j: [0f32; W],
         t: [0f32; W],
         my: [NEG_INF; W],
+        long: false,
     };
     let mut acc = [[0f64; W]; 3];
     let mut lanes_v = [[0f32; W]; GROUP];
