@@ -109,28 +109,32 @@ pub fn draw_tokens(
         let hi = (lo + NORM_BLOCK).min(x.len());
         let w = match walk {
             Some(ref mut w) if w.block == bi => w,
-            _ => walk.insert(Walk {
-                block: bi,
-                next: lo,
-                sum: acc,
-                last_nonzero: lo,
-                pending: None,
-            }),
+            _ => {
+                // The block's weights at once, with the kernel's branch-free
+                // exp (the block sums are sums of the same f32 values).
+                let mut e = [0f32; NORM_BLOCK];
+                for (o, i) in e.iter_mut().zip(lo..hi) {
+                    *o = crate::kernel::exp::exp_f32(x.get(i) - max);
+                }
+                walk.insert(Walk {
+                    block: bi,
+                    next: lo,
+                    sum: acc,
+                    last_nonzero: lo,
+                    e,
+                })
+            }
         };
         // Rounding between the f32 block sums and this f64 walk can leave u just
         // past the block's end: the last token with mass is the right answer.
         let mut pick = w.last_nonzero;
         while w.next < hi {
             let i = w.next;
-            let e = w
-                .pending
-                .take()
-                .unwrap_or_else(|| (x.get(i) as f64 - max as f64).exp());
+            let e = w.e[i - lo] as f64;
             if e > 0.0 {
                 w.last_nonzero = i;
                 if w.sum + e > u {
                     // Column i is this draw's; the next draw starts at it again.
-                    w.pending = Some(e);
                     pick = i;
                     break;
                 }
@@ -152,8 +156,8 @@ struct Walk {
     next: usize,
     sum: f64,
     last_nonzero: usize,
-    /// exp of column `next`, when a draw stopped there.
-    pending: Option<f64>,
+    /// exp(x - max) of the block's columns.
+    e: [f32; NORM_BLOCK],
 }
 
 /// Sums over positions for one (samples-per-position, direction) block.
@@ -277,7 +281,7 @@ mod tests {
                 let hi = (lo + NORM_BLOCK).min(x.len());
                 let (mut a, mut last) = (acc, lo);
                 for (i, &v) in x.iter().enumerate().take(hi).skip(lo) {
-                    let e = (v as f64 - max as f64).exp();
+                    let e = crate::kernel::exp::exp_f32(v - max) as f64;
                     if e > 0.0 {
                         last = i;
                         a += e;
