@@ -583,106 +583,126 @@ pub fn run(
             nc
         ],
     };
-    let mut outs: Vec<RowOut> = vec![blank; block];
+    let mut cur: Vec<RowOut> = vec![blank.clone(); block];
+    let mut next: Vec<RowOut> = vec![blank; block];
     // One scratch per worker thread, taken by the worker's index, so nothing is
     // allocated per row or per task.
     let scratch: Vec<std::sync::Mutex<Scratch>> = (0..rayon::current_num_threads().max(1))
         .map(|_| std::sync::Mutex::new(Scratch::new(cols, draws)))
         .collect();
+    // Computes rows row0..row1 into `outs` in parallel, after asking the
+    // kernel to read ahead the block that follows.
+    let compute = |row0: usize, row1: usize, outs: &mut [RowOut]| {
+        use rayon::prelude::*;
+        for f in &files {
+            f.advise_window(row1, block);
+        }
+        // Each task takes a few consecutive rows, so a worker reads the
+        // maps front to back; small tasks keep both workers busy to the
+        // end of the block.
+        const TASK_ROWS: usize = 2;
+        outs[..row1 - row0]
+            .par_chunks_mut(TASK_ROWS)
+            .enumerate()
+            .for_each(|(ti, task)| {
+                let w = rayon::current_thread_index().unwrap_or(0) % scratch.len();
+                let mut s = scratch[w].lock().unwrap_or_else(|e| e.into_inner());
+                for (i, out) in task.iter_mut().enumerate() {
+                    let row = row0 + ti * TASK_ROWS + i;
+                    out.counted = counted(row, &files);
+                    if out.counted {
+                        compute_row(&ctx, &mut s, row, out);
+                    }
+                }
+            });
+    };
     let bar = progress_bar(opts.progress, range.len() as u64);
     let start = std::time::Instant::now();
     let mut row0 = range.start;
     for f in &files {
         f.advise_window(row0, block);
     }
+    let mut row1 = (row0 + block).min(range.end);
+    if row0 < row1 {
+        compute(row0, row1, &mut cur);
+    }
     while row0 < range.end {
-        let row1 = (row0 + block).min(range.end);
         let n = row1 - row0;
-        for f in &files {
-            f.advise_window(row1, block);
-        }
-        {
-            use rayon::prelude::*;
-            // Each task takes a few consecutive rows, so a worker reads the
-            // maps front to back; small tasks keep both workers busy to the
-            // end of the block.
-            const TASK_ROWS: usize = 2;
-            let slots = &mut outs[..n];
-            slots
-                .par_chunks_mut(TASK_ROWS)
-                .enumerate()
-                .for_each(|(ti, task)| {
-                    let w = rayon::current_thread_index().unwrap_or(0) % scratch.len();
-                    let mut s = scratch[w].lock().unwrap_or_else(|e| e.into_inner());
-                    for (i, out) in task.iter_mut().enumerate() {
-                        let row = row0 + ti * TASK_ROWS + i;
-                        out.counted = counted(row, &files);
-                        if out.counted {
-                            compute_row(&ctx, &mut s, row, out);
+        let row2 = (row1 + block).min(range.end);
+        // The next block is computed while this one is folded, in row order,
+        // on the calling thread: the fold never holds the workers up.
+        let folded: Result<()> = rayon::in_place_scope(|sc| {
+            if row1 < row2 {
+                let next = &mut next;
+                let compute = &compute;
+                sc.spawn(move |_| compute(row1, row2, next));
+            }
+            let res = &mut res;
+            for (i, out) in cur[..n].iter().enumerate() {
+                let row = row0 + i;
+                if !out.counted {
+                    continue;
+                }
+                let prompt = prompt_of[row] as usize;
+                let position = row - reference.prompt_starts[prompt];
+                let target = targets.map(|t| t[row]).filter(|&t| t >= 0);
+                for k in 0..nc {
+                    let acc = &mut res.candidates[k];
+                    let fault = match (out.ref_fault, out.cands[k].fault) {
+                        (Some(f), _) => Some(("reference", f)),
+                        (None, Some(f)) => Some(("candidate", f)),
+                        _ => None,
+                    };
+                    if let Some((file, f)) = fault {
+                        acc.skipped_rows += 1;
+                        if acc.skipped.len() < SKIPPED_LISTED {
+                            acc.skipped.push(SkippedRow {
+                                row: row as u64,
+                                prompt: prompt as u64,
+                                position: position as u64,
+                                file: file.into(),
+                                fault: f.describe().into(),
+                            });
                         }
+                        continue;
                     }
-                });
-        }
-        for (i, out) in outs[..n].iter().enumerate() {
-            let row = row0 + i;
-            if !out.counted {
-                continue;
-            }
-            let prompt = prompt_of[row] as usize;
-            let position = row - reference.prompt_starts[prompt];
-            let target = targets.map(|t| t[row]).filter(|&t| t >= 0);
-            for k in 0..nc {
-                let acc = &mut res.candidates[k];
-                let fault = match (out.ref_fault, out.cands[k].fault) {
-                    (Some(f), _) => Some(("reference", f)),
-                    (None, Some(f)) => Some(("candidate", f)),
-                    _ => None,
-                };
-                if let Some((file, f)) = fault {
-                    acc.skipped_rows += 1;
-                    if acc.skipped.len() < SKIPPED_LISTED {
-                        acc.skipped.push(SkippedRow {
-                            row: row as u64,
-                            prompt: prompt as u64,
-                            position: position as u64,
-                            file: file.into(),
-                            fault: f.describe().into(),
-                        });
-                    }
-                    continue;
+                    let co = &out.cands[k];
+                    fold_position(acc, co, opts, row, prompt, position, target);
+                    sink.position(
+                        k,
+                        row,
+                        prompt,
+                        position,
+                        target,
+                        &PositionValues { m: co.m },
+                    )?;
                 }
-                let co = &out.cands[k];
-                fold_position(acc, co, opts, row, prompt, position, target);
-                sink.position(
-                    k,
-                    row,
-                    prompt,
-                    position,
-                    target,
-                    &PositionValues { m: co.m },
-                )?;
-            }
-            for pair in res.pairs.iter_mut() {
-                let (a, b) = (&out.cands[pair.a], &out.cands[pair.b]);
-                if out.ref_fault.is_some() || a.fault.is_some() || b.fault.is_some() {
-                    continue;
-                }
-                let d = a.m[KL] - b.m[KL];
-                match pair.prompts.last_mut() {
-                    Some(last) if last.0 == prompt as u64 => {
-                        last.1 += 1.0;
-                        last.2 += d;
+                for pair in res.pairs.iter_mut() {
+                    let (a, b) = (&out.cands[pair.a], &out.cands[pair.b]);
+                    if out.ref_fault.is_some() || a.fault.is_some() || b.fault.is_some() {
+                        continue;
                     }
-                    _ => pair.prompts.push((prompt as u64, 1.0, d)),
+                    let d = a.m[KL] - b.m[KL];
+                    match pair.prompts.last_mut() {
+                        Some(last) if last.0 == prompt as u64 => {
+                            last.1 += 1.0;
+                            last.2 += d;
+                        }
+                        _ => pair.prompts.push((prompt as u64, 1.0, d)),
+                    }
                 }
             }
-        }
+            Ok(())
+        });
+        folded?;
         for f in &files {
             f.release_before(row1);
         }
         res.rows_processed += n as u64;
         bar.inc(n as u64);
+        std::mem::swap(&mut cur, &mut next);
         row0 = row1;
+        row1 = row2;
     }
     bar.finish_and_clear();
     res.seconds = start.elapsed().as_secs_f64();
