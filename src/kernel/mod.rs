@@ -158,12 +158,14 @@ macro_rules! dispatched {
     ($(#[$m:meta])* pub fn $name:ident / $at:ident ($($a:ident: $t:ty),*) -> $r:ty => $imp:ident) => {
         $(#[$m])*
         #[inline]
+        #[allow(clippy::too_many_arguments)]
         pub fn $name($($a: $t),*) -> $r {
             $at(level(), $($a),*)
         }
 
         /// The same computed at a given level; a level the CPU lacks runs
         /// the best one it has below it.
+        #[allow(clippy::too_many_arguments)]
         pub fn $at(level: Level, $($a: $t),*) -> $r {
             #[cfg(target_arch = "x86_64")]
             {
@@ -406,6 +408,38 @@ dispatched! {
 
 /// Stores exp(x - m) into `e`, the sum of every NORM_BLOCK columns into
 /// `blocks`, and returns (sum exp(x - m), sum (x - m) exp(x - m)).
+/// Walks a row of `n` columns block by block (NORM_BLOCK columns each):
+/// `block(b, lo, hi)` returns the f32 lane sums of block b (columns lo..hi),
+/// which are kept and reduced GROUP blocks at a time, away from the
+/// dependency chains that produced them, into `blocks[b]`; returns their
+/// total. The summation order depends only on `n`.
+#[inline(always)]
+fn for_blocks<const L: u8>(
+    n: usize,
+    blocks: &mut [f64],
+    mut block: impl FnMut(usize, usize, usize) -> F,
+) -> f64 {
+    const GROUP: usize = 16;
+    let nb = norm_blocks(n);
+    let mut lanes = [[0f32; W]; GROUP];
+    let mut total = 0f64;
+    let mut bi = 0usize;
+    while bi < nb {
+        let g = GROUP.min(nb - bi);
+        for (k, l) in lanes[..g].iter_mut().enumerate() {
+            let lo = (bi + k) * NORM_BLOCK;
+            *l = block(bi + k, lo, (lo + NORM_BLOCK).min(n));
+        }
+        for (k, l) in lanes[..g].iter().enumerate() {
+            let b = hsum::<L>(l) as f64;
+            blocks[bi + k] = b;
+            total += b;
+        }
+        bi += g;
+    }
+    total
+}
+
 #[inline(always)]
 fn exp_pass<const L: u8, const STORE: bool, S: Src>(
     x: S,
@@ -414,58 +448,37 @@ fn exp_pass<const L: u8, const STORE: bool, S: Src>(
     blocks: &mut [f64],
 ) -> (f64, f64) {
     // t is summed in f32 lanes per block, over four blocks (256 columns), then in f64.
-    // The lanes of each block's sum are kept and reduced GROUP blocks at a
-    // time, away from the exp chains they depend on.
     const T_EVERY: usize = 4;
-    const GROUP: usize = 16;
     let n = x.len();
-    let mut s_tot = 0f64;
     let mut t_acc = [0f64; W];
     let mut t4 = [0f32; W];
-    let mut lanes = [[0f32; W]; GROUP];
-    #[inline(always)]
-    fn flush<const L: u8>(lanes: &[F], first: usize, blocks: &mut [f64], s_tot: &mut f64) {
-        for (k, l) in lanes.iter().enumerate() {
-            let b = hsum::<L>(l);
-            blocks[first + k] = b as f64;
-            *s_tot += b as f64;
+    let s_tot = for_blocks::<L>(n, blocks, |b, lo, hi| {
+        // Both sums start afresh in every block, so consecutive blocks'
+        // dependency chains overlap.
+        let mut s = [0f32; W];
+        let mut t = [0f32; W];
+        let mut c = lo;
+        while c + W <= hi {
+            // SAFETY: c + 16 <= hi <= n.
+            let v = exp_step::<L>(&unsafe { x.chunk::<L>(c) }, m, &mut s, &mut t);
+            if STORE {
+                e[c..c + W].copy_from_slice(&v);
+            }
+            c += W;
         }
-    }
-    let nb = norm_blocks(n);
-    let mut bi = 0usize;
-    while bi < nb {
-        let g = GROUP.min(nb - bi);
-        for k in 0..g {
-            let lo = (bi + k) * NORM_BLOCK;
-            let hi = (lo + NORM_BLOCK).min(n);
-            // Both sums start afresh in every block, so consecutive blocks'
-            // dependency chains overlap.
-            let mut s = [0f32; W];
-            let mut t = [0f32; W];
-            let mut c = lo;
-            while c + W <= hi {
-                let v = exp_step::<L>(&unsafe { x.chunk::<L>(c) }, m, &mut s, &mut t);
-                if STORE {
-                    e[c..c + W].copy_from_slice(&v);
-                }
-                c += W;
-            }
-            if c < hi {
-                let v = exp_step::<L>(&x.padded(c, hi, NEG_INF), m, &mut s, &mut t);
-                if STORE {
-                    e[c..hi].copy_from_slice(&v[..hi - c]);
-                }
-            }
-            lanes[k] = s;
-            lanes::add(&mut t4, &t);
-            if (bi + k) % T_EVERY == T_EVERY - 1 {
-                widen_add::<L>(&mut t_acc, &t4);
-                t4 = [0f32; W];
+        if c < hi {
+            let v = exp_step::<L>(&x.padded(c, hi, NEG_INF), m, &mut s, &mut t);
+            if STORE {
+                e[c..hi].copy_from_slice(&v[..hi - c]);
             }
         }
-        flush::<L>(&lanes[..g], bi, blocks, &mut s_tot);
-        bi += g;
-    }
+        lanes::add(&mut t4, &t);
+        if b % T_EVERY == T_EVERY - 1 {
+            widen_add::<L>(&mut t_acc, &t4);
+            t4 = [0f32; W];
+        }
+        s
+    });
     widen_add::<L>(&mut t_acc, &t4);
     (s_tot, hsum64(&t_acc))
 }
@@ -555,24 +568,12 @@ pub fn norm_blocks(cols: usize) -> usize {
 // The pair pass.
 
 /// Taylor coefficients of g(d) / d^2 = (d + e^-d - 1) / d^2 = sum_k (-d)^k / (k + 2)!
-/// truncated after d^6 (the next term is below 6e-8 relative at |d| = 0.5).
-const C: [f32; 7] = [
-    1.0 / 2.0,
-    -1.0 / 6.0,
-    1.0 / 24.0,
-    -1.0 / 120.0,
-    1.0 / 720.0,
-    -1.0 / 5040.0,
-    1.0 / 40320.0,
-];
-/// Below this |d| the series form is used.
-const SERIES_BELOW: f32 = 0.5;
-
-/// The same series to d^8 for the fused pass, whose other route costs an
-/// exp per column: the next term is below 5e-8 relative at |d| = 1, and a
-/// candidate with logit noise of 0.3 (a coarse quantisation) then keeps
-/// nearly every chunk on the series route instead of one in five.
-const CF: [f32; 9] = [
+/// to d^8. Truncated after d^6 (the first seven) the next term is below
+/// 6e-8 relative at |d| = 0.5; the fused pass, whose other route costs an
+/// exp per column, also uses all nine below |d| = 1 (next term below 5e-8
+/// relative there), so a candidate with logit noise of 0.3 (a coarse
+/// quantisation) keeps nearly every chunk on the series route.
+const C: [f32; 9] = [
     1.0 / 2.0,
     -1.0 / 6.0,
     1.0 / 24.0,
@@ -583,19 +584,22 @@ const CF: [f32; 9] = [
     -1.0 / 362_880.0,
     1.0 / 3_628_800.0,
 ];
+/// Below this |d| the series to d^6 is used.
+const SERIES_BELOW: f32 = 0.5;
+/// Below this |d| the fused pass uses the series to d^8.
 const FUSED_SERIES_BELOW: f32 = 1.0;
 
-/// g(d) = d + e^-d - 1 by its series: to d^8 (CF, for |d| < 1) where
-/// `LONG`, else to d^6 (C, for |d| < 0.5), two multiply-adds fewer. Horner's
+/// g(d) = d + e^-d - 1 by its series: to d^8 (for |d| < 1) where `LONG`,
+/// else to d^6 (for |d| < 0.5), two multiply-adds fewer. Horner's
 /// scheme: one multiply-add fewer than splitting even and odd terms, and the
 /// longer dependency chain is hidden by the independent columns in flight.
 #[inline(always)]
 fn g_series<const L: u8, const LONG: bool>(d: f32) -> f32 {
     let ma = mul_add::<L>;
     let p = if LONG {
-        let p = ma(CF[8], d, CF[7]);
-        let p = ma(p, d, CF[6]);
-        ma(ma(p, d, CF[5]), d, CF[4])
+        let p = ma(C[8], d, C[7]);
+        let p = ma(p, d, C[6]);
+        ma(ma(p, d, C[5]), d, C[4])
     } else {
         ma(ma(C[6], d, C[5]), d, C[4])
     };
@@ -1020,7 +1024,6 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
     vbuf: &mut [f32],
     bw: &mut [f64],
 ) -> ([[f64; W]; 3], f64, F) {
-    const GROUP: usize = 16;
     let n = x.len();
     let nb = norm_blocks(n);
     assert!(
@@ -1035,59 +1038,45 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
         long: false,
     };
     let mut acc = [[0f64; W]; 3];
-    let mut lanes_v = [[0f32; W]; GROUP];
-    let mut vtot = 0f64;
     let per_pair = PAIR_BLOCK / NORM_BLOCK;
-    let mut bi = 0usize;
-    while bi < nb {
-        let g = GROUP.min(nb - bi);
-        for kb in 0..g {
-            let lo = (bi + kb) * NORM_BLOCK;
-            let hi = (lo + NORM_BLOCK).min(n);
-            let mut vb = [0f32; W];
-            let mut c = lo;
-            while c + W <= hi {
-                // SAFETY: c + 16 <= hi <= n, and every buffer holds n columns
-                // (asserted above).
-                let (xc, yc, ec) = unsafe {
-                    (
-                        x.chunk::<L>(c),
-                        y.chunk::<L>(c),
-                        std::ptr::read_unaligned(er.as_ptr().add(c) as *const F),
-                    )
-                };
-                let v = fused_step::<L, OFF>(&xc, &yc, &ec, k, &mut s, &mut vb);
-                // SAFETY: as above, for the 16 columns written.
-                unsafe { std::ptr::write_unaligned(vbuf.as_mut_ptr().add(c) as *mut F, v) };
-                c += W;
-            }
-            if c < hi {
-                // Padding columns have no mass on either side and add exactly 0.
-                let v = fused_step::<L, OFF>(
-                    &x.padded(c, hi, NEG_INF),
-                    &y.padded(c, hi, NEG_INF),
-                    &padded(&er[c..hi], 0.0),
-                    k,
-                    &mut s,
-                    &mut vb,
-                );
-                vbuf[c..hi].copy_from_slice(&v[..hi - c]);
-            }
-            lanes_v[kb] = vb;
-            if (bi + kb) % per_pair == per_pair - 1 {
-                for (q, l) in [&mut s.g, &mut s.j, &mut s.t].into_iter().enumerate() {
-                    widen_add::<L>(&mut acc[q], l);
-                    *l = [0f32; W];
-                }
+    let vtot = for_blocks::<L>(n, bw, |b, lo, hi| {
+        let mut vb = [0f32; W];
+        let mut c = lo;
+        while c + W <= hi {
+            // SAFETY: c + 16 <= hi <= n, and every buffer holds n columns
+            // (asserted above).
+            let (xc, yc, ec) = unsafe {
+                (
+                    x.chunk::<L>(c),
+                    y.chunk::<L>(c),
+                    std::ptr::read_unaligned(er.as_ptr().add(c) as *const F),
+                )
+            };
+            let v = fused_step::<L, OFF>(&xc, &yc, &ec, k, &mut s, &mut vb);
+            // SAFETY: as above, for the 16 columns written.
+            unsafe { std::ptr::write_unaligned(vbuf.as_mut_ptr().add(c) as *mut F, v) };
+            c += W;
+        }
+        if c < hi {
+            // Padding columns have no mass on either side and add exactly 0.
+            let v = fused_step::<L, OFF>(
+                &x.padded(c, hi, NEG_INF),
+                &y.padded(c, hi, NEG_INF),
+                &padded(&er[c..hi], 0.0),
+                k,
+                &mut s,
+                &mut vb,
+            );
+            vbuf[c..hi].copy_from_slice(&v[..hi - c]);
+        }
+        if b % per_pair == per_pair - 1 {
+            for (q, l) in [&mut s.g, &mut s.j, &mut s.t].into_iter().enumerate() {
+                widen_add::<L>(&mut acc[q], l);
+                *l = [0f32; W];
             }
         }
-        for (kb, l) in lanes_v[..g].iter().enumerate() {
-            let b = hsum::<L>(l) as f64;
-            bw[bi + kb] = b;
-            vtot += b;
-        }
-        bi += g;
-    }
+        vb
+    });
     for (q, l) in [&s.g, &s.j, &s.t].into_iter().enumerate() {
         widen_add::<L>(&mut acc[q], l);
     }

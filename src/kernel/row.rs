@@ -84,6 +84,7 @@ pub fn f16_to_f32(h: u16) -> f32 {
 /// What a kernel pass reads: `len` columns, one at a time or sixteen at a
 /// time, widened to f32. `chunk::<L>` is built for kernel level `L` (see
 /// `kernel::Level`); every level gives the same values.
+#[allow(clippy::len_without_is_empty)]
 pub trait Src: Copy {
     fn len(self) -> usize;
     fn at(self, i: usize) -> f32;

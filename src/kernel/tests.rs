@@ -754,6 +754,30 @@ fn reference_candidate(y: &[f32]) -> (f64, f64, usize) {
     (lse, h, arg)
 }
 
+/// KL both ways (relative `rel`, absolute `abs`) and TV (relative `rel_tv`)
+/// of a comparison against float64 values `want` = (kl, kl_reverse, tv).
+fn assert_pair_close(
+    what: &str,
+    m: &PairMetrics,
+    want: (f64, f64, f64),
+    rel: f64,
+    abs: f64,
+    rel_tv: f64,
+) {
+    let (kl, kr, tv) = want;
+    assert!(close(m.kl, kl, rel, abs), "{what}: kl {} vs {kl}", m.kl);
+    assert!(
+        close(m.kl_reverse, kr, rel, abs),
+        "{what}: kl_reverse {} vs {kr}",
+        m.kl_reverse
+    );
+    assert!(
+        close(m.tv, tv, rel_tv, 1e-12),
+        "{what}: tv {} vs {tv}",
+        m.tv
+    );
+}
+
 fn fused_at(l: Level, x: &[f32], y: &[f32]) -> (RowNorm, Option<Fused>, Vec<f64>) {
     let n = x.len();
     let mut er = vec![0f32; n];
@@ -800,21 +824,7 @@ fn fused_pass_matches_f64_near_and_far() {
             let (r, f, _) = fused_at(l, &x, &y);
             let f = f.unwrap_or_else(|| panic!("n={n} eps={eps}: fused pass declined"));
             let what = format!("{} n={n} eps={eps}", l.name());
-            assert!(
-                close(f.m.kl, kl, 1e-4, 1e-9),
-                "{what}: kl {} vs {kl}",
-                f.m.kl
-            );
-            assert!(
-                close(f.m.kl_reverse, kr, 1e-4, 1e-9),
-                "{what}: kl_reverse {} vs {kr}",
-                f.m.kl_reverse
-            );
-            assert!(
-                close(f.m.tv, tv, 2e-5, 1e-12),
-                "{what}: tv {} vs {tv}",
-                f.m.tv
-            );
+            assert_pair_close(&what, &f.m, (kl, kr, tv), 1e-4, 1e-9, 2e-5);
             assert!(close(r.entropy, hp, 1e-5, 1e-6));
             assert!(
                 close(f.c.entropy, hq, 1e-5, 1e-6),
@@ -854,21 +864,7 @@ fn fused_pass_keeps_relative_precision_below_a_micro_nat() {
         for l in levels() {
             let f = fused_at(l, &x, &y).1.expect("fused pass declined");
             let what = format!("{} n={n} eps={eps}", l.name());
-            assert!(
-                close(f.m.kl, kl, 1e-4, 0.0),
-                "{what}: kl {} vs {kl}",
-                f.m.kl
-            );
-            assert!(
-                close(f.m.kl_reverse, kr, 1e-4, 0.0),
-                "{what}: kl_reverse {} vs {kr}",
-                f.m.kl_reverse
-            );
-            assert!(
-                close(f.m.tv, tv, 1e-4, 1e-12),
-                "{what}: tv {} vs {tv}",
-                f.m.tv
-            );
+            assert_pair_close(&what, &f.m, (kl, kr, tv), 1e-4, 0.0, 1e-4);
         }
     }
 }
@@ -1078,34 +1074,19 @@ fn fused_pass_keeps_precision_when_the_mass_sits_off_the_rows_centre() {
         let (kl, kr) = reference_cancellation_free(&x, &y);
         let (_, _, tv, _, hq) = reference(&x, &y);
         for l in levels() {
-            let (r, f, _) = fused_at(l, &x, &y);
+            let (_, f, _) = fused_at(l, &x, &y);
             let f = match f {
                 Some(f) => f,
                 None => compare_rows(&x, &y).unwrap().1,
             };
 
             let what = format!("{} shift={shift}", l.name());
-            assert!(
-                close(f.m.kl, kl, 1e-4, 0.0),
-                "{what}: kl {} vs {kl}",
-                f.m.kl
-            );
-            assert!(
-                close(f.m.kl_reverse, kr, 1e-4, 0.0),
-                "{what}: kl_reverse {} vs {kr}",
-                f.m.kl_reverse
-            );
-            assert!(
-                close(f.m.tv, tv, 1e-4, 0.0),
-                "{what}: tv {} vs {tv}",
-                f.m.tv
-            );
+            assert_pair_close(&what, &f.m, (kl, kr, tv), 1e-4, 0.0, 1e-4);
             assert!(
                 close(f.c.entropy, hq, 1e-5, 1e-9),
                 "{what}: H {} vs {hq}",
                 f.c.entropy
             );
-            let _ = r;
         }
     }
 }
