@@ -8,7 +8,7 @@
 //! block plus the per-position values kept for exact percentiles.
 
 use crate::error::{Error, Result};
-use crate::estimators::{draw_tokens, k_values, EstimatorSums};
+use crate::estimators::{draw_weighted, k_values, EstimatorSums};
 use crate::input::LogitFile;
 use crate::kernel::{self, Row, RowFault, RowNorm};
 use serde::{Deserialize, Serialize};
@@ -434,9 +434,11 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
     out.ref_fault = None;
     let draws = ctx.draws;
     if draws > 0 {
-        draw_tokens(
-            xr,
-            nr.max,
+        // The weights are the exponentials the kernel stored.
+        let e = &*er;
+        draw_weighted(
+            |i| e[i],
+            cols,
             br,
             ctx.opts.seed,
             row as u64,
@@ -457,7 +459,7 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
         let co = &mut out.cands[k];
         let xc = cand.stored_row(row, cols, raw_c);
         // The candidate is normalised inside the pair pass (see `kernel::compare_pair`).
-        let (f, _) = match kernel::compare_pair(xr, xc, er, br, &nr, pair) {
+        let (f, route) = match kernel::compare_pair(xr, xc, er, br, &nr, pair) {
             Ok(v) => v,
             Err(fault) => {
                 co.fault = Some(fault);
@@ -495,9 +497,11 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
             fold_draws(&mut co.est, 0, &ctx.opts.samples, |j| {
                 log_ratio(xr, &nr, xc, &nc, tp[j])
             });
-            draw_tokens(
-                xc,
-                f.anchor,
+            let pair = &*pair;
+            let e = &*er;
+            draw_weighted(
+                |i| pair.weight(e, route, i),
+                cols,
                 &pair.blocks,
                 ctx.opts.seed,
                 row as u64,

@@ -76,12 +76,30 @@ pub fn uniform(seed: u64, row: u64, direction: u64, j: u64) -> f64 {
 
 /// Draws `out.len()` tokens from softmax(x) by inverse CDF. `blocks` holds
 /// the sums of exp(x - max) per NORM_BLOCK columns, as left by
-/// `kernel::normalise` (or of exp(x - anchor), as `kernel::compare_pair`
-/// leaves them for the candidate: `max` is then the anchor). `order` is
-/// scratch of the same length as `out`.
+/// `kernel::normalise`. `order` is scratch of the same length as `out`.
+#[allow(clippy::too_many_arguments)]
 pub fn draw_tokens(
     x: Row,
     max: f32,
+    blocks: &[f64],
+    seed: u64,
+    row: u64,
+    direction: u64,
+    order: &mut Vec<(f64, usize)>,
+    out: &mut [u32],
+) {
+    let w = |i: usize| crate::kernel::exp::exp_f32(x.get(i) - max);
+    draw_weighted(w, x.len(), blocks, seed, row, direction, order, out)
+}
+
+/// `draw_tokens` from the weights themselves: `weight(i)` is column i's
+/// unnormalised probability and `blocks` the sums of those weights per
+/// NORM_BLOCK columns (the engine passes the exponentials the kernel
+/// stored, so nothing is recomputed).
+#[allow(clippy::too_many_arguments)]
+pub fn draw_weighted(
+    weight: impl Fn(usize) -> f32,
+    cols: usize,
     blocks: &[f64],
     seed: u64,
     row: u64,
@@ -106,31 +124,22 @@ pub fn draw_tokens(
             bi += 1;
         }
         let lo = bi * NORM_BLOCK;
-        let hi = (lo + NORM_BLOCK).min(x.len());
+        let hi = (lo + NORM_BLOCK).min(cols);
         let w = match walk {
             Some(ref mut w) if w.block == bi => w,
-            _ => {
-                // The block's weights at once, with the kernel's branch-free
-                // exp (the block sums are sums of the same f32 values).
-                let mut e = [0f32; NORM_BLOCK];
-                for (o, i) in e.iter_mut().zip(lo..hi) {
-                    *o = crate::kernel::exp::exp_f32(x.get(i) - max);
-                }
-                walk.insert(Walk {
-                    block: bi,
-                    next: lo,
-                    sum: acc,
-                    last_nonzero: lo,
-                    e,
-                })
-            }
+            _ => walk.insert(Walk {
+                block: bi,
+                next: lo,
+                sum: acc,
+                last_nonzero: lo,
+            }),
         };
-        // Rounding between the f32 block sums and this f64 walk can leave u just
+        // Rounding between the block sums and this f64 walk can leave u just
         // past the block's end: the last token with mass is the right answer.
         let mut pick = w.last_nonzero;
         while w.next < hi {
             let i = w.next;
-            let e = w.e[i - lo] as f64;
+            let e = weight(i) as f64;
             if e > 0.0 {
                 w.last_nonzero = i;
                 if w.sum + e > u {
@@ -156,8 +165,6 @@ struct Walk {
     next: usize,
     sum: f64,
     last_nonzero: usize,
-    /// exp(x - max) of the block's columns.
-    e: [f32; NORM_BLOCK],
 }
 
 /// Sums over positions for one (samples-per-position, direction) block.

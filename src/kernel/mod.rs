@@ -1357,6 +1357,17 @@ pub struct PairScratch {
 }
 
 impl PairScratch {
+    /// Column i's weight in the candidate's block sums (`blocks`) after
+    /// `compare_pair` took `route`: exp(y_i - anchor), as the pass summed
+    /// it, for the sampler.
+    #[inline]
+    pub fn weight(&self, er: &[f32], route: Route, i: usize) -> f32 {
+        match route {
+            Route::Fused => er[i] + self.v[i],
+            Route::TwoPass => self.ec[i],
+        }
+    }
+
     pub fn new(cols: usize) -> PairScratch {
         PairScratch {
             v: vec![0.0; cols],
