@@ -141,7 +141,7 @@ fn engine_options(args: &CompareArgs, rows: Option<std::ops::Range<usize>>) -> E
         seed: args.seed,
         top: args.top,
         rows,
-        block_rows: 64,
+        block_rows: crate::engine::BLOCK_ROWS,
         progress: args.progress,
     }
 }
