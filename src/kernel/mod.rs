@@ -571,12 +571,10 @@ pub fn norm_blocks(cols: usize) -> usize {
 // The pair pass.
 
 /// Taylor coefficients of g(d) / d^2 = (d + e^-d - 1) / d^2 = sum_k (-d)^k / (k + 2)!
-/// to d^8. Truncated after d^6 (the first seven) the next term is below
-/// 6e-8 relative at |d| = 0.5; the fused pass, whose other route costs an
-/// exp per column, also uses all nine below |d| = 1 (next term below 5e-8
-/// relative there), so a candidate with logit noise of 0.3 (a coarse
-/// quantisation) keeps nearly every chunk on the series route.
-const C: [f32; 9] = [
+/// to d^6, for `compare_stored`, which evaluates g(d) and g(-d) from one
+/// set of even and odd parts. The next term is below 6e-8 relative at
+/// |d| = 0.5.
+const C: [f32; 7] = [
     1.0 / 2.0,
     -1.0 / 6.0,
     1.0 / 24.0,
@@ -584,29 +582,58 @@ const C: [f32; 9] = [
     1.0 / 720.0,
     -1.0 / 5040.0,
     1.0 / 40320.0,
-    -1.0 / 362_880.0,
-    1.0 / 3_628_800.0,
 ];
-/// Below this |d| the series to d^6 is used.
+/// Below this |d| the series to d^6 is used (`compare_stored`) and the fused
+/// pass takes its shorter polynomial.
 const SERIES_BELOW: f32 = 0.5;
-/// Below this |d| the fused pass uses the series to d^8.
-const FUSED_SERIES_BELOW: f32 = 1.0;
+/// Below this |d| the fused pass uses its longer polynomial.
+const FUSED_SERIES_BELOW: f32 = 1.25;
 
-/// g(d) = d + e^-d - 1 by its series: to d^8 (for |d| < 1) where `LONG`,
-/// else to d^6 (for |d| < 0.5), two multiply-adds fewer. Horner's
-/// scheme: one multiply-add fewer than splitting even and odd terms, and the
-/// longer dependency chain is hidden by the independent columns in flight.
+// The fused pass's g(d) = d^2 P(d), with P interpolating g(d) / d^2 at
+// Chebyshev nodes (near-minimax) instead of the Taylor polynomial `C`: one
+// multiply-add fewer on |d| < 0.5 for the same accuracy, and the longer one
+// covers |d| < 1.25 with two fewer than Taylor would need. Printed by
+// scripts/fit_series.py; lowest degree first.
+/// g(d) / d^2 on |d| <= 0.5, degree 5: largest relative error 5.9e-8 with
+/// the coefficients rounded to f32.
+const G_SHORT: [f32; 6] = [
+    0.5,
+    -0.16666667,
+    0.041665792,
+    -0.008333236,
+    0.0013982186,
+    -0.00019944874,
+];
+/// g(d) / d^2 on |d| <= 1.25, degree 7: largest relative error 5.3e-8 with
+/// the coefficients rounded to f32.
+const G_LONG: [f32; 8] = [
+    0.5,
+    -0.16666667,
+    0.041666936,
+    -0.008333358,
+    0.0013880298,
+    -0.00019833485,
+    2.5676913e-05,
+    -2.8351076e-06,
+];
+
+/// g(d) = d + e^-d - 1 for |d| < 1.25 where `LONG`, else for |d| < 0.5,
+/// two multiply-adds fewer. Horner's scheme: one multiply-add fewer than
+/// splitting even and odd terms, and the longer dependency chain is hidden
+/// by the independent columns in flight.
 #[inline(always)]
 fn g_series<const L: u8, const LONG: bool>(d: f32) -> f32 {
     let ma = mul_add::<L>;
     let p = if LONG {
-        let p = ma(C[8], d, C[7]);
-        let p = ma(p, d, C[6]);
-        ma(ma(p, d, C[5]), d, C[4])
+        let c = &G_LONG;
+        let p = ma(ma(c[7], d, c[6]), d, c[5]);
+        let p = ma(ma(ma(p, d, c[4]), d, c[3]), d, c[2]);
+        ma(ma(p, d, c[1]), d, c[0])
     } else {
-        ma(ma(C[6], d, C[5]), d, C[4])
+        let c = &G_SHORT;
+        let p = ma(ma(ma(c[5], d, c[4]), d, c[3]), d, c[2]);
+        ma(ma(p, d, c[1]), d, c[0])
     };
-    let p = ma(ma(ma(ma(p, d, C[3]), d, C[2]), d, C[1]), d, C[0]);
     (d * d) * p
 }
 
