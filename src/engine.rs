@@ -155,6 +155,10 @@ pub struct CandidateAccum {
     pub by_position: crate::histo::PositionProfile,
     /// Per-prompt tail counts behind the interval of kl's percentiles (mergeable).
     pub kl_tail: crate::histo::TailSums,
+    /// The storage floor summed over the floor's sampled rows that were
+    /// counted (`floor::sample_rows`), and their number.
+    pub floor_sum: f64,
+    pub floor_rows: u64,
 }
 
 /// Paired kl differences (a - b) per prompt, over positions counted in both.
@@ -334,6 +338,8 @@ struct CandOut {
     m: [f64; NMETRIC],
     /// [budget][direction][k]
     est: Vec<[[f64; 3]; 2]>,
+    /// The storage floor of a sampled row, else NaN.
+    floor: f64,
 }
 
 #[derive(Debug, Clone)]
@@ -385,6 +391,8 @@ struct RowCtx<'a> {
     targets: Option<&'a [i64]>,
     opts: &'a EngineOptions,
     draws: usize,
+    /// The storage floor's sampled rows, ascending.
+    floor_rows: &'a [usize],
 }
 
 /// log q(t) - log p(t) for token t, in f64.
@@ -463,6 +471,7 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
         .targets
         .map(|t| t[row])
         .filter(|&t| t >= 0 && (t as usize) < cols);
+    let floor_row = ctx.floor_rows.binary_search(&row).is_ok();
     for (k, cand) in ctx.candidates.iter().enumerate() {
         let co = &mut out.cands[k];
         let xc = cand.stored_row(row, cols, raw_c);
@@ -475,6 +484,11 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
             }
         };
         co.fault = None;
+        co.floor = if floor_row {
+            crate::floor::stored_row_floor(xr, ctx.reference.dtype, xc, cand.dtype, er, &nr)
+        } else {
+            f64::NAN
+        };
         let (pm, nc) = (f.m, f.c);
         let m = &mut co.m;
         m[KL] = pm.kl;
@@ -556,6 +570,8 @@ pub fn run(
         .chain(candidates.iter())
         .collect();
     let nc = candidates.len();
+    // Every file has the reference's rows (checked by `align`).
+    let floor_rows: Vec<usize> = crate::floor::sample_rows(reference.rows).collect();
 
     let mut res = EngineResult::default();
     res.candidates = (0..nc)
@@ -581,6 +597,7 @@ pub fn run(
         targets,
         opts,
         draws,
+        floor_rows: &floor_rows,
     };
     let block = opts.block_rows.max(1);
     let blank = RowOut {
@@ -590,7 +607,8 @@ pub fn run(
             CandOut {
                 fault: None,
                 m: [0.0; NMETRIC],
-                est: vec![[[0.0; 3]; 2]; samples.len()]
+                est: vec![[[0.0; 3]; 2]; samples.len()],
+                floor: f64::NAN,
             };
             nc
         ],
@@ -765,6 +783,10 @@ fn fold_position(
     acc.kl_hist.add(m[KL]);
     acc.by_position.add(position as u64, m[KL], m[TOP1]);
     acc.kl_tail.add(prompt as u64, m[KL]);
+    if co.floor.is_finite() {
+        acc.floor_sum += co.floor;
+        acc.floor_rows += 1;
+    }
     for (b, e) in co.est.iter().enumerate() {
         acc.estimators[b][0].add(m[KL], &e[0]);
         acc.estimators[b][1].add(m[KL_REV], &e[1]);

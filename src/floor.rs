@@ -11,7 +11,8 @@
 //! raw bf16 dump around 25 shows a floor near 1e-3 nats while a centered one
 //! shows a far smaller one.
 
-use crate::input::{LogitFile, StoredDtype};
+use crate::input::StoredDtype;
+use crate::kernel::{Rounding, Row, RowNorm};
 
 /// Rounding step of `dtype` at value `x` (one unit in the last place).
 pub fn step(dtype: StoredDtype, x: f32) -> f64 {
@@ -22,52 +23,50 @@ pub fn step(dtype: StoredDtype, x: f32) -> f64 {
     (2f64.powi(e - dtype.mantissa_bits())).max(dtype.min_step())
 }
 
+fn rounding(d: StoredDtype) -> Rounding {
+    Rounding {
+        mantissa_bits: d.mantissa_bits(),
+        min_exp: d.min_step().log2() as i32,
+    }
+}
+
 /// Expected KL from storage rounding of one row pair (computed by the
 /// vectorised kernel; `step` gives the same steps one value at a time).
 pub fn row_floor(x: &[f32], xd: StoredDtype, y: &[f32], yd: StoredDtype) -> f64 {
-    let r = |d: StoredDtype| crate::kernel::Rounding {
-        mantissa_bits: d.mantissa_bits(),
-        min_exp: d.min_step().log2() as i32,
-    };
-    crate::kernel::storage_floor_row(x, r(xd), y, r(yd))
+    crate::kernel::storage_floor_row(x, rounding(xd), y, rounding(yd))
 }
 
-/// Mean floor over up to `max_rows` evenly spaced rows of the pair.
-pub fn storage_floor(
-    reference: &LogitFile,
-    candidate: &LogitFile,
-    cols: usize,
-    max_rows: usize,
+/// `row_floor` inside the streaming pass, from the reference's stored
+/// exponentials `e` and summary `r` (what `kernel::normalise_row` gave).
+pub fn stored_row_floor(
+    x: Row,
+    xd: StoredDtype,
+    y: Row,
+    yd: StoredDtype,
+    e: &[f32],
+    r: &RowNorm,
 ) -> f64 {
-    let rows = reference.rows.min(candidate.rows);
-    if rows == 0 {
-        return f64::NAN;
-    }
-    let take = rows.min(max_rows.max(1));
-    // The sampled rows in parallel (this runs after the streaming pass, on
-    // its own), summed in row order so the result does not depend on threads.
-    use rayon::prelude::*;
-    let floors: Vec<f64> = (0..take)
-        .into_par_iter()
-        .map_init(
-            || (vec![0f32; cols], vec![0f32; cols]),
-            |(x, y), i| {
-                let row = i * rows / take;
-                reference.read_row(row, x);
-                candidate.read_row(row, y);
-                row_floor(x, reference.dtype, y, candidate.dtype)
-            },
-        )
-        .collect();
-    let (mut sum, mut n) = (0f64, 0usize);
-    for f in floors.into_iter().filter(|f| f.is_finite()) {
-        sum += f;
-        n += 1;
-    }
-    if n == 0 {
-        f64::NAN
+    crate::kernel::storage_floor_stored(x, rounding(xd), y, rounding(yd), e, r)
+}
+
+/// The rows the floor is evaluated on: up to `FLOOR_SAMPLE_ROWS`, evenly
+/// spaced over `rows` (a run, a shard and a merge all use these). The
+/// engine computes the floor of each one it counts, and the report takes
+/// their mean.
+pub fn sample_rows(rows: usize) -> impl Iterator<Item = usize> {
+    let take = rows.min(FLOOR_SAMPLE_ROWS.max(1));
+    (0..take).map(move |i| i * rows / take)
+}
+
+/// Rows sampled, evenly spaced, for the storage floor.
+pub const FLOOR_SAMPLE_ROWS: usize = 64;
+
+/// The mean floor of an engine result's sampled rows; NaN without any.
+pub fn mean_floor(sum: f64, rows: u64) -> f64 {
+    if rows > 0 {
+        sum / rows as f64
     } else {
-        sum / n as f64
+        f64::NAN
     }
 }
 

@@ -324,13 +324,6 @@ impl Fnv {
     }
 }
 
-/// Rows whose stored values go into the fingerprint and the storage floor:
-/// the evenly spaced sample `floor::storage_floor` reads.
-fn sample_rows(rows: usize) -> impl Iterator<Item = usize> {
-    let take = rows.min(report::FLOOR_SAMPLE_ROWS.max(1));
-    (0..take).map(move |i| i * rows / take)
-}
-
 /// A fingerprint of one input file: dtype, shape, rows, vocabulary, prompt
 /// boundaries, targets, mask, and the stored bytes of the sampled rows. Equal
 /// files give equal fingerprints on every machine; a file with another
@@ -367,7 +360,7 @@ pub fn fingerprint(f: &LogitFile) -> String {
         }
         None => h.u64(0),
     }
-    for row in sample_rows(f.rows) {
+    for row in crate::floor::sample_rows(f.rows) {
         h.bytes(f.row_bytes(row, f.vocab));
     }
     format!("{:016x}", h.0)
@@ -385,29 +378,6 @@ pub fn input_record(f: &LogitFile) -> InputRecord {
         model: f.metadata.get("model").cloned(),
         fingerprint: fingerprint(f),
     }
-}
-
-/// The storage floor over the sampled rows that fall in `rows`: (sum, count),
-/// so the merged floor is the mean over the same rows a single run samples.
-fn floor_part(
-    reference: &LogitFile,
-    candidate: &LogitFile,
-    cols: usize,
-    rows: &Range<usize>,
-) -> (f64, u64) {
-    let all = reference.rows.min(candidate.rows);
-    let (mut x, mut y) = (vec![0f32; cols], vec![0f32; cols]);
-    let (mut sum, mut n) = (0f64, 0u64);
-    for row in sample_rows(all).filter(|r| rows.contains(r)) {
-        reference.read_row(row, &mut x);
-        candidate.read_row(row, &mut y);
-        let f = crate::floor::row_floor(&x, reference.dtype, &y, candidate.dtype);
-        if f.is_finite() {
-            sum += f;
-            n += 1;
-        }
-    }
-    (sum, n)
 }
 
 fn sums_record(e: &EstimatorSums) -> SumsRecord {
@@ -521,7 +491,6 @@ pub fn from_run(run: &ShardRun, result: EngineResult) -> Partial {
                 }
             })
             .collect();
-        let (fsum, frows) = floor_part(run.reference, file, run.cols, &rows);
         candidates.push(CandidateRecord {
             input: input_record(file),
             positions: acc.positions,
@@ -553,8 +522,8 @@ pub fn from_run(run: &ShardRun, result: EngineResult) -> Partial {
                 .collect(),
             worst_positions,
             storage_floor: FloorRecord {
-                sum: Num(fsum),
-                rows: frows,
+                sum: Num(acc.floor_sum),
+                rows: acc.floor_rows,
             },
             kl_histogram: acc.kl_hist.clone(),
             kl_by_position: acc.by_position.clone(),
@@ -1140,11 +1109,7 @@ pub fn report(
                 acc: &c.acc,
                 aggregates,
                 worst: c.worst.iter().take(top).cloned().collect(),
-                storage_floor: if c.floor_rows > 0 {
-                    c.floor_sum / c.floor_rows as f64
-                } else {
-                    f64::NAN
-                },
+                storage_floor: crate::floor::mean_floor(c.floor_sum, c.floor_rows),
                 kl_p99_ci95: p99_ci,
             }
         })

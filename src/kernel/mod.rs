@@ -1494,11 +1494,84 @@ fn step_sq(x: f32, r: Rounding) -> f64 {
     f64::from_bits(((2 * k + 1023) as u64) << 52)
 }
 
+/// 1/2 sum over the columns of a row pair, where p > 0 and y is finite, of
+/// p (1 - p) (s_x^2 + s_y^2) / 12, with p = exp(x - m) inv, or, where
+/// `STORED`, p = e inv from the reference's stored exponentials `e`.
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
+fn floor_sum<const L: u8, const STORED: bool, SX: Src, SY: Src>(
+    x: SX,
+    rx: Rounding,
+    y: SY,
+    ry: Rounding,
+    m: f32,
+    inv: f32,
+    e: &[f32],
+) -> f64 {
+    #[inline(always)]
+    #[allow(clippy::too_many_arguments)]
+    fn step<const L: u8, const STORED: bool>(
+        x: &F,
+        y: &F,
+        e: &F,
+        m: f32,
+        inv: f32,
+        rx: Rounding,
+        ry: Rounding,
+        acc: &mut [f64; W],
+    ) {
+        for j in 0..W {
+            let p = if STORED {
+                e[j] * inv
+            } else {
+                exp_nonpos::<L>(x[j] - m) * inv
+            };
+            let w = (p * (1.0 - p)) as f64;
+            let v = (step_sq(x[j], rx) + step_sq(y[j], ry)) * (1.0 / 12.0);
+            let ok = p > 0.0 && y[j].is_finite();
+            acc[j] += if ok { w * v } else { 0.0 };
+        }
+    }
+    let n = x.len();
+    assert!(
+        y.len() == n && (!STORED || e.len() >= n),
+        "storage floor: row lengths differ"
+    );
+    let mut acc = [0f64; W];
+    let mut c = 0;
+    while c + W <= n {
+        // SAFETY: c + 16 <= n, the length of both rows and (STORED) of e.
+        let (vx, vy, ve) = unsafe {
+            (
+                x.chunk::<L>(c),
+                y.chunk::<L>(c),
+                if STORED {
+                    std::ptr::read_unaligned(e.as_ptr().add(c) as *const F)
+                } else {
+                    [0f32; W]
+                },
+            )
+        };
+        step::<L, STORED>(&vx, &vy, &ve, m, inv, rx, ry, &mut acc);
+        c += W;
+    }
+    if c < n {
+        let ve = if STORED {
+            padded(&e[c..n], 0.0)
+        } else {
+            [0f32; W]
+        };
+        let (vx, vy) = (x.padded(c, n, NEG_INF), y.padded(c, n, 0.0));
+        step::<L, STORED>(&vx, &vy, &ve, m, inv, rx, ry, &mut acc);
+    }
+    0.5 * hsum64(&acc)
+}
+
 #[inline(always)]
 fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> f64 {
     let n = x.len().min(y.len());
-    let (x, y) = (&x[..n], &y[..n]);
-    let xs = row::F32Le(bytemuck::cast_slice(x));
+    let xs = row::F32Le(bytemuck::cast_slice(&x[..n]));
+    let ys = row::F32Le(bytemuck::cast_slice(&y[..n]));
     let (m, _) = scan_max::<L, _>(xs);
     if !m.is_finite() {
         return f64::NAN;
@@ -1508,43 +1581,28 @@ fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> 
     if sum.is_nan() {
         return f64::NAN;
     }
-    let inv = (1.0 / sum) as f32;
-    let mut acc = [0f64; W];
-    #[inline(always)]
-    fn step<const L: u8>(
-        x: &F,
-        y: &F,
-        m: f32,
-        inv: f32,
-        rx: Rounding,
-        ry: Rounding,
-        acc: &mut [f64; W],
-    ) {
-        for j in 0..W {
-            let p = exp_nonpos::<L>(x[j] - m) * inv;
-            let w = (p * (1.0 - p)) as f64;
-            let v = (step_sq(x[j], rx) + step_sq(y[j], ry)) * (1.0 / 12.0);
-            let ok = p > 0.0 && y[j].is_finite();
-            acc[j] += if ok { w * v } else { 0.0 };
-        }
-    }
-    let (cx, cy) = (x.chunks_exact(W), y.chunks_exact(W));
-    let (tx, ty) = (cx.remainder(), cy.remainder());
-    for (vx, vy) in cx.zip(cy) {
-        step::<L>(load(vx), load(vy), m, inv, rx, ry, &mut acc);
-    }
-    if !tx.is_empty() {
-        step::<L>(
-            &padded(tx, NEG_INF),
-            &padded(ty, 0.0),
-            m,
-            inv,
-            rx,
-            ry,
-            &mut acc,
-        );
-    }
-    0.5 * hsum64(&acc)
+    floor_sum::<L, false, _, _>(xs, rx, ys, ry, m, (1.0 / sum) as f32, &[])
+}
+
+#[inline(always)]
+fn floor_stored_impl<const L: u8>(
+    x: Row,
+    rx: Rounding,
+    y: Row,
+    ry: Rounding,
+    e: &[f32],
+    r: &RowNorm,
+) -> f64 {
+    let inv = (1.0 / r.sum) as f32;
+    with_src!(x, sx => with_src!(y, sy => floor_sum::<L, true, _, _>(sx, rx, sy, ry, r.max, inv, e)))
+}
+
+dispatched! {
+    /// `storage_floor_row` of a row pair in stored form whose reference `x`
+    /// was normalised by `normalise_row` (summary `r`, exponentials `e`):
+    /// the probabilities come from what that pass stored, so the floor costs
+    /// one pass and no exp. Rows must have the same length.
+    pub fn storage_floor_stored / storage_floor_stored_at(x: Row, rx: Rounding, y: Row, ry: Rounding, e: &[f32], r: &RowNorm) -> f64 => floor_stored_impl
 }
 
 dispatched! {

@@ -285,6 +285,7 @@ struct Bits {
     blocks: Vec<u64>,
     m: PairMetrics,
     floor: u64,
+    floor_stored: u64,
 }
 
 fn run_at(l: Level, x: &[f32], y: &[f32]) -> Bits {
@@ -299,6 +300,8 @@ fn run_at(l: Level, x: &[f32], y: &[f32]) -> Bits {
         min_exp: -133,
     };
     let floor = storage_floor_row_at(l, x, rd, y, rd).to_bits();
+    let (rx, ry) = (Row::from_f32(x), Row::from_f32(y));
+    let floor_stored = storage_floor_stored_at(l, rx, rd, ry, rd, &er, &r).to_bits();
     Bits {
         r,
         c,
@@ -306,6 +309,7 @@ fn run_at(l: Level, x: &[f32], y: &[f32]) -> Bits {
         blocks: br.iter().map(|v| v.to_bits()).collect(),
         m,
         floor,
+        floor_stored,
     }
 }
 
@@ -559,6 +563,17 @@ fn storage_floor_matches_the_f64_formula() {
             assert!(
                 close(got, want, 1e-5, 0.0),
                 "{} bits {bits}: {got} vs {want}",
+                l.name()
+            );
+            // The streaming pass's form, from the stored exponentials.
+            let mut e = vec![0f32; x.len()];
+            let mut b = vec![0f64; norm_blocks(x.len())];
+            let n = normalise_store_at(l, &x, &mut e, &mut b).unwrap();
+            let (rx, ry) = (Row::from_f32(&x), Row::from_f32(&y));
+            let stored = storage_floor_stored_at(l, rx, r, ry, r, &e, &n);
+            assert!(
+                close(stored, want, 1e-5, 0.0),
+                "{} bits {bits}: stored {stored} vs {want}",
                 l.name()
             );
         }

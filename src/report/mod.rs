@@ -406,9 +406,6 @@ pub struct CandidateSource<'a> {
     pub kl_p99_ci95: Option<[f64; 2]>,
 }
 
-/// Rows sampled, evenly spaced, for the storage floor (partial results sample the same ones).
-pub const FLOOR_SAMPLE_ROWS: usize = 64;
-
 /// Fewer counted positions than this and the report says the numbers are thin.
 pub const FEW_POSITIONS: u64 = 1000;
 /// Fewer prompts than this and the cluster interval itself is unreliable.
@@ -445,7 +442,7 @@ pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
                 .iter()
                 .map(|w| resolve_worst(r, file, inputs.cols, inputs.targets, w))
                 .collect(),
-            storage_floor: crate::floor::storage_floor(r, file, inputs.cols, FLOOR_SAMPLE_ROWS),
+            storage_floor: crate::floor::mean_floor(acc.floor_sum, acc.floor_rows),
             kl_p99_ci95: p99_ci,
         });
     }
