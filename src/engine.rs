@@ -823,13 +823,20 @@ fn progress_bar(enabled: bool, len: u64) -> indicatif::ProgressBar {
     bar
 }
 
-/// The top tokens of both models at one row, for the worst-position list.
-pub fn top_tokens(file: &LogitFile, row: usize, cols: usize, k: usize) -> Vec<(u32, f64)> {
-    let mut x = vec![0f32; cols];
-    file.read_row(row, &mut x);
-    let mut blocks = vec![0f64; kernel::norm_blocks(cols)];
-    match kernel::normalise(&x, &mut blocks) {
-        Ok(n) => kernel::top_k(&x, k)
+/// The top tokens of both models at one row, for the worst-position list;
+/// `x` and `blocks` are reusable buffers.
+pub fn top_tokens(
+    file: &LogitFile,
+    row: usize,
+    cols: usize,
+    k: usize,
+    (x, blocks): &mut (Vec<f32>, Vec<f64>),
+) -> Vec<(u32, f64)> {
+    x.resize(cols, 0.0);
+    blocks.resize(kernel::norm_blocks(cols), 0.0);
+    file.read_row(row, x);
+    match kernel::normalise(x, blocks) {
+        Ok(n) => kernel::top_k(x, k)
             .into_iter()
             .map(|(i, v)| (i, (v as f64 - n.lse).exp()))
             .collect(),

@@ -469,11 +469,12 @@ pub fn from_run(run: &ShardRun, result: EngineResult) -> Partial {
                 sketch_record(&s)
             })
             .collect();
-        let worst_positions = acc
-            .worst
-            .iter()
-            .map(|w| {
-                let rw = report::resolve_worst(run.reference, file, run.cols, run.targets, w);
+        let resolved =
+            report::resolve_worst(run.reference, file, run.cols, run.targets, &acc.worst);
+        let worst_positions = resolved
+            .into_iter()
+            .map(|rw| {
+                let w = &rw.at;
                 let toks = |v: &[(u32, f64)]| {
                     v.iter()
                         .map(|&(id, p)| TokenRecord { id, p: Num(p) })

@@ -358,21 +358,31 @@ pub struct ResolvedWorst {
     pub context: Option<Vec<i64>>,
 }
 
-/// Reads the top tokens and context of a worst position from the files.
+/// Reads the top tokens and context of each worst position from the files,
+/// in parallel (each is a row read and normalised twice), in list order.
 pub fn resolve_worst(
     reference: &LogitFile,
     candidate: &LogitFile,
     cols: usize,
     targets: Option<&[i64]>,
-    w: &WorstPosition,
-) -> ResolvedWorst {
-    let row = w.row as usize;
-    ResolvedWorst {
-        at: w.clone(),
-        ref_top: engine::top_tokens(reference, row, cols, 5),
-        cand_top: engine::top_tokens(candidate, row, cols, 5),
-        context: context_ids(targets, row, w.position as usize),
-    }
+    worst: &[WorstPosition],
+) -> Vec<ResolvedWorst> {
+    use rayon::prelude::*;
+    worst
+        .par_iter()
+        .map_init(
+            || (Vec::new(), Vec::new()),
+            |buf, w| {
+                let row = w.row as usize;
+                ResolvedWorst {
+                    at: w.clone(),
+                    ref_top: engine::top_tokens(reference, row, cols, 5, buf),
+                    cand_top: engine::top_tokens(candidate, row, cols, 5, buf),
+                    context: context_ids(targets, row, w.position as usize),
+                }
+            },
+        )
+        .collect()
 }
 
 /// The input tokens before a position: the input token at row r is the
@@ -437,11 +447,7 @@ pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
             file: FileSummary::of(file),
             acc,
             aggregates,
-            worst: acc
-                .worst
-                .iter()
-                .map(|w| resolve_worst(r, file, inputs.cols, inputs.targets, w))
-                .collect(),
+            worst: resolve_worst(r, file, inputs.cols, inputs.targets, &acc.worst),
             storage_floor: crate::floor::mean_floor(acc.floor_sum, acc.floor_rows),
             kl_p99_ci95: p99_ci,
         });
