@@ -362,7 +362,7 @@ struct Scratch {
     /// Decoded rows, for the opt-in Jensen-Shannon pass only.
     xd: Vec<f32>,
     yd: Vec<f32>,
-    order: Vec<(f64, usize)>,
+    order: crate::estimators::DrawScratch,
     tok_p: Vec<u32>,
     tok_q: Vec<u32>,
 }
@@ -378,7 +378,7 @@ impl Scratch {
             pair: kernel::PairScratch::new(cols),
             xd: Vec::new(),
             yd: Vec::new(),
-            order: Vec::with_capacity(draws),
+            order: Default::default(),
             tok_p: vec![0; draws],
             tok_q: vec![0; draws],
         }

@@ -76,7 +76,7 @@ pub fn uniform(seed: u64, row: u64, direction: u64, j: u64) -> f64 {
 
 /// Draws `out.len()` tokens from softmax(x) by inverse CDF. `blocks` holds
 /// the sums of exp(x - max) per NORM_BLOCK columns, as left by
-/// `kernel::normalise`. `order` is scratch of the same length as `out`.
+/// `kernel::normalise`. `s` is reusable scratch.
 #[allow(clippy::too_many_arguments)]
 pub fn draw_tokens(
     x: Row,
@@ -85,11 +85,19 @@ pub fn draw_tokens(
     seed: u64,
     row: u64,
     direction: u64,
-    order: &mut Vec<(f64, usize)>,
+    s: &mut DrawScratch,
     out: &mut [u32],
 ) {
     let w = |i: usize| crate::kernel::exp::exp_f32(x.get(i) - max);
-    draw_weighted(w, x.len(), blocks, seed, row, direction, order, out)
+    draw_weighted(w, x.len(), blocks, seed, row, direction, s, out)
+}
+
+/// Reusable memory of the draws: the sorted uniforms and the running sums of
+/// the block sums.
+#[derive(Debug, Default)]
+pub struct DrawScratch {
+    order: Vec<(f64, usize)>,
+    prefix: Vec<f64>,
 }
 
 /// `draw_tokens` from the weights themselves: `weight(i)` is column i's
@@ -104,10 +112,22 @@ pub fn draw_weighted(
     seed: u64,
     row: u64,
     direction: u64,
-    order: &mut Vec<(f64, usize)>,
+    s: &mut DrawScratch,
     out: &mut [u32],
 ) {
-    let total: f64 = blocks.iter().sum();
+    // prefix[b]: the sum of the blocks before b, added front to back (the
+    // one chain of dependent additions a draw costs); prefix[nb] is the total.
+    let prefix = &mut s.prefix;
+    prefix.clear();
+    prefix.reserve(blocks.len() + 1);
+    let mut run = 0f64;
+    prefix.push(run);
+    for &b in blocks {
+        run += b;
+        prefix.push(run);
+    }
+    let total = run;
+    let order = &mut s.order;
     order.clear();
     order.extend((0..out.len()).map(|j| (uniform(seed, row, direction, j as u64) * total, j)));
     order.sort_unstable_by(|a, b| a.0.total_cmp(&b.0));
@@ -115,12 +135,11 @@ pub fn draw_weighted(
     // and inside a block it goes on from where the previous draw stopped
     // (most draws land in the few blocks that hold the top tokens), adding
     // the same terms in the same order as a walk from the block's start.
-    let mut acc = 0f64;
     let mut bi = 0usize;
     let mut walk: Option<Walk> = None;
     for &(u, j) in order.iter() {
-        while bi + 1 < blocks.len() && acc + blocks[bi] <= u {
-            acc += blocks[bi];
+        // The draw's block: the first whose end (prefix[bi + 1]) passes u.
+        while bi + 1 < blocks.len() && prefix[bi + 1] <= u {
             bi += 1;
         }
         let lo = bi * NORM_BLOCK;
@@ -130,7 +149,7 @@ pub fn draw_weighted(
             _ => walk.insert(Walk {
                 block: bi,
                 next: lo,
-                sum: acc,
+                sum: prefix[bi],
                 last_nonzero: lo,
             }),
         };
@@ -318,7 +337,7 @@ mod tests {
             let mut blocks = vec![0f64; crate::kernel::norm_blocks(n)];
             let r = crate::kernel::normalise(&x, &mut blocks).unwrap();
             for draws in [1usize, 16, 300] {
-                let mut order = Vec::new();
+                let mut order = DrawScratch::default();
                 let mut out = vec![0u32; draws];
                 draw_tokens(
                     Row::from_f32(&x),
@@ -409,7 +428,7 @@ mod tests {
         let z: f64 = e.iter().sum();
         let n = 200_000usize;
         let mut out = vec![0u32; n];
-        let mut order = Vec::new();
+        let mut order = DrawScratch::default();
         draw_tokens(
             Row::from_f32(&x),
             mx,
@@ -446,7 +465,7 @@ mod tests {
         let mx = x.iter().cloned().fold(f32::NEG_INFINITY, f32::max);
         let mut blocks = vec![0f64; crate::kernel::norm_blocks(x.len())];
         crate::kernel::normalise(&x, &mut blocks).unwrap();
-        let mut order = Vec::new();
+        let mut order = DrawScratch::default();
         let (mut a, mut b) = (vec![0u32; 16], vec![0u32; 4]);
         draw_tokens(Row::from_f32(&x), mx, &blocks, 1, 9, 0, &mut order, &mut a);
         draw_tokens(Row::from_f32(&x), mx, &blocks, 1, 9, 0, &mut order, &mut b);
@@ -477,7 +496,7 @@ mod tests {
         let blocks = vec![x.iter().map(|&v| ((v - mx) as f64).exp()).sum::<f64>()];
         let n = 20000;
         let mut out = vec![0u32; n];
-        let mut order = Vec::new();
+        let mut order = DrawScratch::default();
         draw_tokens(
             Row::from_f32(&x),
             mx,
