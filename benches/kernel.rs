@@ -173,6 +173,38 @@ fn main() {
         run("storage_floor_row", &mut || {
             black_box(kernel::storage_floor_row_at(l, black_box(&x), rd, &y, rd));
         });
+        // The floor as the streaming pass takes it, from the stored exponentials.
+        run("storage_floor_stored", &mut || {
+            black_box(kernel::storage_floor_stored_at(
+                l,
+                black_box(rx),
+                rd,
+                ry,
+                rd,
+                &er3,
+                &rr,
+            ));
+        });
+        // The default --samples 1,4,16: 16 draws from the reference's stored
+        // exponentials (the sampler is not vectorised: one entry, any level).
+        let mut ds = klgauge::estimators::DrawScratch::default();
+        let mut toks = [0u32; 16];
+        let mut seed = 0u64;
+        run("draw_16", &mut || {
+            seed += 1;
+            let e = &er3;
+            klgauge::estimators::draw_weighted(
+                |i| e[i],
+                cols,
+                black_box(&br),
+                seed,
+                7,
+                0,
+                &mut ds,
+                &mut toks,
+            );
+            black_box(&toks);
+        });
         for (name, (mn, med)) in rows {
             println!(
                 "{:<8} {:<22} {:>10.1} {:>10.1} {:>9.2}",
