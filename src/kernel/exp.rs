@@ -5,7 +5,9 @@
 //! a degree-6 polynomial, exponent assembled from bits) that LLVM turns into
 //! SIMD on every target. Relative error is about 2 ulp on the range that
 //! matters; arguments below -87.3 (including -inf) give exactly 0, which the
-//! kernel relies on for -inf logits. NaN propagates.
+//! kernel relies on for -inf logits. NaN propagates. The normalising pass,
+//! the hottest loop, uses a table-driven form instead (`exp_table`: 16
+//! entries of 2^(j/16), a three-term series, about 1 ulp).
 //!
 //! Everything here is plain f32/u32 arithmetic, with fused multiply-add
 //! exactly where the caller asks for it, so a lane of a 16-wide AVX-512 loop,
@@ -26,6 +28,39 @@ const P5: f32 = 5.000_000_1e-1;
 /// 1.5 * 2^23: adding it rounds to an integer, which then sits in the low
 /// mantissa bits of the sum.
 const ROUND: f32 = 12_582_912.0;
+
+// The normalising pass's form (`exp_table`): exp(x) = 2^n 2^(j/16) e^r with
+// k = round(16 x / ln 2), n = floor(k / 16), j = k mod 16 and
+// |r| <= ln 2 / 32, where three terms of e^r's series are exact to 1e-8
+// (Tang's table-driven method, common practice). Two multiply-adds fewer
+// than the polynomial form; the table entry is a lane permute.
+const T_LOG2E: f32 = 16.0 * std::f32::consts::LOG2_E;
+// n * T_LN2_HI stays exact for |k| < 2^15 (T_LN2_HI = LN2_HI / 16 keeps its 9 bits).
+const T_LN2_HI: f32 = LN2_HI / 16.0;
+const T_LN2_LO: f32 = LN2_LO / 16.0;
+const Q2: f32 = 0.5;
+const Q3: f32 = 1.0 / 6.0;
+/// The bits of ROUND: tt's bits minus these are the integer k.
+const ROUND_BITS: i32 = 0x4B40_0000;
+/// 2^(j/16) rounded to f32 (checked against f64 `powf` in the tests).
+static EXP2_FRAC: [f32; 16] = [
+    1.0,
+    1.044_273_7,
+    1.090_507_7,
+    1.138_788_6,
+    1.189_207_1,
+    1.241_857_8,
+    1.296_839_6,
+    1.354_255_6,
+    1.414_213_5,
+    1.476_826_2,
+    1.542_210_8,
+    1.610_490_3,
+    1.681_792_9,
+    1.756_252_2,
+    1.834_008_1,
+    1.915_206_6,
+];
 
 pub const EXP_UNDERFLOW: f32 = -87.3;
 const EXP_CLAMP_HI: f32 = 88.3;
@@ -86,12 +121,41 @@ pub fn exp_nonpos<const L: u8>(x: f32) -> f32 {
     }
 }
 
+/// exp(x) for x <= 0, -inf and NaN by the table-driven form (see
+/// `EXP2_FRAC`); the same contract as `exp_nonpos`, and what the normalising
+/// pass (`exp_step`) computes lane for lane at every level.
+#[inline(always)]
+pub fn exp_table<const L: u8>(x: f32) -> f32 {
+    let tt = mul_add::<L>(x, T_LOG2E, ROUND);
+    let kf = tt - ROUND;
+    let r = if fused(L) {
+        mul_add::<L>(kf, -T_LN2_LO, mul_add::<L>(kf, -T_LN2_HI, x))
+    } else {
+        (x - kf * T_LN2_HI) - kf * T_LN2_LO
+    };
+    let q = mul_add::<L>(mul_add::<L>(r, Q3, Q2), r, 1.0);
+    // e^r - 1, so the last step adds it to the table entry with one rounding.
+    let em1 = q * r;
+    let k = (tt.to_bits() as i32).wrapping_sub(ROUND_BITS);
+    // 2^n with n = floor(k / 16) >= -126 for x >= -87.3: a normal number, so
+    // the entry times it is exact.
+    let scale = f32::from_bits(((k >> 4) + 127).wrapping_shl(23) as u32);
+    let ts = EXP2_FRAC[(k & 15) as usize] * scale;
+    let v = mul_add::<L>(ts, em1, ts);
+    if x < EXP_UNDERFLOW {
+        0.0
+    } else {
+        v
+    }
+}
+
 /// One step of the normalising pass over 16 lanes: e = exp(c - m) (as
-/// `exp_nonpos`), s += e, and t += (c - m) e where c - m >= EXP_UNDERFLOW.
-/// The AVX-512 build is written with intrinsics: it forms y * 2^n with one
-/// `vscalefps` instead of assembling 2^n from bits and multiplying (both are
-/// the exact product rounded once) and masks the underflow lanes; every
-/// other operation is the same, so the lanes are the same bits.
+/// `exp_table`), s += e, and t += (c - m) e where c - m >= EXP_UNDERFLOW.
+/// The vector builds are written with intrinsics: the table entry is a lane
+/// permute (one 16-entry `vpermps` on AVX-512, two 8-entry ones and a blend
+/// on AVX2), AVX-512 scales it by 2^n with `vscalefps` instead of
+/// assembling 2^n from bits (both exact), and the underflow lanes are
+/// masked; every other operation is the same, so the lanes are the same bits.
 #[inline(always)]
 pub fn exp_step<const L: u8>(
     c: &[f32; 16],
@@ -108,18 +172,20 @@ pub fn exp_step<const L: u8>(
         unsafe {
             let k = _mm512_set1_ps;
             let x = _mm512_sub_ps(_mm512_loadu_ps(c.as_ptr()), k(m));
-            let tt = _mm512_fmadd_ps(x, k(LOG2E), k(ROUND));
-            let n = _mm512_sub_ps(tt, k(ROUND));
-            let r = _mm512_fmadd_ps(n, k(-LN2_LO), _mm512_fmadd_ps(n, k(-LN2_HI), x));
-            let r2 = _mm512_mul_ps(r, r);
-            let pa = _mm512_fmadd_ps(k(P0), r, k(P1));
-            let pb = _mm512_fmadd_ps(k(P2), r, k(P3));
-            let pc = _mm512_fmadd_ps(k(P4), r, k(P5));
-            let y = _mm512_fmadd_ps(_mm512_fmadd_ps(pa, r2, pb), r2, pc);
-            let y = _mm512_add_ps(_mm512_fmadd_ps(y, r2, r), k(1.0));
+            let tt = _mm512_fmadd_ps(x, k(T_LOG2E), k(ROUND));
+            let kf = _mm512_sub_ps(tt, k(ROUND));
+            let r = _mm512_fmadd_ps(kf, k(-T_LN2_LO), _mm512_fmadd_ps(kf, k(-T_LN2_HI), x));
+            let q = _mm512_fmadd_ps(_mm512_fmadd_ps(r, k(Q3), k(Q2)), r, k(1.0));
+            let em1 = _mm512_mul_ps(q, r);
+            // The entry: a permute by the low 4 bits of tt (k mod 16).
+            let ti = _mm512_castps_si512(tt);
+            let tb = _mm512_permutexvar_ps(ti, _mm512_loadu_ps(EXP2_FRAC.as_ptr()));
+            let kk = _mm512_sub_epi32(ti, _mm512_set1_epi32(ROUND_BITS));
+            let nf = _mm512_cvtepi32_ps(_mm512_srai_epi32::<4>(kk));
             // Lanes with x < EXP_UNDERFLOW are zeroed and add no t; NaN lanes are kept.
             let keep = _mm512_cmp_ps_mask::<_CMP_NLT_UQ>(x, k(EXP_UNDERFLOW));
-            let e = _mm512_maskz_scalef_ps(keep, y, n);
+            let ts = _mm512_scalef_ps(tb, nf);
+            let e = _mm512_maskz_fmadd_ps(keep, ts, em1, ts);
             _mm512_storeu_ps(
                 s.as_mut_ptr(),
                 _mm512_add_ps(_mm512_loadu_ps(s.as_ptr()), e),
@@ -140,26 +206,29 @@ pub fn exp_step<const L: u8>(
         // with AVX2 and FMA, called after run-time detection; loads and
         // stores stay inside the arrays. Eight lanes at a time keep the
         // constants and temporaries inside the 16 ymm registers; the
-        // arithmetic is `exp_nonpos::<1>` lane for lane.
+        // arithmetic is `exp_table::<1>` lane for lane.
         unsafe {
             let k = _mm256_set1_ps;
             let mut out = [0f32; 16];
             for h in 0..2 {
                 let x = _mm256_sub_ps(_mm256_loadu_ps(c.as_ptr().add(8 * h)), k(m));
-                let tt = _mm256_fmadd_ps(x, k(LOG2E), k(ROUND));
-                let n = _mm256_sub_ps(tt, k(ROUND));
-                let r = _mm256_fmadd_ps(n, k(-LN2_LO), _mm256_fmadd_ps(n, k(-LN2_HI), x));
-                let r2 = _mm256_mul_ps(r, r);
-                let pa = _mm256_fmadd_ps(k(P0), r, k(P1));
-                let pb = _mm256_fmadd_ps(k(P2), r, k(P3));
-                let pc = _mm256_fmadd_ps(k(P4), r, k(P5));
-                let y = _mm256_fmadd_ps(_mm256_fmadd_ps(pa, r2, pb), r2, pc);
-                let y = _mm256_add_ps(_mm256_fmadd_ps(y, r2, r), k(1.0));
-                let bits = _mm256_add_epi32(
-                    _mm256_slli_epi32::<23>(_mm256_castps_si256(tt)),
-                    _mm256_set1_epi32(127 << 23),
-                );
-                let v = _mm256_mul_ps(y, _mm256_castsi256_ps(bits));
+                let tt = _mm256_fmadd_ps(x, k(T_LOG2E), k(ROUND));
+                let kf = _mm256_sub_ps(tt, k(ROUND));
+                let r = _mm256_fmadd_ps(kf, k(-T_LN2_LO), _mm256_fmadd_ps(kf, k(-T_LN2_HI), x));
+                let q = _mm256_fmadd_ps(_mm256_fmadd_ps(r, k(Q3), k(Q2)), r, k(1.0));
+                let em1 = _mm256_mul_ps(q, r);
+                // The entry: two 8-entry permutes, chosen by bit 3 of k.
+                let ti = _mm256_castps_si256(tt);
+                let lo = _mm256_permutevar8x32_ps(_mm256_loadu_ps(EXP2_FRAC.as_ptr()), ti);
+                let hi = _mm256_permutevar8x32_ps(_mm256_loadu_ps(EXP2_FRAC.as_ptr().add(8)), ti);
+                let tb = _mm256_blendv_ps(lo, hi, _mm256_castsi256_ps(_mm256_slli_epi32::<28>(ti)));
+                let kk = _mm256_sub_epi32(ti, _mm256_set1_epi32(ROUND_BITS));
+                let bits = _mm256_slli_epi32::<23>(_mm256_add_epi32(
+                    _mm256_srai_epi32::<4>(kk),
+                    _mm256_set1_epi32(127),
+                ));
+                let ts = _mm256_mul_ps(tb, _mm256_castsi256_ps(bits));
+                let v = _mm256_fmadd_ps(ts, em1, ts);
                 let keep = _mm256_cmp_ps::<_CMP_NLT_UQ>(x, k(EXP_UNDERFLOW));
                 let e = _mm256_and_ps(v, keep);
                 let sp = s.as_mut_ptr().add(8 * h);
@@ -175,7 +244,7 @@ pub fn exp_step<const L: u8>(
     let mut out = [0f32; 16];
     for j in 0..16 {
         let a = c[j] - m;
-        let v = exp_nonpos::<L>(a);
+        let v = exp_table::<L>(a);
         s[j] += v;
         // Below the underflow bound v = 0 and the term is skipped, which
         // also keeps -inf * 0 from making a NaN.
@@ -258,23 +327,62 @@ mod tests {
     }
 
     #[test]
+    fn table_entries_are_powers_of_two_rounded_to_f32() {
+        // 2^(j/16) in f64 (libm pow, common practice), rounded once to f32.
+        for (j, &v) in EXP2_FRAC.iter().enumerate() {
+            assert_eq!(v, 2f64.powf(j as f64 / 16.0) as f32, "entry {j}");
+        }
+    }
+
+    #[test]
+    fn table_form_dense_sweep_of_the_softmax_range() {
+        // As `dense_sweep_of_the_softmax_range`, for `exp_table`, every 37th
+        // f32; reference: libm exp in f64. The table form is held to 2 ulp.
+        let mut worst = [0f64; 2];
+        let mut bits = EXP_UNDERFLOW.to_bits();
+        let end = (-1e-30f32).to_bits();
+        while bits > end {
+            let x = f32::from_bits(bits);
+            let want = (x as f64).exp();
+            for (k, got) in [exp_table::<0>(x), exp_table::<2>(x)]
+                .into_iter()
+                .enumerate()
+            {
+                worst[k] = worst[k].max(((got as f64 - want) / want).abs());
+            }
+            bits -= 37;
+        }
+        assert!(
+            worst[0] < 3.0 * f32::EPSILON as f64,
+            "scalar build: worst relative error {}",
+            worst[0]
+        );
+        assert!(
+            worst[1] < 2.0 * f32::EPSILON as f64,
+            "fused: worst relative error {}",
+            worst[1]
+        );
+    }
+
+    #[test]
     fn nonpositive_special_values() {
         for fused in [false, true] {
-            let e = |x: f32| {
-                if fused {
-                    exp_nonpos::<2>(x)
-                } else {
-                    exp_nonpos::<0>(x)
-                }
-            };
-            assert_eq!(e(f32::NEG_INFINITY), 0.0);
-            assert_eq!(e(-1e30), 0.0);
-            assert_eq!(e(-87.31), 0.0);
-            assert!(e(-87.29) > 0.0);
-            assert_eq!(e(0.0), 1.0);
-            assert_eq!(e(-0.0), 1.0);
-            assert!(e(f32::NAN).is_nan());
-            assert!(e(-1e-30) == 1.0);
+            for table in [false, true] {
+                let e = |x: f32| match (fused, table) {
+                    (true, false) => exp_nonpos::<2>(x),
+                    (false, false) => exp_nonpos::<0>(x),
+                    (true, true) => exp_table::<2>(x),
+                    (false, true) => exp_table::<0>(x),
+                };
+                assert_eq!(e(f32::NEG_INFINITY), 0.0);
+                assert_eq!(e(-1e30), 0.0);
+                assert_eq!(e(-87.31), 0.0);
+                assert!(e(-87.29) > 0.0);
+                assert_eq!(e(0.0), 1.0);
+                assert_eq!(e(-0.0), 1.0);
+                assert!(e(f32::NAN).is_nan());
+                assert!(e(-1e-30) == 1.0);
+            }
         }
     }
 
