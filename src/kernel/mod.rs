@@ -618,23 +618,28 @@ const G_LONG: [f32; 8] = [
 ];
 
 /// g(d) = d + e^-d - 1 for |d| < 1.25 where `LONG`, else for |d| < 0.5,
-/// two multiply-adds fewer. Horner's scheme: one multiply-add fewer than
-/// splitting even and odd terms, and the longer dependency chain is hidden
-/// by the independent columns in flight.
+/// two multiply-adds fewer. Estrin's scheme (pairs of terms, then powers of
+/// d^2): one or two operations more than Horner's, but a dependency chain
+/// of three multiply-adds instead of five or seven; the fused pass is bound
+/// by that chain, not by the arithmetic (measured: 8% faster per row on
+/// AVX-512, within noise on AVX2).
 #[inline(always)]
 fn g_series<const L: u8, const LONG: bool>(d: f32) -> f32 {
     let ma = mul_add::<L>;
+    let d2 = d * d;
     let p = if LONG {
         let c = &G_LONG;
-        let p = ma(ma(c[7], d, c[6]), d, c[5]);
-        let p = ma(ma(ma(p, d, c[4]), d, c[3]), d, c[2]);
-        ma(ma(p, d, c[1]), d, c[0])
+        let d4 = d2 * d2;
+        let lo = ma(d2, ma(c[3], d, c[2]), ma(c[1], d, c[0]));
+        let hi = ma(d2, ma(c[7], d, c[6]), ma(c[5], d, c[4]));
+        ma(d4, hi, lo)
     } else {
         let c = &G_SHORT;
-        let p = ma(ma(ma(c[5], d, c[4]), d, c[3]), d, c[2]);
-        ma(ma(p, d, c[1]), d, c[0])
+        let d4 = d2 * d2;
+        let lo = ma(d2, ma(c[3], d, c[2]), ma(c[1], d, c[0]));
+        ma(d4, ma(c[5], d, c[4]), lo)
     };
-    (d * d) * p
+    d2 * p
 }
 
 struct PairConsts {
