@@ -133,9 +133,9 @@ pub fn exp_table<const L: u8>(x: f32) -> f32 {
     } else {
         (x - kf * T_LN2_HI) - kf * T_LN2_LO
     };
-    let q = mul_add::<L>(mul_add::<L>(r, Q3, Q2), r, 1.0);
-    // e^r - 1, so the last step adds it to the table entry with one rounding.
-    let em1 = q * r;
+    // e^r - 1 = r + r^2 (1/2 + r/6), so the last step adds it to the table
+    // entry with one rounding; r^2 beside the inner term keeps the chain short.
+    let em1 = mul_add::<L>(r * r, mul_add::<L>(r, Q3, Q2), r);
     let k = (tt.to_bits() as i32).wrapping_sub(ROUND_BITS);
     // 2^n with n = floor(k / 16) >= -126 for x >= -87.3: a normal number, so
     // the entry times it is exact.
@@ -175,8 +175,7 @@ pub fn exp_step<const L: u8>(
             let tt = _mm512_fmadd_ps(x, k(T_LOG2E), k(ROUND));
             let kf = _mm512_sub_ps(tt, k(ROUND));
             let r = _mm512_fmadd_ps(kf, k(-T_LN2_LO), _mm512_fmadd_ps(kf, k(-T_LN2_HI), x));
-            let q = _mm512_fmadd_ps(_mm512_fmadd_ps(r, k(Q3), k(Q2)), r, k(1.0));
-            let em1 = _mm512_mul_ps(q, r);
+            let em1 = _mm512_fmadd_ps(_mm512_mul_ps(r, r), _mm512_fmadd_ps(r, k(Q3), k(Q2)), r);
             // The entry: a permute by the low 4 bits of tt (k mod 16).
             let ti = _mm512_castps_si512(tt);
             let tb = _mm512_permutexvar_ps(ti, _mm512_loadu_ps(EXP2_FRAC.as_ptr()));
@@ -215,8 +214,7 @@ pub fn exp_step<const L: u8>(
                 let tt = _mm256_fmadd_ps(x, k(T_LOG2E), k(ROUND));
                 let kf = _mm256_sub_ps(tt, k(ROUND));
                 let r = _mm256_fmadd_ps(kf, k(-T_LN2_LO), _mm256_fmadd_ps(kf, k(-T_LN2_HI), x));
-                let q = _mm256_fmadd_ps(_mm256_fmadd_ps(r, k(Q3), k(Q2)), r, k(1.0));
-                let em1 = _mm256_mul_ps(q, r);
+                let em1 = _mm256_fmadd_ps(_mm256_mul_ps(r, r), _mm256_fmadd_ps(r, k(Q3), k(Q2)), r);
                 // The entry: two 8-entry permutes, chosen by bit 3 of k.
                 let ti = _mm256_castps_si256(tt);
                 let lo = _mm256_permutevar8x32_ps(_mm256_loadu_ps(EXP2_FRAC.as_ptr()), ti);
