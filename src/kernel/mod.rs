@@ -24,7 +24,7 @@ pub mod exp;
 pub mod lanes;
 pub mod row;
 
-use exp::{exp_nonpos, exp_step, mul_add};
+use exp::{exp_step, mul_add};
 use lanes::{
     all_abs_below, all_below, any_above, hmax, hsum, hsum64, load, padded, widen_add, F, W,
 };
@@ -1506,37 +1506,21 @@ fn step_sq(x: f32, r: Rounding) -> f64 {
 }
 
 /// 1/2 sum over the columns of a row pair, where p > 0 and y is finite, of
-/// p (1 - p) (s_x^2 + s_y^2) / 12, with p = exp(x - m) inv, or, where
-/// `STORED`, p = e inv from the reference's stored exponentials `e`.
+/// p (1 - p) (s_x^2 + s_y^2) / 12, with p = e inv from the reference's
+/// exponentials `e` (what the normalising pass stored).
 #[inline(always)]
-#[allow(clippy::too_many_arguments)]
-fn floor_sum<const L: u8, const STORED: bool, SX: Src, SY: Src>(
+fn floor_sum<const L: u8, SX: Src, SY: Src>(
     x: SX,
     rx: Rounding,
     y: SY,
     ry: Rounding,
-    m: f32,
     inv: f32,
     e: &[f32],
 ) -> f64 {
     #[inline(always)]
-    #[allow(clippy::too_many_arguments)]
-    fn step<const L: u8, const STORED: bool>(
-        x: &F,
-        y: &F,
-        e: &F,
-        m: f32,
-        inv: f32,
-        rx: Rounding,
-        ry: Rounding,
-        acc: &mut [f64; W],
-    ) {
+    fn step(x: &F, y: &F, e: &F, inv: f32, rx: Rounding, ry: Rounding, acc: &mut [f64; W]) {
         for j in 0..W {
-            let p = if STORED {
-                e[j] * inv
-            } else {
-                exp_nonpos::<L>(x[j] - m) * inv
-            };
+            let p = e[j] * inv;
             let w = (p * (1.0 - p)) as f64;
             let v = (step_sq(x[j], rx) + step_sq(y[j], ry)) * (1.0 / 12.0);
             let ok = p > 0.0 && y[j].is_finite();
@@ -1545,54 +1529,44 @@ fn floor_sum<const L: u8, const STORED: bool, SX: Src, SY: Src>(
     }
     let n = x.len();
     assert!(
-        y.len() == n && (!STORED || e.len() >= n),
+        y.len() == n && e.len() >= n,
         "storage floor: row lengths differ"
     );
     let mut acc = [0f64; W];
     let mut c = 0;
     while c + W <= n {
-        // SAFETY: c + 16 <= n, the length of both rows and (STORED) of e.
+        // SAFETY: c + 16 <= n, the length of both rows and at most that of e.
         let (vx, vy, ve) = unsafe {
             (
                 x.chunk::<L>(c),
                 y.chunk::<L>(c),
-                if STORED {
-                    std::ptr::read_unaligned(e.as_ptr().add(c) as *const F)
-                } else {
-                    [0f32; W]
-                },
+                std::ptr::read_unaligned(e.as_ptr().add(c) as *const F),
             )
         };
-        step::<L, STORED>(&vx, &vy, &ve, m, inv, rx, ry, &mut acc);
+        step(&vx, &vy, &ve, inv, rx, ry, &mut acc);
         c += W;
     }
     if c < n {
-        let ve = if STORED {
-            padded(&e[c..n], 0.0)
-        } else {
-            [0f32; W]
-        };
+        let ve = padded(&e[c..n], 0.0);
         let (vx, vy) = (x.padded(c, n, NEG_INF), y.padded(c, n, 0.0));
-        step::<L, STORED>(&vx, &vy, &ve, m, inv, rx, ry, &mut acc);
+        step(&vx, &vy, &ve, inv, rx, ry, &mut acc);
     }
     0.5 * hsum64(&acc)
 }
 
+/// `storage_floor_row`: the reference normalised (and its exponentials
+/// kept) first, then the same sum the streaming pass takes.
 #[inline(always)]
 fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> f64 {
     let n = x.len().min(y.len());
     let xs = row::F32Le(bytemuck::cast_slice(&x[..n]));
     let ys = row::F32Le(bytemuck::cast_slice(&y[..n]));
-    let (m, _) = scan_max::<L, _>(xs);
-    if !m.is_finite() {
-        return f64::NAN;
-    }
+    let mut e = vec![0f32; n];
     let mut blocks = vec![0f64; norm_blocks(n)];
-    let (sum, _) = exp_pass::<L, false, _>(xs, m, &mut [], &mut blocks);
-    if sum.is_nan() {
-        return f64::NAN;
+    match normalise_any::<L, true, _>(xs, &mut e, &mut blocks) {
+        Ok(r) => floor_sum::<L, _, _>(xs, rx, ys, ry, (1.0 / r.sum) as f32, &e),
+        Err(_) => f64::NAN,
     }
-    floor_sum::<L, false, _, _>(xs, rx, ys, ry, m, (1.0 / sum) as f32, &[])
 }
 
 #[inline(always)]
@@ -1605,7 +1579,7 @@ fn floor_stored_impl<const L: u8>(
     r: &RowNorm,
 ) -> f64 {
     let inv = (1.0 / r.sum) as f32;
-    with_src!(x, sx => with_src!(y, sy => floor_sum::<L, true, _, _>(sx, rx, sy, ry, r.max, inv, e)))
+    with_src!(x, sx => with_src!(y, sy => floor_sum::<L, _, _>(sx, rx, sy, ry, inv, e)))
 }
 
 dispatched! {
