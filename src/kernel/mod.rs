@@ -951,6 +951,14 @@ struct FusedLanes {
     long: bool,
 }
 
+/// v = w - e = e (g(d) - d) of a column on the series route, as
+/// e g(d) - e d: e d is formed beside the series, so v waits for one
+/// multiply-add after g instead of two steps.
+#[inline(always)]
+fn close_v<const L: u8>(e: f32, gd: f32, d: f32) -> f32 {
+    mul_add::<L>(e, gd, -(e * d))
+}
+
 /// The series route of `fused_step` for 16 close columns (see there).
 #[inline(always)]
 fn fused_close<const L: u8, const LONG: bool>(
@@ -966,9 +974,7 @@ fn fused_close<const L: u8, const LONG: bool>(
     for j in 0..W {
         let e = er[j];
         let gd = g_series::<L, LONG>(d[j]);
-        // v = e (g(d) - d) as e g(d) - e d: e d is formed beside the series,
-        // so v waits for one multiply-add after g instead of two steps.
-        let v = ma(e, gd, -(e * d[j]));
+        let v = close_v::<L>(e, gd, d[j]);
         s.g[j] = ma(e, gd, s.g[j]);
         s.j[j] = ma(v, d[j], s.j[j]);
         s.t[j] = ma(v, xs[j], s.t[j]);
@@ -1037,7 +1043,7 @@ fn fused_step<const L: u8, const OFF: bool>(
             w
         };
         let v = if pos && small {
-            ma(e, gd, -(e * dj))
+            close_v::<L>(e, gd, dj)
         } else {
             w - e
         };
