@@ -149,6 +149,44 @@ pub fn exp_table<const L: u8>(x: f32) -> f32 {
     }
 }
 
+/// `exp_table` of eight lanes on AVX2 (x = c - m <= 0), and the mask of the
+/// lanes at or above the underflow bound (NaN lanes included): the lanes
+/// whose (c - m) e the normalising pass adds to its t sum. The table entry
+/// is two 8-entry permutes and a blend.
+///
+/// # Safety
+/// Only called from code compiled with AVX2 and FMA, after run-time detection.
+#[cfg(target_arch = "x86_64")]
+#[inline(always)]
+pub unsafe fn exp_table8(
+    x: std::arch::x86_64::__m256,
+) -> (std::arch::x86_64::__m256, std::arch::x86_64::__m256) {
+    use std::arch::x86_64::*;
+    // SAFETY: the caller runs with AVX2 and FMA; the table loads read the
+    // 16 entries of EXP2_FRAC.
+    unsafe {
+        let k = _mm256_set1_ps;
+        let tt = _mm256_fmadd_ps(x, k(T_LOG2E), k(ROUND));
+        let kf = _mm256_sub_ps(tt, k(ROUND));
+        let r = _mm256_fmadd_ps(kf, k(-T_LN2_LO), _mm256_fmadd_ps(kf, k(-T_LN2_HI), x));
+        let em1 = _mm256_fmadd_ps(_mm256_mul_ps(r, r), _mm256_fmadd_ps(r, k(Q3), k(Q2)), r);
+        // The entry: two 8-entry permutes, chosen by bit 3 of k.
+        let ti = _mm256_castps_si256(tt);
+        let lo = _mm256_permutevar8x32_ps(_mm256_loadu_ps(EXP2_FRAC.as_ptr()), ti);
+        let hi = _mm256_permutevar8x32_ps(_mm256_loadu_ps(EXP2_FRAC.as_ptr().add(8)), ti);
+        let tb = _mm256_blendv_ps(lo, hi, _mm256_castsi256_ps(_mm256_slli_epi32::<28>(ti)));
+        let kk = _mm256_sub_epi32(ti, _mm256_set1_epi32(ROUND_BITS));
+        let bits = _mm256_slli_epi32::<23>(_mm256_add_epi32(
+            _mm256_srai_epi32::<4>(kk),
+            _mm256_set1_epi32(127),
+        ));
+        let ts = _mm256_mul_ps(tb, _mm256_castsi256_ps(bits));
+        let v = _mm256_fmadd_ps(ts, em1, ts);
+        let keep = _mm256_cmp_ps::<_CMP_NLT_UQ>(x, k(EXP_UNDERFLOW));
+        (_mm256_and_ps(v, keep), keep)
+    }
+}
+
 /// One step of the normalising pass over 16 lanes: e = exp(c - m) (as
 /// `exp_table`), s += e, and t += (c - m) e where c - m >= EXP_UNDERFLOW.
 /// The vector builds are written with intrinsics: the table entry is a lane
@@ -207,28 +245,10 @@ pub fn exp_step<const L: u8>(
         // constants and temporaries inside the 16 ymm registers; the
         // arithmetic is `exp_table::<1>` lane for lane.
         unsafe {
-            let k = _mm256_set1_ps;
             let mut out = [0f32; 16];
             for h in 0..2 {
-                let x = _mm256_sub_ps(_mm256_loadu_ps(c.as_ptr().add(8 * h)), k(m));
-                let tt = _mm256_fmadd_ps(x, k(T_LOG2E), k(ROUND));
-                let kf = _mm256_sub_ps(tt, k(ROUND));
-                let r = _mm256_fmadd_ps(kf, k(-T_LN2_LO), _mm256_fmadd_ps(kf, k(-T_LN2_HI), x));
-                let em1 = _mm256_fmadd_ps(_mm256_mul_ps(r, r), _mm256_fmadd_ps(r, k(Q3), k(Q2)), r);
-                // The entry: two 8-entry permutes, chosen by bit 3 of k.
-                let ti = _mm256_castps_si256(tt);
-                let lo = _mm256_permutevar8x32_ps(_mm256_loadu_ps(EXP2_FRAC.as_ptr()), ti);
-                let hi = _mm256_permutevar8x32_ps(_mm256_loadu_ps(EXP2_FRAC.as_ptr().add(8)), ti);
-                let tb = _mm256_blendv_ps(lo, hi, _mm256_castsi256_ps(_mm256_slli_epi32::<28>(ti)));
-                let kk = _mm256_sub_epi32(ti, _mm256_set1_epi32(ROUND_BITS));
-                let bits = _mm256_slli_epi32::<23>(_mm256_add_epi32(
-                    _mm256_srai_epi32::<4>(kk),
-                    _mm256_set1_epi32(127),
-                ));
-                let ts = _mm256_mul_ps(tb, _mm256_castsi256_ps(bits));
-                let v = _mm256_fmadd_ps(ts, em1, ts);
-                let keep = _mm256_cmp_ps::<_CMP_NLT_UQ>(x, k(EXP_UNDERFLOW));
-                let e = _mm256_and_ps(v, keep);
+                let x = _mm256_sub_ps(_mm256_loadu_ps(c.as_ptr().add(8 * h)), _mm256_set1_ps(m));
+                let (e, keep) = exp_table8(x);
                 let sp = s.as_mut_ptr().add(8 * h);
                 _mm256_storeu_ps(sp, _mm256_add_ps(_mm256_loadu_ps(sp), e));
                 let tp = t.as_mut_ptr().add(8 * h);

@@ -20,6 +20,8 @@
 //! taken from the raw logits (x - y, exact when they are close) plus one
 //! constant computed in f64, not from two rounded log-probabilities.
 
+#[cfg(target_arch = "x86_64")]
+mod avx2;
 pub mod exp;
 pub mod lanes;
 pub mod row;
@@ -31,6 +33,26 @@ use lanes::{
 pub use row::Row;
 use row::{with_src, Src};
 use std::sync::atomic::{AtomicU8, Ordering};
+
+// Tests run the generic level-1 loops beside `avx2`'s on the same rows and
+// compare the bits; this switch, per test thread, turns the AVX2 loops off.
+#[cfg(test)]
+thread_local! {
+    static GENERIC_AVX2: std::cell::Cell<bool> = const { std::cell::Cell::new(false) };
+}
+
+/// Whether the AVX2 build runs the loops of `avx2` (always, outside tests).
+#[inline(always)]
+fn avx2_loops() -> bool {
+    #[cfg(test)]
+    {
+        !GENERIC_AVX2.with(|c| c.get())
+    }
+    #[cfg(not(test))]
+    {
+        true
+    }
+}
 
 /// Columns per partial-sum block of the normalising pass; also the block
 /// granularity the sampler walks (see `estimators`).
@@ -443,6 +465,44 @@ macro_rules! for_blocks {
     }};
 }
 
+/// The normalising pass over columns lo..hi of one block: e = exp(x - m)
+/// (stored where STORE), and the block's lane sums of e and of (x - m) e.
+#[inline(always)]
+fn exp_block<const L: u8, const STORE: bool, S: Src>(
+    x: S,
+    lo: usize,
+    hi: usize,
+    m: f32,
+    e: &mut [f32],
+) -> (F, F) {
+    // Both sums start afresh in every block, so consecutive blocks'
+    // dependency chains overlap.
+    let mut s = [0f32; W];
+    let mut t = [0f32; W];
+    let mut c = lo;
+    while c + W <= hi {
+        // SAFETY: c + 16 <= hi <= n.
+        let v = exp_step::<L>(&unsafe { x.chunk::<L>(c) }, m, &mut s, &mut t);
+        if STORE {
+            e[c..c + W].copy_from_slice(&v);
+        }
+        c += W;
+    }
+    if c < hi {
+        let v = exp_step::<L>(&x.padded(c, hi, NEG_INF), m, &mut s, &mut t);
+        if STORE {
+            e[c..hi].copy_from_slice(&v[..hi - c]);
+        }
+    }
+    (s, t)
+}
+
+/// How often (in NORM_BLOCK blocks) the normalising pass carries its f32
+/// lane sums of (x - m) e into f64: 256 columns.
+const T_EVERY: usize = 4;
+
+/// The normalising pass: e = exp(x - m) of every column (stored where
+/// STORE), the block sums of e into `blocks`; returns (sum e, sum (x - m) e).
 #[inline(always)]
 fn exp_pass<const L: u8, const STORE: bool, S: Src>(
     x: S,
@@ -450,31 +510,19 @@ fn exp_pass<const L: u8, const STORE: bool, S: Src>(
     e: &mut [f32],
     blocks: &mut [f64],
 ) -> (f64, f64) {
-    // t is summed in f32 lanes per block, over four blocks (256 columns), then in f64.
-    const T_EVERY: usize = 4;
+    #[cfg(target_arch = "x86_64")]
+    if L == 1 && avx2_loops() {
+        // SAFETY: level 1 is only instantiated inside functions compiled
+        // with AVX2 and FMA, called after run-time detection; the buffer
+        // lengths were asserted by the caller.
+        return unsafe { avx2::exp_pass::<STORE, S>(x, m, e, blocks) };
+    }
+    // t is summed in f32 lanes per block, over T_EVERY blocks, then in f64.
     let n = x.len();
     let mut t_acc = [0f64; W];
     let mut t4 = [0f32; W];
     let s_tot = for_blocks!(L, n, blocks, |b, lo, hi| {
-        // Both sums start afresh in every block, so consecutive blocks'
-        // dependency chains overlap.
-        let mut s = [0f32; W];
-        let mut t = [0f32; W];
-        let mut c = lo;
-        while c + W <= hi {
-            // SAFETY: c + 16 <= hi <= n.
-            let v = exp_step::<L>(&unsafe { x.chunk::<L>(c) }, m, &mut s, &mut t);
-            if STORE {
-                e[c..c + W].copy_from_slice(&v);
-            }
-            c += W;
-        }
-        if c < hi {
-            let v = exp_step::<L>(&x.padded(c, hi, NEG_INF), m, &mut s, &mut t);
-            if STORE {
-                e[c..hi].copy_from_slice(&v[..hi - c]);
-            }
-        }
+        let (s, t) = exp_block::<L, STORE, S>(x, lo, hi, m, e);
         lanes::add(&mut t4, &t);
         if b % T_EVERY == T_EVERY - 1 {
             widen_add::<L>(&mut t_acc, &t4);
@@ -951,6 +999,21 @@ struct FusedLanes {
     long: bool,
 }
 
+impl FusedLanes {
+    /// Adds the f32 sums of e g(d), v d and v (x - sx) into their f64
+    /// lanes and starts them afresh.
+    #[inline(always)]
+    fn carry<const L: u8>(&mut self, acc: &mut [[f64; W]; 3]) {
+        for (q, l) in [&mut self.g, &mut self.j, &mut self.t]
+            .into_iter()
+            .enumerate()
+        {
+            widen_add::<L>(&mut acc[q], l);
+            *l = [0f32; W];
+        }
+    }
+}
+
 /// v = w - e = e (g(d) - d) of a column on the series route, as
 /// e g(d) - e d: e d is formed beside the series, so v waits for one
 /// multiply-add after g instead of two steps.
@@ -1060,6 +1123,56 @@ fn fused_step<const L: u8, const OFF: bool>(
     out
 }
 
+/// The fused pass over columns lo..hi of one block: adds them to `s`,
+/// writes v into `vbuf`, and returns the block's lane sums of v.
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
+fn fused_block<const L: u8, const OFF: bool, SX: Src, SY: Src>(
+    x: SX,
+    y: SY,
+    er: &[f32],
+    k: &FusedConsts,
+    s: &mut FusedLanes,
+    vbuf: &mut [f32],
+    lo: usize,
+    hi: usize,
+) -> F {
+    let mut vb = [0f32; W];
+    let mut c = lo;
+    while c + W <= hi {
+        // SAFETY: c + 16 <= hi <= n, and every buffer holds n columns
+        // (asserted by the caller).
+        let (xc, yc, ec) = unsafe {
+            (
+                x.chunk::<L>(c),
+                y.chunk::<L>(c),
+                std::ptr::read_unaligned(er.as_ptr().add(c) as *const F),
+            )
+        };
+        let v = fused_step::<L, OFF>(&xc, &yc, &ec, k, s, &mut vb);
+        // SAFETY: as above, for the 16 columns written.
+        unsafe { std::ptr::write_unaligned(vbuf.as_mut_ptr().add(c) as *mut F, v) };
+        c += W;
+    }
+    if c < hi {
+        // Padding columns have no mass on either side and add exactly 0.
+        let v = fused_step::<L, OFF>(
+            &x.padded(c, hi, NEG_INF),
+            &y.padded(c, hi, NEG_INF),
+            &padded(&er[c..hi], 0.0),
+            k,
+            s,
+            &mut vb,
+        );
+        vbuf[c..hi].copy_from_slice(&v[..hi - c]);
+    }
+    vb
+}
+
+/// Blocks (of NORM_BLOCK columns) after which the fused pass carries its
+/// f32 lane sums into f64: PAIR_BLOCK columns.
+const FUSED_CARRY: usize = PAIR_BLOCK / NORM_BLOCK;
+
 /// The fused pass's loop over the row: the f64 sums of e g(d), v d and
 /// v (x - sx), the sum of v (its block sums into `bw`), the lane maxima of y.
 #[inline(always)]
@@ -1085,48 +1198,23 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
         long: false,
     };
     let mut acc = [[0f64; W]; 3];
-    let per_pair = PAIR_BLOCK / NORM_BLOCK;
+    #[cfg(target_arch = "x86_64")]
+    if L == 1 && avx2_loops() {
+        // SAFETY: level 1 is only instantiated inside functions compiled
+        // with AVX2 and FMA, called after run-time detection; the buffer
+        // lengths are asserted above.
+        let vtot =
+            unsafe { avx2::fused_loop::<OFF, SX, SY>(x, y, er, k, &mut s, &mut acc, vbuf, bw) };
+        return (acc, vtot, s.my);
+    }
     let vtot = for_blocks!(L, n, bw, |b, lo, hi| {
-        let mut vb = [0f32; W];
-        let mut c = lo;
-        while c + W <= hi {
-            // SAFETY: c + 16 <= hi <= n, and every buffer holds n columns
-            // (asserted above).
-            let (xc, yc, ec) = unsafe {
-                (
-                    x.chunk::<L>(c),
-                    y.chunk::<L>(c),
-                    std::ptr::read_unaligned(er.as_ptr().add(c) as *const F),
-                )
-            };
-            let v = fused_step::<L, OFF>(&xc, &yc, &ec, k, &mut s, &mut vb);
-            // SAFETY: as above, for the 16 columns written.
-            unsafe { std::ptr::write_unaligned(vbuf.as_mut_ptr().add(c) as *mut F, v) };
-            c += W;
-        }
-        if c < hi {
-            // Padding columns have no mass on either side and add exactly 0.
-            let v = fused_step::<L, OFF>(
-                &x.padded(c, hi, NEG_INF),
-                &y.padded(c, hi, NEG_INF),
-                &padded(&er[c..hi], 0.0),
-                k,
-                &mut s,
-                &mut vb,
-            );
-            vbuf[c..hi].copy_from_slice(&v[..hi - c]);
-        }
-        if b % per_pair == per_pair - 1 {
-            for (q, l) in [&mut s.g, &mut s.j, &mut s.t].into_iter().enumerate() {
-                widen_add::<L>(&mut acc[q], l);
-                *l = [0f32; W];
-            }
+        let vb = fused_block::<L, OFF, SX, SY>(x, y, er, k, &mut s, vbuf, lo, hi);
+        if b % FUSED_CARRY == FUSED_CARRY - 1 {
+            s.carry::<L>(&mut acc);
         }
         vb
     });
-    for (q, l) in [&s.g, &s.j, &s.t].into_iter().enumerate() {
-        widen_add::<L>(&mut acc[q], l);
-    }
+    s.carry::<L>(&mut acc);
     (acc, vtot, s.my)
 }
 

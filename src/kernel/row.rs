@@ -103,6 +103,14 @@ pub trait Src: Copy {
         }
         v
     }
+    /// Columns i .. i + 8 in one AVX2 register: the AVX2 loops
+    /// (`kernel::avx2`) take each 16-lane chunk as two such halves.
+    ///
+    /// # Safety
+    /// i + 8 <= len, and only called from code compiled with AVX2 and F16C,
+    /// after run-time detection.
+    #[cfg(target_arch = "x86_64")]
+    unsafe fn half(self, i: usize) -> std::arch::x86_64::__m256;
 }
 
 #[derive(Clone, Copy)]
@@ -143,6 +151,13 @@ impl Src for F32Le<'_> {
             }
             v
         }
+    }
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn half(self, i: usize) -> std::arch::x86_64::__m256 {
+        debug_assert!(4 * (i + 8) <= self.0.len());
+        // SAFETY: the caller keeps i + 8 <= len and runs with AVX2.
+        unsafe { std::arch::x86_64::_mm256_loadu_ps(self.0.as_ptr().add(4 * i) as *const f32) }
     }
 }
 
@@ -188,6 +203,17 @@ impl Src for Bf16Le<'_> {
         }
         v
     }
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn half(self, i: usize) -> std::arch::x86_64::__m256 {
+        use std::arch::x86_64::*;
+        debug_assert!(2 * (i + 8) <= self.0.len());
+        // SAFETY: the caller keeps i + 8 <= len and runs with AVX2.
+        unsafe {
+            let h = _mm_loadu_si128(self.0.as_ptr().add(2 * i) as *const __m128i);
+            _mm256_castsi256_ps(_mm256_slli_epi32::<16>(_mm256_cvtepu16_epi32(h)))
+        }
+    }
 }
 
 impl Src for F16Le<'_> {
@@ -228,6 +254,14 @@ impl Src for F16Le<'_> {
             *o = f16_to_f32(u16_at(b, j));
         }
         v
+    }
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn half(self, i: usize) -> std::arch::x86_64::__m256 {
+        use std::arch::x86_64::*;
+        debug_assert!(2 * (i + 8) <= self.0.len());
+        // SAFETY: the caller keeps i + 8 <= len and runs with AVX2 and F16C.
+        unsafe { _mm256_cvtph_ps(_mm_loadu_si128(self.0.as_ptr().add(2 * i) as *const __m128i)) }
     }
 }
 

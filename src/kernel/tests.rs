@@ -1131,3 +1131,139 @@ fn series_for_g_matches_expm1_over_its_range() {
         );
     }
 }
+
+/// Everything a row pair's passes write, at level `l`, for comparing bits:
+/// the reference's summary, exponentials and block sums, and the fused
+/// pass's result, v and block sums (or the two-pass route's).
+fn passes_at(l: Level, x: Row, y: Row) -> Vec<u64> {
+    let n = x.len();
+    let mut er = vec![0f32; n];
+    let mut br = vec![0f64; norm_blocks(n)];
+    let mut out: Vec<u64> = Vec::new();
+    let r = match normalise_row_at(l, x, &mut er, &mut br) {
+        Ok(r) => r,
+        Err(f) => return vec![f as u64],
+    };
+    out.extend([
+        r.max.to_bits() as u64,
+        r.argmax as u64,
+        r.lse.to_bits(),
+        r.sum.to_bits(),
+        r.entropy.to_bits(),
+    ]);
+    out.extend(er.iter().map(|v| v.to_bits() as u64));
+    out.extend(br.iter().map(|v| v.to_bits()));
+    let mut only = vec![0f64; norm_blocks(n)];
+    let xf: Vec<f32> = (0..n).map(|i| x.get(i)).collect();
+    let r2 = normalise_at(l, &xf, &mut only).unwrap();
+    assert_eq!(r2, r, "normalise without storing differs");
+    let mut v = vec![0f32; n];
+    let mut bw = vec![0f64; norm_blocks(n)];
+    match compare_fused_at(l, x, y, &er, &br, &r, &mut v, &mut bw) {
+        Some(f) => {
+            out.extend(
+                [
+                    f.m.kl,
+                    f.m.kl_reverse,
+                    f.m.tv,
+                    f.c.lse,
+                    f.c.sum,
+                    f.c.entropy,
+                ]
+                .map(f64::to_bits),
+            );
+            out.extend([
+                f.c.max.to_bits() as u64,
+                f.c.argmax as u64,
+                f.anchor.to_bits() as u64,
+            ]);
+            out.extend(v.iter().map(|v| v.to_bits() as u64));
+            out.extend(bw.iter().map(|v| v.to_bits()));
+        }
+        None => out.push(u64::MAX),
+    }
+    out
+}
+
+#[test]
+fn avx2_loops_give_the_generic_bits() {
+    // The hand-written AVX2 loops (`avx2`) against the generic level-1
+    // build of the same functions: every stored value and sum to the bit,
+    // for awkward lengths (partial blocks and chunks), the three stored
+    // formats, rows at different levels (the offset route), candidates
+    // whose chunks take the short series, the long one and exp, and -inf.
+    if detected_level() < Level::Avx2 {
+        return;
+    }
+    let set = |generic: bool| GENERIC_AVX2.with(|c| c.set(generic));
+    let mut s = 97u64;
+    let (mut cases, mut declined) = (0, 0);
+    for &n in &[
+        1usize, 15, 16, 17, 63, 64, 65, 127, 128, 129, 255, 256, 257, 300, 1000, 4099, 32_003,
+    ] {
+        for &(noise, shift) in &[
+            (0.02f64, 0.0f64),
+            (0.3, 0.0),
+            (0.9, 0.0),
+            (0.05, 40.0),
+            (0.1, -3.0),
+        ] {
+            // awkward_pair's -inf columns sit in every chunk, which sends
+            // every chunk of the fused pass to its exp route; keep two.
+            let (mut x, _) = awkward_pair(n, n as u64 + 11);
+            for (i, v) in x.iter_mut().enumerate() {
+                if *v == f32::NEG_INFINITY && i != 7 && i + 13 < n {
+                    *v = 30.0 + 3.0 * normal(&mut s) as f32;
+                }
+            }
+            let mut y: Vec<f32> = x
+                .iter()
+                .map(|&v| (v as f64 + shift + noise * normal(&mut s)) as f32)
+                .collect();
+            // A few columns far apart (the exp route) in longer rows.
+            if n > 2000 {
+                y[1500] += 4.0;
+                x[1900] -= 3.0;
+            }
+            for form in 0..3 {
+                let enc = |v: &[f32]| -> Vec<u8> {
+                    match form {
+                        0 => v.iter().flat_map(|f| f.to_le_bytes()).collect(),
+                        1 => v
+                            .iter()
+                            .flat_map(|f| half::bf16::from_f32(*f).to_bits().to_le_bytes())
+                            .collect(),
+                        _ => v
+                            .iter()
+                            .flat_map(|f| half::f16::from_f32(*f).to_bits().to_le_bytes())
+                            .collect(),
+                    }
+                };
+                let (bx, by) = (enc(&x), enc(&y));
+                fn row(form: usize, b: &[u8]) -> Row<'_> {
+                    match form {
+                        0 => Row::F32(b),
+                        1 => Row::Bf16(b),
+                        _ => Row::F16(b),
+                    }
+                }
+                set(false);
+                let fast = passes_at(Level::Avx2, row(form, &bx), row(form, &by));
+                set(true);
+                let generic = passes_at(Level::Avx2, row(form, &bx), row(form, &by));
+                set(false);
+                assert_eq!(
+                    fast, generic,
+                    "n={n} noise={noise} shift={shift} form={form}"
+                );
+                declined += (fast.last() == Some(&u64::MAX)) as usize;
+                cases += 1;
+            }
+        }
+    }
+    assert_eq!(cases, 17 * 5 * 3);
+    assert!(
+        declined < cases / 10,
+        "the fused pass declined {declined} of {cases} rows"
+    );
+}
