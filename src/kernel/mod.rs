@@ -284,124 +284,56 @@ dispatched! {
 // ---------------------------------------------------------------------------
 // Normalising one row.
 
-/// Per lane: the largest value and the chunk where it first occurred
-/// (strictly greater replaces, so ties keep the earlier chunk). NaN lanes
-/// are passed over here; a NaN shows up later as a NaN sum (see
-/// `normalise_any`). The vector builds use masked moves and blends, which
-/// LLVM does not reliably find on its own; same results.
+/// The largest value of a row, NaN passed over (-inf for a row with no
+/// other values). Four independent running maxima (chunk i goes to number
+/// i mod 4), so the compare-and-select chains overlap; they are separate
+/// variables so that they stay in registers.
 #[inline(always)]
-fn scan_step<const L: u8>(c: &F, chunk: u32, m: &mut F, at: &mut [u32; W]) {
-    #[cfg(target_arch = "x86_64")]
-    if L == 2 {
-        use std::arch::x86_64::*;
-        // SAFETY: level 2 is only instantiated inside functions compiled with
-        // AVX-512F, called after run-time detection; loads and stores stay
-        // inside the arrays.
-        unsafe {
-            let v = _mm512_loadu_ps(c.as_ptr());
-            let mo = _mm512_loadu_ps(m.as_ptr());
-            let gt = _mm512_cmp_ps_mask::<_CMP_GT_OQ>(v, mo);
-            _mm512_storeu_ps(m.as_mut_ptr(), _mm512_mask_mov_ps(mo, gt, v));
-            let ap = at.as_mut_ptr() as *mut __m512i;
-            _mm512_storeu_si512(
-                ap,
-                _mm512_mask_mov_epi32(_mm512_loadu_si512(ap), gt, _mm512_set1_epi32(chunk as i32)),
-            );
+fn row_max<const L: u8, S: Src>(x: S) -> f32 {
+    #[inline(always)]
+    fn step(c: &F, m: &mut F) {
+        for j in 0..W {
+            // maxps: the new value only where it is greater (not NaN).
+            m[j] = if c[j] > m[j] { c[j] } else { m[j] };
         }
-        return;
     }
-    #[cfg(target_arch = "x86_64")]
-    if L == 1 {
-        use std::arch::x86_64::*;
-        // SAFETY: level 1 is only instantiated inside functions compiled with
-        // AVX2, called after run-time detection; loads and stores stay inside
-        // the arrays.
-        unsafe {
-            let ch = _mm256_castsi256_ps(_mm256_set1_epi32(chunk as i32));
-            for h in 0..2 {
-                let v = _mm256_loadu_ps(c.as_ptr().add(8 * h));
-                let mo = _mm256_loadu_ps(m.as_ptr().add(8 * h));
-                let gt = _mm256_cmp_ps::<_CMP_GT_OQ>(v, mo);
-                _mm256_storeu_ps(m.as_mut_ptr().add(8 * h), _mm256_blendv_ps(mo, v, gt));
-                let ap = at.as_mut_ptr().add(8 * h) as *mut __m256i;
-                let ao = _mm256_castsi256_ps(_mm256_loadu_si256(ap));
-                _mm256_storeu_si256(ap, _mm256_castps_si256(_mm256_blendv_ps(ao, ch, gt)));
-            }
-        }
-        return;
-    }
-    for j in 0..W {
-        let v = c[j];
-        let gt = v > m[j];
-        m[j] = if gt { v } else { m[j] };
-        at[j] = if gt { chunk } else { at[j] };
-    }
-}
-
-/// The maximum over the non-NaN values and the lowest column holding it.
-/// Four independent running maxima (chunk i goes to number i mod 4), so the
-/// compare-and-select chains overlap instead of waiting on each other; they
-/// are separate variables so that they stay in registers.
-#[inline(always)]
-fn scan_max<const L: u8, S: Src>(x: S) -> (f32, usize) {
     let (mut m0, mut m1, mut m2, mut m3) = ([NEG_INF; W], [NEG_INF; W], [NEG_INF; W], [NEG_INF; W]);
-    let (mut a0, mut a1, mut a2, mut a3) = ([0u32; W], [0u32; W], [0u32; W], [0u32; W]);
     let n = x.len();
-    let mut ci = 0u32;
     let mut i = 0usize;
+    // SAFETY (every chunk below): i + 16 <= n where a whole chunk is read.
     while i + 4 * W <= n {
-        scan_step::<L>(&unsafe { x.chunk::<L>(i) }, ci, &mut m0, &mut a0);
-        scan_step::<L>(&unsafe { x.chunk::<L>(i + W) }, ci + 1, &mut m1, &mut a1);
-        scan_step::<L>(
-            &unsafe { x.chunk::<L>(i + 2 * W) },
-            ci + 2,
-            &mut m2,
-            &mut a2,
-        );
-        scan_step::<L>(
-            &unsafe { x.chunk::<L>(i + 3 * W) },
-            ci + 3,
-            &mut m3,
-            &mut a3,
-        );
-        ci += 4;
+        step(&unsafe { x.chunk::<L>(i) }, &mut m0);
+        step(&unsafe { x.chunk::<L>(i + W) }, &mut m1);
+        step(&unsafe { x.chunk::<L>(i + 2 * W) }, &mut m2);
+        step(&unsafe { x.chunk::<L>(i + 3 * W) }, &mut m3);
         i += 4 * W;
     }
-    // At most three whole chunks and a partial one are left: to m0, m1, m2, m3 in turn.
-    let mut k = 0;
-    while i < n {
-        let hi = (i + W).min(n);
-        let c = if hi - i == W {
-            unsafe { x.chunk::<L>(i) }
-        } else {
-            x.padded(i, hi, NEG_INF)
-        };
-        match k {
-            0 => scan_step::<L>(&c, ci, &mut m0, &mut a0),
-            1 => scan_step::<L>(&c, ci, &mut m1, &mut a1),
-            2 => scan_step::<L>(&c, ci, &mut m2, &mut a2),
-            _ => scan_step::<L>(&c, ci, &mut m3, &mut a3),
-        }
-        i = hi;
-        ci += 1;
-        k += 1;
+    while i + W <= n {
+        step(&unsafe { x.chunk::<L>(i) }, &mut m0);
+        i += W;
     }
-    let ms = [m0, m1, m2, m3];
-    let ats = [a0, a1, a2, a3];
+    if i < n {
+        step(&x.padded(i, n, NEG_INF), &mut m1);
+    }
     let mut mx = NEG_INF;
-    for ma in &ms {
-        let h = hmax(ma);
+    for m in [&m0, &m1, &m2, &m3] {
+        let h = hmax(m);
         mx = if h > mx { h } else { mx };
     }
-    let mut arg = usize::MAX;
-    for a in 0..4 {
-        for j in 0..W {
-            if ms[a][j] == mx {
-                arg = arg.min(ats[a][j] as usize * W + j);
-            }
-        }
+    mx
+}
+
+/// The maximum over the non-NaN values and the lowest column holding it
+/// (column 0 for a row of -inf and NaN only): one pass for the value, then
+/// a search from the front that stops at its first occurrence, cheaper
+/// than carrying each lane's column through the whole row.
+#[inline(always)]
+fn scan_max<const L: u8, S: Src>(x: S) -> (f32, usize) {
+    let mx = row_max::<L, S>(x);
+    if mx == NEG_INF {
+        return (mx, 0);
     }
-    (mx, if arg == usize::MAX { 0 } else { arg })
+    (mx, first_equal::<L, S>(x, x.len(), mx))
 }
 
 /// What is wrong with a row that did not normalise (NaN first, as SPEC
@@ -1344,7 +1276,8 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
     let t_r = sum_r * (sum_r.ln() - r.entropy);
     let hw = t_r + (ts - (xa - k.sx) as f64 * vtot) - as_ - js;
     let argmax = if max_c > ya {
-        scan_max::<L, SY>(y).1
+        // The pass found the maximum: only its first column is missing.
+        first_equal::<L, SY>(y, n, max_c)
     } else {
         // y_a is the maximum; the top column is the first that holds it.
         first_equal::<L, SY>(y, r.argmax as usize, ya)
