@@ -1518,23 +1518,24 @@ pub struct Rounding {
 }
 
 /// Square of the rounding step at x: 2^(2 max(floor(log2|x|) - bits, min_exp)),
-/// and 2^(2 min_exp) at 0, subnormals, infinities and NaN. floor(log2|x|) is
-/// the f32 exponent field; a subnormal's is below every format's limit.
+/// and 2^(2 min_exp) at 0 and subnormals. floor(log2|x|) is the f32
+/// exponent field; a subnormal's is below every format's limit. In f32, so
+/// the exponent is held to [-63, 63]: a step below 2^-63 (a value under
+/// 2^-56 in bf16, 2^-40 in f32) counts as 2^-63, whose square, below
+/// 1e-38, is nothing beside any real floor, and a step above 2^63 (values
+/// beyond 2^70) as 2^63. Infinities and NaN give garbage that the caller
+/// masks (their columns carry no mass or are skipped).
 #[inline(always)]
-fn step_sq(x: f32, r: Rounding) -> f64 {
+fn step_sq(x: f32, r: Rounding) -> f32 {
     let ef = ((x.to_bits() >> 23) & 0xff) as i32;
-    let e = if ef == 0 || ef == 255 {
-        i32::MIN / 4
-    } else {
-        ef - 127 - r.mantissa_bits
-    };
-    let k = if e > r.min_exp { e } else { r.min_exp };
-    f64::from_bits(((2 * k + 1023) as u64) << 52)
+    let k = (ef - 127 - r.mantissa_bits).max(r.min_exp).clamp(-63, 63);
+    f32::from_bits(((2 * k + 127) as u32) << 23)
 }
 
 /// 1/2 sum over the columns of a row pair, where p > 0 and y is finite, of
 /// p (1 - p) (s_x^2 + s_y^2) / 12, with p = e inv from the reference's
-/// exponentials `e` (what the normalising pass stored).
+/// exponentials `e` (what the normalising pass stored). Summed in f32 lanes
+/// over PAIR_BLOCK columns, then in f64, as the other passes.
 #[inline(always)]
 fn floor_sum<const L: u8, SX: Src, SY: Src>(
     x: SX,
@@ -1545,12 +1546,13 @@ fn floor_sum<const L: u8, SX: Src, SY: Src>(
     e: &[f32],
 ) -> f64 {
     #[inline(always)]
-    fn step(x: &F, y: &F, e: &F, inv: f32, rx: Rounding, ry: Rounding, acc: &mut [f64; W]) {
+    fn step(x: &F, y: &F, e: &F, inv: f32, rx: Rounding, ry: Rounding, acc: &mut F) {
         for j in 0..W {
             let p = e[j] * inv;
-            let w = (p * (1.0 - p)) as f64;
+            let w = p * (1.0 - p);
             let v = (step_sq(x[j], rx) + step_sq(y[j], ry)) * (1.0 / 12.0);
-            let ok = p > 0.0 && y[j].is_finite();
+            // y finite: its exponent field is not all ones.
+            let ok = p > 0.0 && (y[j].to_bits() & 0x7f80_0000) != 0x7f80_0000;
             acc[j] += if ok { w * v } else { 0.0 };
         }
     }
@@ -1559,26 +1561,33 @@ fn floor_sum<const L: u8, SX: Src, SY: Src>(
         y.len() == n && e.len() >= n,
         "storage floor: row lengths differ"
     );
-    let mut acc = [0f64; W];
-    let mut c = 0;
-    while c + W <= n {
-        // SAFETY: c + 16 <= n, the length of both rows and at most that of e.
-        let (vx, vy, ve) = unsafe {
-            (
-                x.chunk::<L>(c),
-                y.chunk::<L>(c),
-                std::ptr::read_unaligned(e.as_ptr().add(c) as *const F),
-            )
-        };
-        step(&vx, &vy, &ve, inv, rx, ry, &mut acc);
-        c += W;
+    let mut total = [0f64; W];
+    let mut lo = 0;
+    while lo < n {
+        let hi = (lo + PAIR_BLOCK).min(n);
+        let mut acc = [0f32; W];
+        let mut c = lo;
+        while c + W <= hi {
+            // SAFETY: c + 16 <= hi <= n, the length of both rows and at most that of e.
+            let (vx, vy, ve) = unsafe {
+                (
+                    x.chunk::<L>(c),
+                    y.chunk::<L>(c),
+                    std::ptr::read_unaligned(e.as_ptr().add(c) as *const F),
+                )
+            };
+            step(&vx, &vy, &ve, inv, rx, ry, &mut acc);
+            c += W;
+        }
+        if c < hi {
+            let ve = padded(&e[c..hi], 0.0);
+            let (vx, vy) = (x.padded(c, hi, NEG_INF), y.padded(c, hi, 0.0));
+            step(&vx, &vy, &ve, inv, rx, ry, &mut acc);
+        }
+        widen_add::<L>(&mut total, &acc);
+        lo = hi;
     }
-    if c < n {
-        let ve = padded(&e[c..n], 0.0);
-        let (vx, vy) = (x.padded(c, n, NEG_INF), y.padded(c, n, 0.0));
-        step(&vx, &vy, &ve, inv, rx, ry, &mut acc);
-    }
-    0.5 * hsum64(&acc)
+    0.5 * hsum64(&total)
 }
 
 /// `storage_floor_row`: the reference normalised (and its exponentials
