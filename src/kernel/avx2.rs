@@ -83,6 +83,8 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
     unsafe {
         let mv = _mm256_set1_ps(m);
         let mut t4 = zero();
+        // b indexes the row's columns as well as `blocks`.
+        #[allow(clippy::needless_range_loop)]
         for b in 0..whole {
             let lo = b * NORM_BLOCK;
             let (mut s, mut t) = (zero(), zero());
@@ -269,6 +271,8 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
         let short2 = set(SERIES_BELOW * SERIES_BELOW);
         let long2 = set(FUSED_SERIES_BELOW * FUSED_SERIES_BELOW);
         let mut r = Sums::load(s);
+        // b indexes the row's columns as well as `bw`.
+        #[allow(clippy::needless_range_loop)]
         for b in 0..whole {
             let lo = b * NORM_BLOCK;
             let mut vb = zero();

@@ -1055,6 +1055,22 @@ fn fused_step<const L: u8, const OFF: bool>(
     out
 }
 
+/// Columns c .. c + 16 of two stored rows and of an f32 buffer beside them.
+///
+/// # Safety
+/// c + 16 is at most the length of all three.
+#[inline(always)]
+unsafe fn chunks3<const L: u8, SX: Src, SY: Src>(x: SX, y: SY, e: &[f32], c: usize) -> (F, F, F) {
+    // SAFETY: as the caller promises.
+    unsafe {
+        (
+            x.chunk::<L>(c),
+            y.chunk::<L>(c),
+            std::ptr::read_unaligned(e.as_ptr().add(c) as *const F),
+        )
+    }
+}
+
 /// The fused pass over columns lo..hi of one block: adds them to `s`,
 /// writes v into `vbuf`, and returns the block's lane sums of v.
 #[inline(always)]
@@ -1074,13 +1090,7 @@ fn fused_block<const L: u8, const OFF: bool, SX: Src, SY: Src>(
     while c + W <= hi {
         // SAFETY: c + 16 <= hi <= n, and every buffer holds n columns
         // (asserted by the caller).
-        let (xc, yc, ec) = unsafe {
-            (
-                x.chunk::<L>(c),
-                y.chunk::<L>(c),
-                std::ptr::read_unaligned(er.as_ptr().add(c) as *const F),
-            )
-        };
+        let (xc, yc, ec) = unsafe { chunks3::<L, SX, SY>(x, y, er, c) };
         let v = fused_step::<L, OFF>(&xc, &yc, &ec, k, s, &mut vb);
         // SAFETY: as above, for the 16 columns written.
         unsafe { std::ptr::write_unaligned(vbuf.as_mut_ptr().add(c) as *mut F, v) };
@@ -1569,13 +1579,7 @@ fn floor_sum<const L: u8, SX: Src, SY: Src>(
         let mut c = lo;
         while c + W <= hi {
             // SAFETY: c + 16 <= hi <= n, the length of both rows and at most that of e.
-            let (vx, vy, ve) = unsafe {
-                (
-                    x.chunk::<L>(c),
-                    y.chunk::<L>(c),
-                    std::ptr::read_unaligned(e.as_ptr().add(c) as *const F),
-                )
-            };
+            let (vx, vy, ve) = unsafe { chunks3::<L, SX, SY>(x, y, e, c) };
             step(&vx, &vy, &ve, inv, rx, ry, &mut acc);
             c += W;
         }
