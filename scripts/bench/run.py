@@ -9,7 +9,9 @@ tools find them in the page cache, then runs klgauge (default metrics and
 the default --samples 1,4,16) and the torch script alternately, several
 rounds, and prints the median (and best) rows/s and GB/s of logits read, the CPU
 seconds, klgauge's peak private memory (RssAnon, polled from
-/proc/PID/status) and the ratios the speed targets are about. klgauge is
+/proc/PID/status) and the ratios the speed targets are about: of the
+medians, of the best rounds, and the median of the ratios within each
+round. klgauge is
 timed as a whole process (start to report); the torch script times only its
 streaming loop, which favours torch.
 
@@ -160,17 +162,23 @@ def main():
                      ("3 candidates / 1 candidate (time)", "klgauge 3 candidates", "klgauge"),
                      ("default --samples / --samples 0 (time)", "klgauge", "klgauge --samples 0"),
                      (f"{os.cpu_count()} threads / 1 thread (speed)", "klgauge --threads 1", "klgauge")]
-            ratios, best_ratios = {}, {}
+            # And the median of the ratios within each round: the two runs of
+            # a round are seconds apart, so a machine whose speed drifts over
+            # minutes moves both alike.
+            ratios, best_ratios, round_ratios = {}, {}, {}
             for name_, num, den in pairs:
                 if num in group and den in group:
                     ratios[name_] = group[num]["seconds"] / group[den]["seconds"]
                     best_ratios[name_] = group[num]["best_seconds"] / group[den]["best_seconds"]
+                    round_ratios[name_] = statistics.median(
+                        n[0] / d[0] for n, d in zip(times[num], times[den]))
             if ratios:
-                print(f"  {'':<40} median   best")
+                print(f"  {'':<40} median   best  per round")
             for k, v in ratios.items():
-                print(f"  {k:<40} {v:6.2f} {best_ratios[k]:6.2f}")
+                print(f"  {k:<40} {v:6.2f} {best_ratios[k]:6.2f} {round_ratios[k]:10.2f}")
             group["ratios"] = ratios
             group["best_ratios"] = best_ratios
+            group["round_ratios"] = round_ratios
             results[name] = group
             if a.data is None:
                 # Keep the disk and the page cache small: drop files no later group uses.
