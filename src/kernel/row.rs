@@ -189,9 +189,7 @@ impl Src for Bf16Le<'_> {
                     _mm512_storeu_ps(v.as_mut_ptr(), _mm512_castsi512_ps(w));
                 } else {
                     for q in 0..2 {
-                        let h = _mm_loadu_si128(b.as_ptr().add(16 * q) as *const __m128i);
-                        let w = _mm256_slli_epi32::<16>(_mm256_cvtepu16_epi32(h));
-                        _mm256_storeu_ps(v.as_mut_ptr().add(8 * q), _mm256_castsi256_ps(w));
+                        _mm256_storeu_ps(v.as_mut_ptr().add(8 * q), self.half(i + 8 * q));
                     }
                 }
             }
@@ -242,8 +240,7 @@ impl Src for F16Le<'_> {
                     _mm512_storeu_ps(v.as_mut_ptr(), _mm512_cvtph_ps(h));
                 } else {
                     for q in 0..2 {
-                        let h = _mm_loadu_si128(b.as_ptr().add(16 * q) as *const __m128i);
-                        _mm256_storeu_ps(v.as_mut_ptr().add(8 * q), _mm256_cvtph_ps(h));
+                        _mm256_storeu_ps(v.as_mut_ptr().add(8 * q), self.half(i + 8 * q));
                     }
                 }
             }
