@@ -76,15 +76,15 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
         blocks.len() >= n.div_ceil(NORM_BLOCK) && (!STORE || e.len() >= n),
         "normalise: buffers shorter than the row"
     );
-    let mut t_acc = [0f64; W];
-    let mut total = 0f64;
+    let mut sums = NormSums {
+        total: 0.0,
+        t4: zero(),
+        t_acc: [0f64; W],
+    };
     // SAFETY: the caller runs with AVX2 and FMA; every column read or
     // stored lies below whole * NORM_BLOCK <= n (asserted above).
     unsafe {
         let mv = _mm256_set1_ps(m);
-        let mut t4 = zero();
-        // b indexes the row's columns as well as `blocks`.
-        #[allow(clippy::needless_range_loop)]
         for b in 0..whole {
             let lo = b * NORM_BLOCK;
             let (mut s, mut t) = (zero(), zero());
@@ -101,35 +101,45 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
                 }
                 c += W;
             }
-            let v = hsum::<1>(&unpair(s)) as f64;
-            blocks[b] = v;
-            total += v;
-            for h in 0..2 {
-                t4[h] = _mm256_add_ps(t4[h], t[h]);
-            }
-            if b % T_EVERY == T_EVERY - 1 {
-                widen_add::<1>(&mut t_acc, &unpair(t4));
-                t4 = zero();
-            }
+            sums.fold(b, s, t, blocks);
         }
         if whole * NORM_BLOCK < n {
-            let b = whole;
-            let (s, t) = exp_block::<1, STORE, S>(x, b * NORM_BLOCK, n, m, e);
-            let v = hsum::<1>(&s) as f64;
+            // The row's last, partial block: the generic code.
+            let (s, t) = exp_block::<1, STORE, S>(x, whole * NORM_BLOCK, n, m, e);
+            sums.fold(whole, pair(&s), pair(&t), blocks);
+        }
+        widen_add::<1>(&mut sums.t_acc, &unpair(sums.t4));
+    }
+    (sums.total, hsum64(&sums.t_acc))
+}
+
+/// What the normalising pass carries from block to block: the sum of the
+/// block sums, and t in f32 lanes (carried into f64 every T_EVERY blocks).
+struct NormSums {
+    total: f64,
+    t4: Pair,
+    t_acc: [f64; W],
+}
+
+impl NormSums {
+    /// Block b's lane sums of e (`s`) and (x - m) e (`t`): its sum into
+    /// `blocks` and the total, t into the carried sums.
+    #[inline(always)]
+    unsafe fn fold(&mut self, b: usize, s: Pair, t: Pair, blocks: &mut [f64]) {
+        // SAFETY: the caller runs with AVX2; plain vector adds and stores.
+        unsafe {
+            let v = hsum::<1>(&unpair(s)) as f64;
             blocks[b] = v;
-            total += v;
-            let tp = pair(&t);
-            for h in 0..2 {
-                t4[h] = _mm256_add_ps(t4[h], tp[h]);
+            self.total += v;
+            for (a, v) in self.t4.iter_mut().zip(t) {
+                *a = _mm256_add_ps(*a, v);
             }
             if b % T_EVERY == T_EVERY - 1 {
-                widen_add::<1>(&mut t_acc, &unpair(t4));
-                t4 = zero();
+                widen_add::<1>(&mut self.t_acc, &unpair(self.t4));
+                self.t4 = zero();
             }
         }
-        widen_add::<1>(&mut t_acc, &unpair(t4));
     }
-    (total, hsum64(&t_acc))
 }
 
 /// `kernel::g_series` on eight lanes (the same operations).
@@ -263,8 +273,8 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
         "compare_fused: row or buffer lengths differ"
     );
     let mut vtot = 0f64;
-    // SAFETY: the caller runs with AVX2 and FMA; every column read or
-    // written lies below whole * NORM_BLOCK <= n (asserted above).
+    // SAFETY: the caller runs with AVX2 and FMA; a whole block's columns
+    // lie below whole * NORM_BLOCK <= n (asserted above).
     unsafe {
         let set = _mm256_set1_ps;
         let (sx, sy, kc) = (set(k.sx), set(k.sy), set(k.kc));
@@ -273,45 +283,55 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
         let mut r = Sums::load(s);
         // b indexes the row's columns as well as `bw`.
         #[allow(clippy::needless_range_loop)]
-        for b in 0..whole {
+        for b in 0..n.div_ceil(NORM_BLOCK) {
             let lo = b * NORM_BLOCK;
-            let mut vb = zero();
-            let mut c = lo;
-            while c < lo + NORM_BLOCK {
-                let xv = [x.half(c), x.half(c + 8)];
-                let yv = [y.half(c), y.half(c + 8)];
-                let (mut xs, mut d, mut d2) = (xv, zero(), zero());
-                for h in 0..2 {
-                    // As fused_step: relative to each row's top value (OFF),
-                    // else from x - y directly.
-                    if OFF {
-                        xs[h] = _mm256_sub_ps(xv[h], sx);
-                        d[h] = _mm256_sub_ps(_mm256_sub_ps(xs[h], _mm256_sub_ps(yv[h], sy)), kc);
-                    } else {
-                        d[h] = _mm256_sub_ps(_mm256_sub_ps(xv[h], yv[h]), kc);
+            let vb = if b < whole {
+                let mut vb = zero();
+                let mut c = lo;
+                while c < lo + NORM_BLOCK {
+                    let xv = [x.half(c), x.half(c + 8)];
+                    let yv = [y.half(c), y.half(c + 8)];
+                    let (mut xs, mut d, mut d2) = (xv, zero(), zero());
+                    for h in 0..2 {
+                        // As fused_step: relative to each row's top value
+                        // (OFF), else from x - y directly.
+                        if OFF {
+                            xs[h] = _mm256_sub_ps(xv[h], sx);
+                            d[h] =
+                                _mm256_sub_ps(_mm256_sub_ps(xs[h], _mm256_sub_ps(yv[h], sy)), kc);
+                        } else {
+                            d[h] = _mm256_sub_ps(_mm256_sub_ps(xv[h], yv[h]), kc);
+                        }
+                        d2[h] = _mm256_mul_ps(d[h], d[h]);
                     }
-                    d2[h] = _mm256_mul_ps(d[h], d[h]);
+                    let (ep, vp) = (er.as_ptr().add(c), vbuf.as_mut_ptr().add(c));
+                    if !r.long && all_below(&d2, short2) {
+                        close::<false>(&d, &xs, &yv, ep, vp, &mut r, &mut vb);
+                    } else if all_below(&d2, long2) {
+                        r.long = true;
+                        close::<true>(&d, &xs, &yv, ep, vp, &mut r, &mut vb);
+                    } else {
+                        // A column far from the series range: the generic
+                        // step, on the same sums.
+                        r.store(s);
+                        let mut vbf = unpair(vb);
+                        let ec = std::ptr::read_unaligned(ep as *const F);
+                        let v = fused_step::<1, OFF>(&unpair(xv), &unpair(yv), &ec, k, s, &mut vbf);
+                        std::ptr::write_unaligned(vp as *mut F, v);
+                        r = Sums::load(s);
+                        vb = pair(&vbf);
+                    }
+                    c += W;
                 }
-                let (ep, vp) = (er.as_ptr().add(c), vbuf.as_mut_ptr().add(c));
-                if !r.long && all_below(&d2, short2) {
-                    close::<false>(&d, &xs, &yv, ep, vp, &mut r, &mut vb);
-                } else if all_below(&d2, long2) {
-                    r.long = true;
-                    close::<true>(&d, &xs, &yv, ep, vp, &mut r, &mut vb);
-                } else {
-                    // A column far from the series range: the generic step,
-                    // on the same sums.
-                    r.store(s);
-                    let mut vbf = unpair(vb);
-                    let ec = std::ptr::read_unaligned(ep as *const F);
-                    let v = fused_step::<1, OFF>(&unpair(xv), &unpair(yv), &ec, k, s, &mut vbf);
-                    std::ptr::write_unaligned(vp as *mut F, v);
-                    r = Sums::load(s);
-                    vb = pair(&vbf);
-                }
-                c += W;
-            }
-            let v = hsum::<1>(&unpair(vb)) as f64;
+                unpair(vb)
+            } else {
+                // The row's last, partial block: the generic code.
+                r.store(s);
+                let vb = fused_block::<1, OFF, SX, SY>(x, y, er, k, s, vbuf, lo, n);
+                r = Sums::load(s);
+                vb
+            };
+            let v = hsum::<1>(&vb) as f64;
             bw[b] = v;
             vtot += v;
             if b % FUSED_CARRY == FUSED_CARRY - 1 {
@@ -321,16 +341,6 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
             }
         }
         r.store(s);
-        if whole * NORM_BLOCK < n {
-            let b = whole;
-            let vb = fused_block::<1, OFF, SX, SY>(x, y, er, k, s, vbuf, b * NORM_BLOCK, n);
-            let v = hsum::<1>(&vb) as f64;
-            bw[b] = v;
-            vtot += v;
-            if b % FUSED_CARRY == FUSED_CARRY - 1 {
-                s.carry::<1>(acc);
-            }
-        }
         s.carry::<1>(acc);
     }
     vtot
