@@ -17,7 +17,7 @@
 //! run here; a row's last partial block, and the rare chunk of the fused
 //! pass that needs exp, go through the generic code on the same sums.
 
-use super::exp::exp_table8;
+use super::exp::{exp_table8, ExpK8};
 use super::lanes::{hsum, hsum64, widen_add, F, W};
 use super::row::Src;
 use super::{
@@ -49,6 +49,25 @@ unsafe fn unpair(p: Pair) -> F {
         _mm256_storeu_ps(v.as_mut_ptr().add(8), p[1]);
     }
     v
+}
+
+/// Keeps two running sums where the source puts them: an empty asm
+/// statement that LLVM must treat as reading and writing both, ordered
+/// with the loop's stores. Without it LLVM moved the sums of a whole
+/// unrolled block after its last exp, and kept eight exps' values on the
+/// stack until then.
+#[inline]
+#[target_feature(enable = "avx")]
+unsafe fn pin(a: &mut __m256, b: &mut __m256) {
+    // SAFETY: an empty statement; it only names the two registers.
+    unsafe {
+        std::arch::asm!(
+            "/* {0} {1} */",
+            inout(ymm_reg) * a,
+            inout(ymm_reg) * b,
+            options(nostack, preserves_flags)
+        );
+    }
 }
 
 #[inline(always)]
@@ -85,21 +104,29 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
     // stored lies below whole * NORM_BLOCK <= n (asserted above).
     unsafe {
         let mv = _mm256_set1_ps(m);
+        let k = ExpK8::new();
         for b in 0..whole {
             let lo = b * NORM_BLOCK;
             let (mut s, mut t) = (zero(), zero());
-            let mut c = lo;
-            while c < lo + NORM_BLOCK {
-                for h in 0..2 {
-                    let xv = _mm256_sub_ps(x.half(c + 8 * h), mv);
-                    let (ev, keep) = exp_table8(xv);
+            // Half by half: lane j of half h sums the columns c + 8h + j
+            // in the same order as the generic loop, with only one half's
+            // two sums live beside the constants.
+            for h in 0..2 {
+                let mut c = lo + 8 * h;
+                while c < lo + NORM_BLOCK {
+                    let xv = _mm256_sub_ps(x.half(c), mv);
+                    let (ev, keep) = exp_table8(xv, &k);
                     s[h] = _mm256_add_ps(s[h], ev);
-                    t[h] = _mm256_blendv_ps(t[h], _mm256_fmadd_ps(xv, ev, t[h]), keep);
+                    // Lanes below the underflow bound (e = 0) add 0 * 0:
+                    // t unchanged, as the generic loop's skip, without the
+                    // NaN that -inf * 0 would make.
+                    t[h] = _mm256_fmadd_ps(_mm256_and_ps(xv, keep), ev, t[h]);
                     if STORE {
-                        _mm256_storeu_ps(e.as_mut_ptr().add(c + 8 * h), ev);
+                        _mm256_storeu_ps(e.as_mut_ptr().add(c), ev);
                     }
+                    pin(&mut s[h], &mut t[h]);
+                    c += W;
                 }
-                c += W;
             }
             sums.fold(b, s, t, blocks);
         }

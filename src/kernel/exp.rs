@@ -149,6 +149,62 @@ pub fn exp_table<const L: u8>(x: f32) -> f32 {
     }
 }
 
+/// The constants of `exp_table8`, as whole registers.
+///
+/// Built from splat constants, LLVM keeps them as constants and, short of
+/// registers in an unrolled loop, reloads them with `vbroadcastss` at every
+/// use: on Zen 3 that is a shuffle-pipe operation, on the pipes the table
+/// permutes and the bf16 widening already need. Read through `black_box`,
+/// they are plain values: kept in registers or spilled and reloaded as
+/// ordinary loads, which take no vector pipe.
+#[cfg(target_arch = "x86_64")]
+#[derive(Clone, Copy)]
+pub struct ExpK8 {
+    log2e: std::arch::x86_64::__m256,
+    round: std::arch::x86_64::__m256,
+    ln2_hi: std::arch::x86_64::__m256,
+    ln2_lo: std::arch::x86_64::__m256,
+    q3: std::arch::x86_64::__m256,
+    q2: std::arch::x86_64::__m256,
+    t_lo: std::arch::x86_64::__m256,
+    t_hi: std::arch::x86_64::__m256,
+    under: std::arch::x86_64::__m256,
+}
+
+#[cfg(target_arch = "x86_64")]
+impl ExpK8 {
+    /// # Safety
+    /// Only called from code compiled with AVX2, after run-time detection.
+    #[inline(always)]
+    pub unsafe fn new() -> ExpK8 {
+        use std::arch::x86_64::*;
+        let c: [[f32; 8]; 9] = std::hint::black_box([
+            [T_LOG2E; 8],
+            [ROUND; 8],
+            [-T_LN2_HI; 8],
+            [-T_LN2_LO; 8],
+            [Q3; 8],
+            [Q2; 8],
+            EXP2_FRAC[..8].try_into().unwrap(),
+            EXP2_FRAC[8..].try_into().unwrap(),
+            [EXP_UNDERFLOW; 8],
+        ]);
+        // SAFETY: loads of the arrays above; AVX as the caller promises.
+        let l = |i: usize| unsafe { _mm256_loadu_ps(c[i].as_ptr()) };
+        ExpK8 {
+            log2e: l(0),
+            round: l(1),
+            ln2_hi: l(2),
+            ln2_lo: l(3),
+            q3: l(4),
+            q2: l(5),
+            t_lo: l(6),
+            t_hi: l(7),
+            under: l(8),
+        }
+    }
+}
+
 /// `exp_table` of eight lanes on AVX2 (x = c - m <= 0), and the mask of the
 /// lanes at or above the underflow bound (NaN lanes included): the lanes
 /// whose (c - m) e the normalising pass adds to its t sum. The table entry
@@ -160,29 +216,29 @@ pub fn exp_table<const L: u8>(x: f32) -> f32 {
 #[inline(always)]
 pub unsafe fn exp_table8(
     x: std::arch::x86_64::__m256,
+    k: &ExpK8,
 ) -> (std::arch::x86_64::__m256, std::arch::x86_64::__m256) {
     use std::arch::x86_64::*;
-    // SAFETY: the caller runs with AVX2 and FMA; the table loads read the
-    // 16 entries of EXP2_FRAC.
+    // SAFETY: the caller runs with AVX2 and FMA.
     unsafe {
-        let k = _mm256_set1_ps;
-        let tt = _mm256_fmadd_ps(x, k(T_LOG2E), k(ROUND));
-        let kf = _mm256_sub_ps(tt, k(ROUND));
-        let r = _mm256_fmadd_ps(kf, k(-T_LN2_LO), _mm256_fmadd_ps(kf, k(-T_LN2_HI), x));
-        let em1 = _mm256_fmadd_ps(_mm256_mul_ps(r, r), _mm256_fmadd_ps(r, k(Q3), k(Q2)), r);
+        let tt = _mm256_fmadd_ps(x, k.log2e, k.round);
+        let kf = _mm256_sub_ps(tt, k.round);
+        let r = _mm256_fmadd_ps(kf, k.ln2_lo, _mm256_fmadd_ps(kf, k.ln2_hi, x));
+        let em1 = _mm256_fmadd_ps(_mm256_mul_ps(r, r), _mm256_fmadd_ps(r, k.q3, k.q2), r);
         // The entry: two 8-entry permutes, chosen by bit 3 of k.
         let ti = _mm256_castps_si256(tt);
-        let lo = _mm256_permutevar8x32_ps(_mm256_loadu_ps(EXP2_FRAC.as_ptr()), ti);
-        let hi = _mm256_permutevar8x32_ps(_mm256_loadu_ps(EXP2_FRAC.as_ptr().add(8)), ti);
+        let lo = _mm256_permutevar8x32_ps(k.t_lo, ti);
+        let hi = _mm256_permutevar8x32_ps(k.t_hi, ti);
         let tb = _mm256_blendv_ps(lo, hi, _mm256_castsi256_ps(_mm256_slli_epi32::<28>(ti)));
-        let kk = _mm256_sub_epi32(ti, _mm256_set1_epi32(ROUND_BITS));
-        let bits = _mm256_slli_epi32::<23>(_mm256_add_epi32(
-            _mm256_srai_epi32::<4>(kk),
-            _mm256_set1_epi32(127),
+        // Times 2^n, n = floor(k / 16) >= -126: the entry (in [1, 2)) with n
+        // added to its exponent field, exactly the product. The bits of tt
+        // are ROUND_BITS + k, and ROUND_BITS / 16 shifted by 23 leaves no bits.
+        let ts = _mm256_castsi256_ps(_mm256_add_epi32(
+            _mm256_castps_si256(tb),
+            _mm256_slli_epi32::<23>(_mm256_srai_epi32::<4>(ti)),
         ));
-        let ts = _mm256_mul_ps(tb, _mm256_castsi256_ps(bits));
         let v = _mm256_fmadd_ps(ts, em1, ts);
-        let keep = _mm256_cmp_ps::<_CMP_NLT_UQ>(x, k(EXP_UNDERFLOW));
+        let keep = _mm256_cmp_ps::<_CMP_NLT_UQ>(x, k.under);
         (_mm256_and_ps(v, keep), keep)
     }
 }
@@ -246,9 +302,10 @@ pub fn exp_step<const L: u8>(
         // arithmetic is `exp_table::<1>` lane for lane.
         unsafe {
             let mut out = [0f32; 16];
+            let k = ExpK8::new();
             for h in 0..2 {
                 let x = _mm256_sub_ps(_mm256_loadu_ps(c.as_ptr().add(8 * h)), _mm256_set1_ps(m));
-                let (e, keep) = exp_table8(x);
+                let (e, keep) = exp_table8(x, &k);
                 let sp = s.as_mut_ptr().add(8 * h);
                 _mm256_storeu_ps(sp, _mm256_add_ps(_mm256_loadu_ps(sp), e));
                 let tp = t.as_mut_ptr().add(8 * h);
@@ -356,6 +413,54 @@ mod tests {
         assert!(w < 3.0 * eps, "scalar build: worst relative error {w}");
         let w = worst_on_softmax_range(exp_table::<2>, 37);
         assert!(w < 2.0 * eps, "fused: worst relative error {w}");
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2,fma")]
+    unsafe fn table8_of(x: &[f32; 8]) -> [f32; 8] {
+        use std::arch::x86_64::*;
+        let mut out = [0f32; 8];
+        // SAFETY: the caller checked AVX2 and FMA; loads and stores of the arrays.
+        unsafe {
+            let k = ExpK8::new();
+            let (e, _) = exp_table8(_mm256_loadu_ps(x.as_ptr()), &k);
+            _mm256_storeu_ps(out.as_mut_ptr(), e);
+        }
+        out
+    }
+
+    #[test]
+    #[cfg(target_arch = "x86_64")]
+    fn table8_gives_the_scalar_table_bits() {
+        // The AVX2 form puts 2^n into the entry's exponent field instead of
+        // multiplying by it: the same bits wherever the product is exact,
+        // which this checks on every 97th f32 of [-87.3, 0] and the edges.
+        if !(is_x86_feature_detected!("avx2") && is_x86_feature_detected!("fma")) {
+            return;
+        }
+        let mut xs: Vec<f32> = vec![
+            0.0,
+            -0.0,
+            EXP_UNDERFLOW,
+            -87.29,
+            -87.31,
+            -1e30,
+            f32::NEG_INFINITY,
+        ];
+        let mut bits = EXP_UNDERFLOW.to_bits();
+        while bits > (-1e-30f32).to_bits() {
+            xs.push(f32::from_bits(bits));
+            bits -= 97;
+        }
+        xs.resize(xs.len().div_ceil(8) * 8, -1.0);
+        for c in xs.chunks_exact(8) {
+            let c: &[f32; 8] = c.try_into().unwrap();
+            // SAFETY: AVX2 and FMA were detected above.
+            let got = unsafe { table8_of(c) };
+            for (x, g) in c.iter().zip(got) {
+                assert_eq!(g.to_bits(), exp_table::<1>(*x).to_bits(), "x = {x}");
+            }
+        }
     }
 
     #[test]
