@@ -154,18 +154,74 @@ fn main() {
         // bytes, the candidate normalised inside the fused pair pass.
         let mut ps = kernel::PairScratch::new(cols);
         let (rx, ry) = (kernel::Row::Bf16(&bf), kernel::Row::Bf16(&bfy));
-        let rr = kernel::normalise_row_at(l, rx, &mut er3, &mut br).unwrap();
+        let rr = kernel::normalise_row_at(l, rx, &mut er3, &mut br, kernel::Ahead::NONE).unwrap();
         let mut bw = vec![0f64; kernel::norm_blocks(cols)];
         let mut vb = vec![0f32; cols];
         run("compare_fused_bf16", &mut || {
             black_box(kernel::compare_fused_at(
-                l, rx, ry, &er3, &br, &rr, &mut vb, &mut bw,
+                l,
+                rx,
+                ry,
+                &er3,
+                &br,
+                &rr,
+                &mut vb,
+                &mut bw,
+                kernel::Ahead::NONE,
             ));
         });
         run("fused_row_bf16", &mut || {
-            let r = kernel::normalise_row_at(l, black_box(rx), &mut er3, &mut br).unwrap();
-            black_box(kernel::compare_pair(rx, black_box(ry), &er3, &br, &r, &mut ps).ok());
+            let r =
+                kernel::normalise_row_at(l, black_box(rx), &mut er3, &mut br, kernel::Ahead::NONE)
+                    .unwrap();
+            black_box(
+                kernel::compare_pair(
+                    rx,
+                    black_box(ry),
+                    &er3,
+                    &br,
+                    &r,
+                    &mut ps,
+                    kernel::Ahead::NONE,
+                )
+                .ok(),
+            );
         });
+        // The same, but each call takes the next of 128 distinct row pairs
+        // (64 MiB of bf16 at 128k columns), so the rows come from memory as
+        // in a real run rather than from the cache the previous call filled;
+        // "ahead": the reference's pass pulls the candidate's row toward the
+        // cache meanwhile, as the engine does where it reads from the map.
+        let many = 128;
+        let (bigx, bigy): (Vec<u8>, Vec<u8>) = (bf.repeat(many), bfy.repeat(many));
+        for (name, pull) in [("row_from_memory", false), ("row_from_memory_ahead", true)] {
+            let mut at = 0usize;
+            run(name, &mut || {
+                let rb = 2 * cols;
+                let (xb, yb) = (&bigx[at * rb..(at + 1) * rb], &bigy[at * rb..(at + 1) * rb]);
+                at = (at + 1) % many;
+                let ahead = if pull {
+                    kernel::Ahead(yb)
+                } else {
+                    kernel::Ahead::NONE
+                };
+                let (rx, ry) = (kernel::Row::Bf16(xb), kernel::Row::Bf16(yb));
+                let r =
+                    kernel::normalise_row_at(l, black_box(rx), &mut er3, &mut br, ahead).unwrap();
+                black_box(
+                    kernel::compare_pair(
+                        rx,
+                        black_box(ry),
+                        &er3,
+                        &br,
+                        &r,
+                        &mut ps,
+                        kernel::Ahead::NONE,
+                    )
+                    .ok(),
+                );
+            });
+        }
         let rd = kernel::Rounding {
             mantissa_bits: 7,
             min_exp: -133,

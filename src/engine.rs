@@ -10,7 +10,7 @@
 use crate::error::{Error, Result};
 use crate::estimators::{draw_weighted, k_values, EstimatorSums};
 use crate::input::LogitFile;
-use crate::kernel::{self, Row, RowFault, RowNorm};
+use crate::kernel::{self, Ahead, Row, RowFault, RowNorm};
 use serde::{Deserialize, Serialize};
 use std::ops::Range;
 
@@ -424,6 +424,10 @@ fn fold_draws(
     }
 }
 
+/// Computes one row into `out`. Each kernel pass pulls the row of the
+/// candidate compared next toward the cache while it runs (where that file
+/// is read from the map; see `LogitFile::ahead`). Pulling the thread's next
+/// reference row the same way during the last comparison measured no gain.
 fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
     let Scratch {
         cols,
@@ -440,7 +444,12 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
     } = s;
     let cols = *cols;
     let xr = ctx.reference.stored_row(row, cols, raw_r);
-    let nr = match kernel::normalise_row(xr, er, br) {
+    let ahead = |k: usize| {
+        ctx.candidates
+            .get(k)
+            .map_or(Ahead::NONE, |c| c.ahead(row, cols))
+    };
+    let nr = match kernel::normalise_row(xr, er, br, ahead(0)) {
         Ok(n) => n,
         Err(f) => {
             out.ref_fault = Some(f);
@@ -476,7 +485,7 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
         let co = &mut out.cands[k];
         let xc = cand.stored_row(row, cols, raw_c);
         // The candidate is normalised inside the pair pass (see `kernel::compare_pair`).
-        let (f, route) = match kernel::compare_pair(xr, xc, er, br, &nr, pair) {
+        let (f, route) = match kernel::compare_pair(xr, xc, er, br, &nr, pair, ahead(k + 1)) {
             Ok(v) => v,
             Err(fault) => {
                 co.fault = Some(fault);

@@ -144,6 +144,18 @@ fn run(
     seed: u64,
     tag: &str,
 ) -> Run {
+    run_env(inp, reference, candidates, threads, seed, tag, &[])
+}
+
+fn run_env(
+    inp: &Inputs,
+    reference: &Path,
+    candidates: &[PathBuf],
+    threads: usize,
+    seed: u64,
+    tag: &str,
+    env: &[(&str, &str)],
+) -> Run {
     let (j, c) = (
         inp.dir.path().join(format!("{tag}.json")),
         inp.dir.path().join(format!("{tag}.csv")),
@@ -171,7 +183,7 @@ fn run(
         .map(String::from),
     );
     let argv: Vec<&str> = args.iter().map(|a| a.as_str()).collect();
-    let out = klgauge(&argv);
+    let out = klgauge_env(&argv, env);
     assert_eq!(
         out.status.code(),
         Some(0),
@@ -203,6 +215,27 @@ fn one_and_two_threads_give_byte_identical_reports() {
     assert!(a.csv == b.csv && b.csv == c.csv, "CSV differs");
     assert_eq!(a.text, b.text, "terminal report differs");
     assert!(a.csv.len() > 3 * 400 * 50, "CSV unexpectedly short");
+}
+
+#[test]
+fn rows_read_from_the_map_or_by_positioned_reads_give_the_same_report() {
+    // How rows are read (chosen per file by measuring page faults, see
+    // LogitFile::stored_row) only changes where the bytes come from.
+    let inp = inputs();
+    let auto = run(&inp, &inp.reference, &inp.candidates, 2, 7, "io-auto");
+    for io in ["map", "read"] {
+        let r = run_env(
+            &inp,
+            &inp.reference,
+            &inp.candidates,
+            2,
+            7,
+            &format!("io-{io}"),
+            &[("KLGAUGE_IO", io)],
+        );
+        assert_eq!(auto.json, r.json, "JSON differs with KLGAUGE_IO={io}");
+        assert!(auto.csv == r.csv, "CSV differs with KLGAUGE_IO={io}");
+    }
 }
 
 #[test]

@@ -21,8 +21,8 @@ use super::exp::{exp_table8, ExpK8};
 use super::lanes::{hsum, hsum64, widen_add, F, W};
 use super::row::Src;
 use super::{
-    exp_block, fused_block, fused_step, FusedConsts, FusedLanes, FUSED_CARRY, FUSED_SERIES_BELOW,
-    G_LONG, G_SHORT, NORM_BLOCK, SERIES_BELOW, T_EVERY,
+    exp_block, fused_block, fused_step, Ahead, FusedConsts, FusedLanes, FUSED_CARRY,
+    FUSED_SERIES_BELOW, G_LONG, G_SHORT, NORM_BLOCK, SERIES_BELOW, T_EVERY,
 };
 use std::arch::x86_64::*;
 
@@ -88,8 +88,10 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
     m: f32,
     e: &mut [f32],
     blocks: &mut [f64],
+    ahead: Ahead,
 ) -> (f64, f64) {
     let n = x.len();
+    let nb = n.div_ceil(NORM_BLOCK);
     let whole = n / NORM_BLOCK;
     assert!(
         blocks.len() >= n.div_ceil(NORM_BLOCK) && (!STORE || e.len() >= n),
@@ -106,6 +108,7 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
         let mv = _mm256_set1_ps(m);
         let k = ExpK8::new();
         for b in 0..whole {
+            ahead.block(b, nb);
             let lo = b * NORM_BLOCK;
             let (mut s, mut t) = (zero(), zero());
             // Half by half: lane j of half h sums the columns c + 8h + j
@@ -132,6 +135,7 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
         }
         if whole * NORM_BLOCK < n {
             // The row's last, partial block: the generic code.
+            ahead.block(whole, nb);
             let (s, t) = exp_block::<1, STORE, S>(x, whole * NORM_BLOCK, n, m, e);
             sums.fold(whole, pair(&s), pair(&t), blocks);
         }
@@ -292,6 +296,7 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
     acc: &mut [[f64; W]; 3],
     vbuf: &mut [f32],
     bw: &mut [f64],
+    ahead: Ahead,
 ) -> f64 {
     let n = x.len();
     let whole = n / NORM_BLOCK;
@@ -308,9 +313,11 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
         let short2 = set(SERIES_BELOW * SERIES_BELOW);
         let long2 = set(FUSED_SERIES_BELOW * FUSED_SERIES_BELOW);
         let mut r = Sums::load(s);
+        let nb = n.div_ceil(NORM_BLOCK);
         // b indexes the row's columns as well as `bw`.
         #[allow(clippy::needless_range_loop)]
-        for b in 0..n.div_ceil(NORM_BLOCK) {
+        for b in 0..nb {
+            ahead.block(b, nb);
             let lo = b * NORM_BLOCK;
             let vb = if b < whole {
                 let mut vb = zero();

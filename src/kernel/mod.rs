@@ -100,6 +100,51 @@ pub struct PairMetrics {
     pub tv: f64,
 }
 
+/// Bytes that a pass pulls toward the cache while it runs, spread evenly
+/// over its blocks: the input the same thread reads next (the engine picks
+/// it; empty for none). A pass that is busy computing hides the memory's
+/// latency of the next row this way, where the hardware's own prefetcher
+/// only starts on the row once the next pass misses on it. Only hints:
+/// nothing is read, and an address that is not mapped is passed over.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Ahead<'a>(pub &'a [u8]);
+
+impl Ahead<'_> {
+    pub const NONE: Ahead<'static> = Ahead(&[]);
+
+    /// Cache-line size assumed (x86-64's).
+    const LINE: usize = 64;
+
+    /// Offsets of the bytes block `b` (of `nb`) asks for: len / nb rounded
+    /// up to whole lines per block, so the blocks cover every line of the
+    /// bytes once, in order, and nothing past them.
+    #[inline(always)]
+    fn share(len: usize, b: usize, nb: usize) -> std::ops::Range<usize> {
+        if len == 0 || nb == 0 {
+            return 0..0;
+        }
+        let per = len.div_ceil(nb).next_multiple_of(Self::LINE);
+        (b * per).min(len)..((b + 1) * per).min(len)
+    }
+
+    /// Asks for block `b`'s share of the bytes (see `share`).
+    #[inline(always)]
+    fn block(self, b: usize, nb: usize) {
+        let r = Self::share(self.0.len(), b, nb);
+        let mut at = r.start;
+        while at < r.end {
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: `at` < len, inside the slice; a prefetch reads nothing
+            // and cannot fault.
+            unsafe {
+                use std::arch::x86_64::{_mm_prefetch, _MM_HINT_T0};
+                _mm_prefetch::<_MM_HINT_T0>(self.0.as_ptr().add(at) as *const i8);
+            }
+            at += Self::LINE;
+        }
+    }
+}
+
 // ---------------------------------------------------------------------------
 // Instruction-set levels and run-time dispatch.
 
@@ -441,19 +486,22 @@ fn exp_pass<const L: u8, const STORE: bool, S: Src>(
     m: f32,
     e: &mut [f32],
     blocks: &mut [f64],
+    ahead: Ahead,
 ) -> (f64, f64) {
     #[cfg(target_arch = "x86_64")]
     if L == 1 && avx2_loops() {
         // SAFETY: level 1 is only instantiated inside functions compiled
         // with AVX2 and FMA, called after run-time detection; the buffer
         // lengths were asserted by the caller.
-        return unsafe { avx2::exp_pass::<STORE, S>(x, m, e, blocks) };
+        return unsafe { avx2::exp_pass::<STORE, S>(x, m, e, blocks, ahead) };
     }
     // t is summed in f32 lanes per block, over T_EVERY blocks, then in f64.
     let n = x.len();
+    let nb = norm_blocks(n);
     let mut t_acc = [0f64; W];
     let mut t4 = [0f32; W];
     let s_tot = for_blocks!(L, n, blocks, |b, lo, hi| {
+        ahead.block(b, nb);
         let (s, t) = exp_block::<L, STORE, S>(x, lo, hi, m, e);
         lanes::add(&mut t4, &t);
         if b % T_EVERY == T_EVERY - 1 {
@@ -471,6 +519,7 @@ fn normalise_any<const L: u8, const STORE: bool, S: Src>(
     x: S,
     e: &mut [f32],
     blocks: &mut [f64],
+    ahead: Ahead,
 ) -> Result<RowNorm, RowFault> {
     assert!(
         !STORE || e.len() >= x.len(),
@@ -484,7 +533,7 @@ fn normalise_any<const L: u8, const STORE: bool, S: Src>(
     if !max.is_finite() {
         return Err(classify_fault(x));
     }
-    let (s, t) = exp_pass::<L, STORE, S>(x, max, e, blocks);
+    let (s, t) = exp_pass::<L, STORE, S>(x, max, e, blocks, ahead);
     // A NaN logit went through exp into the sum (NaN lanes are kept), so
     // one test here replaces a test per column.
     if s.is_nan() {
@@ -506,12 +555,17 @@ fn normalise_impl<const L: u8>(
     e: &mut [f32],
     blocks: &mut [f64],
 ) -> Result<RowNorm, RowFault> {
-    normalise_any::<L, true, _>(row::F32Le(bytemuck::cast_slice(x)), e, blocks)
+    normalise_any::<L, true, _>(row::F32Le(bytemuck::cast_slice(x)), e, blocks, Ahead::NONE)
 }
 
 #[inline(always)]
 fn normalise_only_impl<const L: u8>(x: &[f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> {
-    normalise_any::<L, false, _>(row::F32Le(bytemuck::cast_slice(x)), &mut [], blocks)
+    normalise_any::<L, false, _>(
+        row::F32Le(bytemuck::cast_slice(x)),
+        &mut [],
+        blocks,
+        Ahead::NONE,
+    )
 }
 
 #[inline(always)]
@@ -519,13 +573,15 @@ fn normalise_row_impl<const L: u8>(
     x: Row,
     e: &mut [f32],
     blocks: &mut [f64],
+    ahead: Ahead,
 ) -> Result<RowNorm, RowFault> {
-    with_src!(x, s => normalise_any::<L, true, _>(s, e, blocks))
+    with_src!(x, s => normalise_any::<L, true, _>(s, e, blocks, ahead))
 }
 
 dispatched! {
-    /// `normalise_store` of a row in its stored form, widened as it is read.
-    pub fn normalise_row / normalise_row_at(x: Row, e: &mut [f32], blocks: &mut [f64]) -> Result<RowNorm, RowFault> => normalise_row_impl
+    /// `normalise_store` of a row in its stored form, widened as it is
+    /// read; `ahead` is pulled toward the cache meanwhile.
+    pub fn normalise_row / normalise_row_at(x: Row, e: &mut [f32], blocks: &mut [f64], ahead: Ahead) -> Result<RowNorm, RowFault> => normalise_row_impl
 }
 
 dispatched! {
@@ -1118,6 +1174,7 @@ const FUSED_CARRY: usize = PAIR_BLOCK / NORM_BLOCK;
 /// The fused pass's loop over the row: the f64 sums of e g(d), v d and
 /// v (x - sx), the sum of v (its block sums into `bw`), the lane maxima of y.
 #[inline(always)]
+#[allow(clippy::too_many_arguments)]
 fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
     x: SX,
     y: SY,
@@ -1125,6 +1182,7 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
     k: &FusedConsts,
     vbuf: &mut [f32],
     bw: &mut [f64],
+    ahead: Ahead,
 ) -> ([[f64; W]; 3], f64, F) {
     let n = x.len();
     let nb = norm_blocks(n);
@@ -1145,11 +1203,13 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
         // SAFETY: level 1 is only instantiated inside functions compiled
         // with AVX2 and FMA, called after run-time detection; the buffer
         // lengths are asserted above.
-        let vtot =
-            unsafe { avx2::fused_loop::<OFF, SX, SY>(x, y, er, k, &mut s, &mut acc, vbuf, bw) };
+        let vtot = unsafe {
+            avx2::fused_loop::<OFF, SX, SY>(x, y, er, k, &mut s, &mut acc, vbuf, bw, ahead)
+        };
         return (acc, vtot, s.my);
     }
     let vtot = for_blocks!(L, n, bw, |b, lo, hi| {
+        ahead.block(b, nb);
         let vb = fused_block::<L, OFF, SX, SY>(x, y, er, k, &mut s, vbuf, lo, hi);
         if b % FUSED_CARRY == FUSED_CARRY - 1 {
             s.carry::<L>(&mut acc);
@@ -1170,6 +1230,7 @@ fn fused_src<const L: u8, SX: Src, SY: Src>(
     r: &RowNorm,
     vbuf: &mut [f32],
     bw: &mut [f64],
+    ahead: Ahead,
 ) -> Option<Fused> {
     let n = x.len();
     let nb = norm_blocks(n);
@@ -1195,7 +1256,7 @@ fn fused_src<const L: u8, SX: Src, SY: Src>(
     let mut kc = centre(x, y, sx, sy, kraw - (sx - sy));
     let mut second = false;
     loop {
-        let got = fused_pass::<L, SX, SY>(x, y, er, br, r, vbuf, bw, sx, sy, kc, off, ya)?;
+        let got = fused_pass::<L, SX, SY>(x, y, er, br, r, vbuf, bw, sx, sy, kc, off, ya, ahead)?;
         // The sums are exact relative to their own size, and the result is a
         // difference of two of them when the reference's mass sits at a d of
         // its own (the row's centre is not the p-weighted one): with u = Z/S - 1,
@@ -1236,6 +1297,7 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
     kc: f32,
     off: bool,
     ya: f32,
+    ahead: Ahead,
 ) -> Option<(Fused, f64, f64)> {
     let n = x.len();
     let nb = norm_blocks(n);
@@ -1248,9 +1310,9 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
     }
     let k = FusedConsts { sx, sy, kc, ya: q };
     let (acc, vtot, my) = if off {
-        fused_loop::<L, true, SX, SY>(x, y, er, &k, vbuf, bw)
+        fused_loop::<L, true, SX, SY>(x, y, er, &k, vbuf, bw, ahead)
     } else {
-        fused_loop::<L, false, SX, SY>(x, y, er, &k, vbuf, bw)
+        fused_loop::<L, false, SX, SY>(x, y, er, &k, vbuf, bw, ahead)
     };
     let (gs, js, ts) = (hsum64(&acc[0]), hsum64(&acc[1]), hsum64(&acc[2]));
     // sum e d, from sum e g(d) - sum v (see fused_step).
@@ -1405,8 +1467,9 @@ fn fused_impl<const L: u8>(
     r: &RowNorm,
     v: &mut [f32],
     bw: &mut [f64],
+    ahead: Ahead,
 ) -> Option<Fused> {
-    with_src!(x, sx => with_src!(y, sy => fused_src::<L, _, _>(sx, sy, er, br, r, v, bw)))
+    with_src!(x, sx => with_src!(y, sy => fused_src::<L, _, _>(sx, sy, er, br, r, v, bw, ahead)))
 }
 
 dispatched! {
@@ -1414,9 +1477,10 @@ dispatched! {
     /// pass over both rows (see the section comment above). `er` and `br`
     /// are what `normalise_row` stored for the reference `x` (summary `r`);
     /// `v` (>= row length) is scratch; `bw` receives the candidate's block
-    /// sums of exp(y - anchor) for the sampler. None: take `normalise_row`
-    /// on the candidate and `compare_stored` instead.
-    pub fn compare_fused / compare_fused_at(x: Row, y: Row, er: &[f32], br: &[f64], r: &RowNorm, v: &mut [f32], bw: &mut [f64]) -> Option<Fused> => fused_impl
+    /// sums of exp(y - anchor) for the sampler; `ahead` is pulled toward
+    /// the cache meanwhile. None: take `normalise_row` on the candidate and
+    /// `compare_stored` instead.
+    pub fn compare_fused / compare_fused_at(x: Row, y: Row, er: &[f32], br: &[f64], r: &RowNorm, v: &mut [f32], bw: &mut [f64], ahead: Ahead) -> Option<Fused> => fused_impl
 }
 
 /// Working memory of `compare_pair`, allocated once per worker.
@@ -1465,8 +1529,9 @@ pub enum Route {
 /// pass where it holds, else the candidate normalised on its own and
 /// compared by `compare_stored` (rows with infinite divergence, a candidate
 /// whose maximum is far above its anchor). `x`, `er`, `br`, `r` are the
-/// reference row and what `normalise_row` stored for it. Afterwards
-/// `s.blocks` holds the candidate's block sums of exp(y - anchor).
+/// reference row and what `normalise_row` stored for it; `ahead` as in
+/// `compare_fused`. Afterwards `s.blocks` holds the candidate's block sums
+/// of exp(y - anchor).
 pub fn compare_pair(
     x: Row,
     y: Row,
@@ -1474,8 +1539,9 @@ pub fn compare_pair(
     br: &[f64],
     r: &RowNorm,
     s: &mut PairScratch,
+    ahead: Ahead,
 ) -> Result<(Fused, Route), RowFault> {
-    if let Some(f) = compare_fused(x, y, er, br, r, &mut s.v, &mut s.blocks) {
+    if let Some(f) = compare_fused(x, y, er, br, r, &mut s.v, &mut s.blocks, ahead) {
         return Ok((f, Route::Fused));
     }
     two_pass(x, y, er, r, s).map(|f| (f, Route::TwoPass))
@@ -1512,7 +1578,15 @@ pub fn compare_rows(x: &[f32], y: &[f32]) -> Result<(RowNorm, Fused, Route), Row
     let mut br = vec![0f64; norm_blocks(n)];
     let r = normalise_store(x, &mut er, &mut br)?;
     let mut s = PairScratch::new(n);
-    let (f, route) = compare_pair(Row::from_f32(x), Row::from_f32(y), &er, &br, &r, &mut s)?;
+    let (f, route) = compare_pair(
+        Row::from_f32(x),
+        Row::from_f32(y),
+        &er,
+        &br,
+        &r,
+        &mut s,
+        Ahead::NONE,
+    )?;
     Ok((r, f, route))
 }
 
@@ -1604,7 +1678,7 @@ fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> 
     let ys = row::F32Le(bytemuck::cast_slice(&y[..n]));
     let mut e = vec![0f32; n];
     let mut blocks = vec![0f64; norm_blocks(n)];
-    match normalise_any::<L, true, _>(xs, &mut e, &mut blocks) {
+    match normalise_any::<L, true, _>(xs, &mut e, &mut blocks, Ahead::NONE) {
         Ok(r) => floor_sum::<L, _, _>(xs, rx, ys, ry, (1.0 / r.sum) as f32, &e),
         Err(_) => f64::NAN,
     }

@@ -809,6 +809,7 @@ fn fused_at(l: Level, x: &[f32], y: &[f32]) -> (RowNorm, Option<Fused>, Vec<f64>
         &r,
         &mut v,
         &mut bw,
+        Ahead::NONE,
     );
     (r, f, bw)
 }
@@ -1020,6 +1021,28 @@ fn fused_candidate_argmax_takes_the_lowest_tied_column() {
 }
 
 #[test]
+fn ahead_shares_cover_every_line_once_and_nothing_past_the_bytes() {
+    for (len, nb) in [
+        (0, 4),
+        (1, 1),
+        (100, 3),
+        (256_512, 2_004),
+        (4_096, 2_004),
+        (64_000, 1),
+    ] {
+        let mut at = 0;
+        for b in 0..nb {
+            let r = Ahead::share(len, b, nb);
+            assert_eq!(r.start, at, "len {len} nb {nb} block {b}");
+            assert!(r.end <= len && r.start <= r.end);
+            assert!(r.start % Ahead::LINE == 0 || r.start == len);
+            at = r.end;
+        }
+        assert_eq!(at, len, "len {len} nb {nb}");
+    }
+}
+
+#[test]
 fn fused_pass_reads_every_stored_format_exactly() {
     // The same values stored as f32, f16 and bf16 bytes give the same bits
     // as the f32 row (widening is exact).
@@ -1058,11 +1081,13 @@ fn fused_pass_reads_every_stored_format_exactly() {
         for l in levels() {
             let mut er = vec![0f32; n];
             let mut br = vec![0f64; norm_blocks(n)];
-            let r = normalise_row_at(l, xr, &mut er, &mut br).unwrap();
+            // With bytes to pull ahead (the other row): a hint only, the
+            // same bits as without.
+            let r = normalise_row_at(l, xr, &mut er, &mut br, Ahead(&yb)).unwrap();
             let r32 = normalise_store_at(l, &x, &mut vec![0f32; n], &mut br.clone()).unwrap();
             assert_eq!(r, r32, "{} bf16={bf}", l.name());
             let (mut v, mut bw) = (vec![0f32; n], vec![0f64; norm_blocks(n)]);
-            let got = compare_fused_at(l, xr, yr, &er, &br, &r, &mut v, &mut bw);
+            let got = compare_fused_at(l, xr, yr, &er, &br, &r, &mut v, &mut bw, Ahead(&xb));
             assert_eq!(got, fused_at(l, &x, &y).1, "{} bf16={bf}", l.name());
         }
     }
@@ -1140,7 +1165,7 @@ fn passes_at(l: Level, x: Row, y: Row) -> Vec<u64> {
     let mut er = vec![0f32; n];
     let mut br = vec![0f64; norm_blocks(n)];
     let mut out: Vec<u64> = Vec::new();
-    let r = match normalise_row_at(l, x, &mut er, &mut br) {
+    let r = match normalise_row_at(l, x, &mut er, &mut br, Ahead::NONE) {
         Ok(r) => r,
         Err(f) => return vec![f as u64],
     };
@@ -1159,7 +1184,7 @@ fn passes_at(l: Level, x: Row, y: Row) -> Vec<u64> {
     assert_eq!(r2, r, "normalise without storing differs");
     let mut v = vec![0f32; n];
     let mut bw = vec![0f64; norm_blocks(n)];
-    match compare_fused_at(l, x, y, &er, &br, &r, &mut v, &mut bw) {
+    match compare_fused_at(l, x, y, &er, &br, &r, &mut v, &mut bw, Ahead::NONE) {
         Some(f) => {
             out.extend(
                 [

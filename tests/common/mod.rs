@@ -137,8 +137,14 @@ pub fn random_pair(rows: usize, vocab: usize, prompts: usize, noise: f64, seed: 
 }
 
 pub fn klgauge(args: &[&str]) -> Output {
+    klgauge_env(args, &[])
+}
+
+/// `klgauge` with extra environment variables.
+pub fn klgauge_env(args: &[&str], env: &[(&str, &str)]) -> Output {
     Command::new(env!("CARGO_BIN_EXE_klgauge"))
         .args(args)
+        .envs(env.iter().copied())
         .output()
         .expect("run klgauge")
 }
