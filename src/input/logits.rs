@@ -498,37 +498,46 @@ impl Shard {
         })
     }
 
-    /// Touches 8 MiB of the shard's rows through the map, from the middle
-    /// on, and counts the page faults this thread took: true where a fault
-    /// mapped 256 KiB or more on average. Measured here: 1.6 MiB per fault
-    /// where the page cache holds large pieces, 64 KiB where it holds 4 KiB
-    /// pages (the kernel maps a 64 KiB window around each fault). Not from
-    /// the front: read-ahead starts a file in small pieces and grows them
-    /// (74 KiB per fault over the first 8 MiB of the same file). Where the
-    /// count is unavailable (not Linux), or the shard holds under 1 MiB
-    /// (either way is cheap), positioned reads.
+    /// Touches 8 MiB of the shard's rows through the map, in eight pieces
+    /// spread over the shard, and counts the page faults this thread took:
+    /// true where a fault mapped 256 KiB or more on average. Measured here
+    /// on 8 MiB pieces: 1.6 MiB per fault where the page cache holds the
+    /// file in large pieces, 64 KiB where it holds 4 KiB pages (the kernel
+    /// maps a 64 KiB window around each fault), and anything between on
+    /// files whose cache was built partly one way, partly the other (the
+    /// front of a file that was read from disk: read-ahead starts small).
+    /// Hence pieces spread over the whole shard. Where the count is
+    /// unavailable (not Linux), or the shard holds under 1 MiB (either way
+    /// is cheap), positioned reads.
     fn map_streams_cheaply(&self, es: usize) -> bool {
-        const PROBE: usize = 8 << 20;
+        const PIECES: usize = 8;
+        const PIECE: usize = 1 << 20;
         const PER_FAULT: usize = 256 << 10;
         let total = self.rows * self.stride * es;
-        let len = total.min(PROBE);
         let Some(before) = thread_faults() else {
             return false;
         };
-        if len < 1 << 20 {
+        if total < PIECE {
             return false;
         }
-        let from = self.logits_start + (total - len) / 2;
-        let bytes = &self.file.map[from..from + len];
+        let page = page_size();
+        let mut touched = 0;
         let mut x = 0u8;
-        for i in (0..len).step_by(page_size()) {
-            // SAFETY: i < len, inside the slice; a volatile read so that the
-            // touch is not optimised away.
-            x ^= unsafe { std::ptr::read_volatile(bytes.as_ptr().add(i)) };
+        for k in 0..PIECES {
+            // Piece k starts at (2k + 1) / 16 of the way (the last one ends
+            // inside the shard); pieces overlap on a shard under 8 MiB.
+            let from = ((total - PIECE) * (2 * k + 1) / (2 * PIECES)) / page * page;
+            let bytes = &self.file.map[self.logits_start + from..][..PIECE];
+            for i in (0..PIECE).step_by(page) {
+                // SAFETY: i < PIECE, inside the slice; a volatile read so
+                // that the touch is not optimised away.
+                x ^= unsafe { std::ptr::read_volatile(bytes.as_ptr().add(i)) };
+            }
+            touched += PIECE;
         }
         std::hint::black_box(x);
         match thread_faults() {
-            Some(after) => (after - before).max(1) * PER_FAULT <= len,
+            Some(after) => (after - before).max(1) * PER_FAULT <= touched,
             None => false,
         }
     }
