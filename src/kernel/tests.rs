@@ -1035,7 +1035,7 @@ fn ahead_shares_cover_every_line_once_and_nothing_past_the_bytes() {
             let r = Ahead::share(len, b, nb);
             assert_eq!(r.start, at, "len {len} nb {nb} block {b}");
             assert!(r.end <= len && r.start <= r.end);
-            assert!(r.start % Ahead::LINE == 0 || r.start == len);
+            assert!(r.start.is_multiple_of(Ahead::LINE) || r.start == len);
             at = r.end;
         }
         assert_eq!(at, len, "len {len} nb {nb}");
