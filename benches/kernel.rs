@@ -44,6 +44,22 @@ fn time(budget: f64, mut f: impl FnMut()) -> (f64, f64) {
     (v[0], v[reps / 2])
 }
 
+/// The engine's row: the reference normalised from its stored bytes (pulling
+/// `ahead` toward the cache meanwhile), the candidate compared by the fused
+/// pair pass.
+fn engine_row(
+    l: Level,
+    rx: kernel::Row,
+    ry: kernel::Row,
+    ahead: kernel::Ahead,
+    er: &mut [f32],
+    br: &mut [f64],
+    ps: &mut kernel::PairScratch,
+) {
+    let r = kernel::normalise_row_at(l, black_box(rx), er, br, ahead).unwrap();
+    black_box(kernel::compare_pair(rx, black_box(ry), er, br, &r, ps, kernel::Ahead::NONE).ok());
+}
+
 fn main() {
     let args: Vec<String> = std::env::args()
         .skip(1)
@@ -171,21 +187,7 @@ fn main() {
             ));
         });
         run("fused_row_bf16", &mut || {
-            let r =
-                kernel::normalise_row_at(l, black_box(rx), &mut er3, &mut br, kernel::Ahead::NONE)
-                    .unwrap();
-            black_box(
-                kernel::compare_pair(
-                    rx,
-                    black_box(ry),
-                    &er3,
-                    &br,
-                    &r,
-                    &mut ps,
-                    kernel::Ahead::NONE,
-                )
-                .ok(),
-            );
+            engine_row(l, rx, ry, kernel::Ahead::NONE, &mut er3, &mut br, &mut ps);
         });
         // The same, but each call takes the next of 128 distinct row pairs
         // (64 MiB of bf16 at 128k columns), so the rows come from memory as
@@ -206,20 +208,7 @@ fn main() {
                     kernel::Ahead::NONE
                 };
                 let (rx, ry) = (kernel::Row::Bf16(xb), kernel::Row::Bf16(yb));
-                let r =
-                    kernel::normalise_row_at(l, black_box(rx), &mut er3, &mut br, ahead).unwrap();
-                black_box(
-                    kernel::compare_pair(
-                        rx,
-                        black_box(ry),
-                        &er3,
-                        &br,
-                        &r,
-                        &mut ps,
-                        kernel::Ahead::NONE,
-                    )
-                    .ok(),
-                );
+                engine_row(l, rx, ry, ahead, &mut er3, &mut br, &mut ps);
             });
         }
         let rd = kernel::Rounding {

@@ -136,18 +136,8 @@ struct Run {
     text: String,
 }
 
+/// One run with `env` added to the environment; the reports it wrote, read back.
 fn run(
-    inp: &Inputs,
-    reference: &Path,
-    candidates: &[PathBuf],
-    threads: usize,
-    seed: u64,
-    tag: &str,
-) -> Run {
-    run_env(inp, reference, candidates, threads, seed, tag, &[])
-}
-
-fn run_env(
     inp: &Inputs,
     reference: &Path,
     candidates: &[PathBuf],
@@ -200,9 +190,9 @@ fn run_env(
 #[test]
 fn one_and_two_threads_give_byte_identical_reports() {
     let inp = inputs();
-    let a = run(&inp, &inp.reference, &inp.candidates, 1, 7, "t1");
-    let b = run(&inp, &inp.reference, &inp.candidates, 2, 7, "t2");
-    let c = run(&inp, &inp.reference, &inp.candidates, 2, 7, "t2-again");
+    let a = run(&inp, &inp.reference, &inp.candidates, 1, 7, "t1", &[]);
+    let b = run(&inp, &inp.reference, &inp.candidates, 2, 7, "t2", &[]);
+    let c = run(&inp, &inp.reference, &inp.candidates, 2, 7, "t2-again", &[]);
     // The input did exercise what it was built for.
     let v: serde_json::Value = serde_json::from_str(&a.json).unwrap();
     assert_eq!(v["candidates"].as_array().unwrap().len(), 3);
@@ -222,9 +212,9 @@ fn rows_read_from_the_map_or_by_positioned_reads_give_the_same_report() {
     // How rows are read (chosen per file by measuring page faults, see
     // LogitFile::stored_row) only changes where the bytes come from.
     let inp = inputs();
-    let auto = run(&inp, &inp.reference, &inp.candidates, 2, 7, "io-auto");
+    let auto = run(&inp, &inp.reference, &inp.candidates, 2, 7, "io-auto", &[]);
     for io in ["map", "read"] {
-        let r = run_env(
+        let r = run(
             &inp,
             &inp.reference,
             &inp.candidates,
@@ -241,8 +231,8 @@ fn rows_read_from_the_map_or_by_positioned_reads_give_the_same_report() {
 #[test]
 fn the_seed_moves_only_the_estimators() {
     let inp = inputs();
-    let a = run(&inp, &inp.reference, &inp.candidates[..1], 2, 1, "s1");
-    let b = run(&inp, &inp.reference, &inp.candidates[..1], 2, 2, "s2");
+    let a = run(&inp, &inp.reference, &inp.candidates[..1], 2, 1, "s1", &[]);
+    let b = run(&inp, &inp.reference, &inp.candidates[..1], 2, 2, "s2", &[]);
     let (mut va, mut vb): (serde_json::Value, serde_json::Value) = (
         serde_json::from_str(&a.json).unwrap(),
         serde_json::from_str(&b.json).unwrap(),
@@ -302,8 +292,8 @@ fn shards_in_a_directory_give_the_same_report() {
             None,
         );
     }
-    let a = run(&inp, &inp.reference, &inp.candidates, 2, 3, "whole");
-    let b = run(&inp, &dir, &inp.candidates, 1, 3, "sharded");
+    let a = run(&inp, &inp.reference, &inp.candidates, 2, 3, "whole", &[]);
+    let b = run(&inp, &dir, &inp.candidates, 1, 3, "sharded", &[]);
     assert_eq!(a.csv, b.csv);
     let (whole, sharded) = (s(&inp.reference), s(&dir));
     assert_eq!(
