@@ -384,9 +384,9 @@ impl LogitFile {
     /// fault maps hundreds of kilobytes and the map is the cheaper way (at
     /// 128k bf16 on two threads, 10% less time than reads); where it holds
     /// 4 KiB pages, faults and the kernel's per-page bookkeeping cost more
-    /// than copying (10% more time). `map_streams_cheaply` measures which
-    /// on the file's first rows. `KLGAUGE_IO=map` or `KLGAUGE_IO=read`
-    /// overrides it.
+    /// than copying (10% more time). `map_streams_cheaply` measures which,
+    /// once per shard, when the pass first reads it. `KLGAUGE_IO=map` or
+    /// `KLGAUGE_IO=read` overrides it.
     pub fn stored_row<'a>(&'a self, row: usize, cols: usize, raw: &'a mut Vec<u8>) -> Row<'a> {
         let es = self.dtype.size();
         #[cfg(unix)]
@@ -506,9 +506,12 @@ impl Shard {
     /// maps a 64 KiB window around each fault), and anything between on
     /// files whose cache was built partly one way, partly the other (the
     /// front of a file that was read from disk: read-ahead starts small).
-    /// Hence pieces spread over the whole shard. Where the count is
-    /// unavailable (not Linux), or the shard holds under 1 MiB (either way
-    /// is cheap), positioned reads.
+    /// Hence pieces spread over the whole shard. The touched pages stay
+    /// mapped until the pass releases the rows they hold (see
+    /// `release_before`); on a file not in the page cache the probe reads
+    /// its eight pieces from disk. Where the count is unavailable (not
+    /// Linux), or the shard holds under 1 MiB (either way is cheap),
+    /// positioned reads.
     fn map_streams_cheaply(&self, es: usize) -> bool {
         const PIECES: usize = 8;
         const PIECE: usize = 1 << 20;
