@@ -182,6 +182,44 @@ pub fn any_above<const L: u8>(v: &F, bound: f32) -> bool {
     v.iter().any(|&x| x > bound)
 }
 
+/// Whether any lane of the four chunks is above `bound` (NaN lanes are
+/// not): one answer, and one branch for the caller, per 64 values.
+#[inline(always)]
+pub fn any_above4<const L: u8>(v: [&F; 4], bound: f32) -> bool {
+    #[cfg(target_arch = "x86_64")]
+    if L >= 2 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 2 is only instantiated inside functions compiled with
+        // AVX-512F, called after run-time detection; the loads read the 16
+        // values of each chunk.
+        unsafe {
+            let bd = _mm512_set1_ps(bound);
+            let mut m: __mmask16 = 0;
+            for c in v {
+                m |= _mm512_cmp_ps_mask::<_CMP_GT_OQ>(_mm512_loadu_ps(c.as_ptr()), bd);
+            }
+            return m != 0;
+        }
+    }
+    #[cfg(target_arch = "x86_64")]
+    if L == 1 {
+        use std::arch::x86_64::*;
+        // SAFETY: as in `hsum`.
+        unsafe {
+            let bd = _mm256_set1_ps(bound);
+            let mut m = _mm256_setzero_ps();
+            for c in v {
+                for h in 0..2 {
+                    let x = _mm256_loadu_ps(c.as_ptr().add(8 * h));
+                    m = _mm256_or_ps(m, _mm256_cmp_ps::<_CMP_GT_OQ>(x, bd));
+                }
+            }
+            return _mm256_movemask_ps(m) != 0;
+        }
+    }
+    v.iter().any(|c| c.iter().any(|&x| x > bound))
+}
+
 /// Adds `v` into `acc` lane by lane.
 #[inline(always)]
 pub fn add(acc: &mut F, v: &F) {

