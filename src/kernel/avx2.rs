@@ -94,7 +94,7 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
     let nb = n.div_ceil(NORM_BLOCK);
     let whole = n / NORM_BLOCK;
     assert!(
-        blocks.len() >= n.div_ceil(NORM_BLOCK) && (!STORE || e.len() >= n),
+        blocks.len() >= nb && (!STORE || e.len() >= n),
         "normalise: buffers shorter than the row"
     );
     let mut sums = NormSums {
@@ -299,9 +299,10 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
     ahead: Ahead,
 ) -> f64 {
     let n = x.len();
+    let nb = n.div_ceil(NORM_BLOCK);
     let whole = n / NORM_BLOCK;
     assert!(
-        y.len() == n && er.len() >= n && vbuf.len() >= n && bw.len() >= n.div_ceil(NORM_BLOCK),
+        y.len() == n && er.len() >= n && vbuf.len() >= n && bw.len() >= nb,
         "compare_fused: row or buffer lengths differ"
     );
     let mut vtot = 0f64;
@@ -313,7 +314,6 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
         let short2 = set(SERIES_BELOW * SERIES_BELOW);
         let long2 = set(FUSED_SERIES_BELOW * FUSED_SERIES_BELOW);
         let mut r = Sums::load(s);
-        let nb = n.div_ceil(NORM_BLOCK);
         // b indexes the row's columns as well as `bw`.
         #[allow(clippy::needless_range_loop)]
         for b in 0..nb {

@@ -165,27 +165,10 @@ pub fn all_below<const L: u8>(v: &F, bound: f32) -> bool {
     v.iter().all(|&x| x < bound)
 }
 
-/// Whether some lane exceeds `bound` (NaN lanes do not).
+/// Whether some lane of the chunks exceeds `bound` (NaN lanes do not): one
+/// answer, and one branch for the caller, for all N chunks.
 #[inline(always)]
-pub fn any_above<const L: u8>(v: &F, bound: f32) -> bool {
-    #[cfg(target_arch = "x86_64")]
-    if L >= 1 {
-        use std::arch::x86_64::*;
-        // SAFETY: as in `hsum`.
-        unsafe {
-            let bd = _mm256_set1_ps(bound);
-            let lo = _mm256_cmp_ps::<_CMP_GT_OQ>(_mm256_loadu_ps(v.as_ptr()), bd);
-            let hi = _mm256_cmp_ps::<_CMP_GT_OQ>(_mm256_loadu_ps(v.as_ptr().add(8)), bd);
-            return _mm256_movemask_ps(_mm256_or_ps(lo, hi)) != 0;
-        }
-    }
-    v.iter().any(|&x| x > bound)
-}
-
-/// Whether any lane of the four chunks is above `bound` (NaN lanes are
-/// not): one answer, and one branch for the caller, per 64 values.
-#[inline(always)]
-pub fn any_above4<const L: u8>(v: [&F; 4], bound: f32) -> bool {
+pub fn any_above<const L: u8, const N: usize>(v: [&F; N], bound: f32) -> bool {
     #[cfg(target_arch = "x86_64")]
     if L >= 2 {
         use std::arch::x86_64::*;

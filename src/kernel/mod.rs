@@ -1393,13 +1393,13 @@ fn first_equal<const L: u8, S: Src>(y: S, upto: usize, v: f32) -> usize {
                 y.chunk::<L>(i + 3 * W),
             ]
         };
-        if lanes::any_above4::<L>([&c[0], &c[1], &c[2], &c[3]], below) {
+        if any_above::<L, 4>([&c[0], &c[1], &c[2], &c[3]], below) {
             break;
         }
         i += 4 * W;
     }
     while i + W <= upto {
-        if any_above::<L>(&unsafe { y.chunk::<L>(i) }, below) {
+        if any_above::<L, 1>([&unsafe { y.chunk::<L>(i) }], below) {
             break;
         }
         i += W;
@@ -1781,7 +1781,7 @@ fn top_k_impl<const L: u8>(x: &[f32], k: usize) -> Vec<(u32, f32)> {
     let tail_at = x.len() - chunks.remainder().len();
     for (ci, c) in chunks.enumerate() {
         // Once the list is full, a chunk with nothing above its last entry is skipped whole.
-        if best.len() == k && !any_above::<L>(load(c), best[k - 1].1) {
+        if best.len() == k && !any_above::<L, 1>([load(c)], best[k - 1].1) {
             continue;
         }
         for (j, &v) in c.iter().enumerate() {
