@@ -393,7 +393,7 @@ impl LogitFile {
         {
             use std::os::unix::fs::FileExt;
             let s = self.shard_of(row);
-            if let (Some(f), false) = (s.reader.as_ref(), s.streams_from_map(es)) {
+            if let Some(f) = s.positioned_reader(es) {
                 let start = s.logits_start + (row - s.first_row) * s.stride * es;
                 raw.resize(cols * es, 0);
                 if f.read_exact_at(raw, start as u64).is_ok() {
@@ -410,11 +410,8 @@ impl LogitFile {
     /// reads this file from the map; else none (a positioned read copies
     /// the row into cache anyway).
     pub fn ahead(&self, row: usize, cols: usize) -> Ahead<'_> {
-        if row >= self.rows {
-            return Ahead::NONE;
-        }
         let s = self.shard_of(row);
-        if s.reader.is_some() && !s.streams_from_map(self.dtype.size()) {
+        if s.positioned_reader(self.dtype.size()).is_some() {
             return Ahead::NONE;
         }
         Ahead(self.row_bytes(row, cols))
@@ -489,6 +486,18 @@ impl LogitFile {
 }
 
 impl Shard {
+    /// The file the streaming pass reads this shard's rows from with
+    /// positioned reads, or None where it reads them from the map: where
+    /// the file could not be opened for reads, off Unix, or where
+    /// `streams_from_map` chose the map.
+    fn positioned_reader(&self, es: usize) -> Option<&std::fs::File> {
+        if !cfg!(unix) {
+            return None;
+        }
+        let f = self.reader.as_ref()?;
+        (!self.streams_from_map(es)).then_some(f)
+    }
+
     /// Whether the streaming pass reads this shard from the map (see
     /// `LogitFile::stored_row`); the first call decides.
     fn streams_from_map(&self, es: usize) -> bool {
