@@ -181,16 +181,16 @@ unsafe fn g_series8<const LONG: bool>(d: __m256) -> __m256 {
         let k = _mm256_set1_ps;
         let ma = |a: __m256, b: __m256, c: __m256| _mm256_fmadd_ps(a, b, c);
         let d2 = _mm256_mul_ps(d, d);
-        let d4 = _mm256_mul_ps(d2, d2);
         let p = if LONG {
             let c = &G_LONG;
+            let d4 = _mm256_mul_ps(d2, d2);
             let lo = ma(d2, ma(k(c[3]), d, k(c[2])), ma(k(c[1]), d, k(c[0])));
             let hi = ma(d2, ma(k(c[7]), d, k(c[6])), ma(k(c[5]), d, k(c[4])));
             ma(d4, hi, lo)
         } else {
             let c = &G_SHORT;
-            let lo = ma(d2, ma(k(c[3]), d, k(c[2])), ma(k(c[1]), d, k(c[0])));
-            ma(d4, ma(k(c[5]), d, k(c[4])), lo)
+            let mid = ma(d2, ma(k(c[5]), d, k(c[4])), ma(k(c[3]), d, k(c[2])));
+            ma(d2, mid, ma(k(c[1]), d, k(c[0])))
         };
         _mm256_mul_ps(d2, p)
     }
