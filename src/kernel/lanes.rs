@@ -75,6 +75,24 @@ pub fn hsum64(v: &[f64; W]) -> f64 {
 #[inline(always)]
 pub fn widen_add<const L: u8>(acc: &mut [f64; W], v: &F) {
     #[cfg(target_arch = "x86_64")]
+    if L >= 2 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 2 is only instantiated inside functions compiled with
+        // AVX-512F, called after run-time detection; the loads and stores
+        // stay inside `v` and `acc`. The lanes are read as one register: read
+        // in four quarters, LLVM keeps a running `v` in four 128-bit
+        // registers and splits every addition into it four ways.
+        unsafe {
+            let f = _mm512_loadu_ps(v.as_ptr());
+            let lo = _mm512_cvtps_pd(_mm512_castps512_ps256(f));
+            let hi = _mm512_cvtps_pd(_mm256_castpd_ps(_mm512_extractf64x4_pd::<1>(_mm512_castps_pd(f))));
+            let a = acc.as_mut_ptr();
+            _mm512_storeu_pd(a, _mm512_add_pd(_mm512_loadu_pd(a), lo));
+            _mm512_storeu_pd(a.add(8), _mm512_add_pd(_mm512_loadu_pd(a.add(8)), hi));
+        }
+        return;
+    }
+    #[cfg(target_arch = "x86_64")]
     if L >= 1 {
         use std::arch::x86_64::*;
         // SAFETY: as in `hsum`; the loads and stores stay inside `v` and `acc`.
