@@ -659,10 +659,9 @@ const G_LONG: [f32; 8] = [
 /// fused pass used to be bound by that chain: 8% faster per row on AVX-512
 /// than Horner's scheme, within noise on AVX2). The short form then takes
 /// the pairs by Horner's scheme in d^2, which has the same three steps as
-/// Estrin's (powers d^2 and d^4) without forming d^4: one multiply fewer on
-/// the multiply-add units that now bound the pass (`compare_fused` 1.03x,
-/// fastest of ten runs side by side). The long form keeps d^4, which saves
-/// it a fourth step.
+/// Estrin's (powers d^2 and d^4) without forming d^4: one multiply fewer
+/// (`compare_fused` 1.03x on AVX-512, fastest of ten alternating runs of
+/// each build). The long form keeps d^4, which saves it a fourth step.
 #[inline(always)]
 fn g_series<const L: u8, const LONG: bool>(d: f32) -> f32 {
     let ma = mul_add::<L>;
