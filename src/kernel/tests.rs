@@ -855,6 +855,15 @@ fn fused_at(l: Level, x: &[f32], y: &[f32]) -> (RowNorm, Option<Fused>, Vec<f64>
     (r, f, bw)
 }
 
+/// The fused pass at level `l` where it holds the row, else the pair route
+/// (what `compare_pair` would answer).
+fn fused_or_pair_at(l: Level, x: &[f32], y: &[f32]) -> Fused {
+    match fused_at(l, x, y).1 {
+        Some(f) => f,
+        None => compare_rows(x, y).unwrap().1,
+    }
+}
+
 #[test]
 fn fused_pass_matches_f64_near_and_far() {
     // From near-identical rows (every column in the series range) to rows
@@ -1155,12 +1164,7 @@ fn fused_pass_keeps_precision_when_the_mass_sits_off_the_rows_centre() {
         let (kl, kr) = reference_cancellation_free(&x, &y);
         let (_, _, tv, _, hq) = reference(&x, &y);
         for l in levels() {
-            let (_, f, _) = fused_at(l, &x, &y);
-            let f = match f {
-                Some(f) => f,
-                None => compare_rows(&x, &y).unwrap().1,
-            };
-
+            let f = fused_or_pair_at(l, &x, &y);
             let what = format!("{} shift={shift}", l.name());
             assert_pair_close(&what, &f.m, (kl, kr, tv), 1e-4, 0.0, 1e-4);
             assert!(
@@ -1185,12 +1189,8 @@ fn a_candidate_with_little_mass_where_the_reference_has_all_of_it() {
     let (kl, kr, tv, _, hq) = reference(&x, &y);
     assert!(tv < 1.0 && kl > 3.0, "the float64 reference itself: tv {tv}, kl {kl}");
     for l in levels() {
-        let (_, f, _) = fused_at(l, &x, &y);
-        let f = match f {
-            Some(f) => f,
-            None => compare_rows(&x, &y).unwrap().1,
-        };
-        let what = format!("{}", l.name());
+        let f = fused_or_pair_at(l, &x, &y);
+        let what = l.name().to_string();
         assert_pair_close(&what, &f.m, (kl, kr, tv), 1e-6, 0.0, 1e-6);
         assert!(close(f.c.entropy, hq, 1e-6, 1e-12), "{what}: H {} vs {hq}", f.c.entropy);
     }
