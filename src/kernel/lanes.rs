@@ -85,7 +85,9 @@ pub fn widen_add<const L: u8>(acc: &mut [f64; W], v: &F) {
         unsafe {
             let f = _mm512_loadu_ps(v.as_ptr());
             let lo = _mm512_cvtps_pd(_mm512_castps512_ps256(f));
-            let hi = _mm512_cvtps_pd(_mm256_castpd_ps(_mm512_extractf64x4_pd::<1>(_mm512_castps_pd(f))));
+            let hi = _mm512_cvtps_pd(_mm256_castpd_ps(_mm512_extractf64x4_pd::<1>(
+                _mm512_castps_pd(f),
+            )));
             let a = acc.as_mut_ptr();
             _mm512_storeu_pd(a, _mm512_add_pd(_mm512_loadu_pd(a), lo));
             _mm512_storeu_pd(a.add(8), _mm512_add_pd(_mm512_loadu_pd(a.add(8)), hi));

@@ -1273,9 +1273,8 @@ fn fused_src<const L: u8, SX: Src, SY: Src>(
         // pass counts as lossy too.
         let (f, u, mean_p) = got;
         let m = &f.m;
-        let lossy = 0.5 * u * u > 100.0 * m.kl.min(m.kl_reverse)
-            || u.abs() > 100.0 * m.tv
-            || u < -0.75;
+        let lossy =
+            0.5 * u * u > 100.0 * m.kl.min(m.kl_reverse) || u.abs() > 100.0 * m.tv || u < -0.75;
         if !lossy {
             return Some(f);
         }

@@ -1184,15 +1184,34 @@ fn a_candidate_with_little_mass_where_the_reference_has_all_of_it() {
     // normaliser Z came out of a cancellation (sum v = -S to 8 digits) and
     // the fused pass gave TV 1.13 and a KL 8% low. Reference: the float64
     // textbook definitions (`reference`), at every level.
-    let x: [f32; 5] = [0.610_892, -0.091_823_46, 1.041_949_7, 20.551_512, -7.060_749];
-    let y: [f32; 5] = [0.610_891_4, -0.091_823_46, 1.041_949_7, -1.284_469_5, 0.617_406_3];
+    let x: [f32; 5] = [
+        0.610_892,
+        -0.091_823_46,
+        1.041_949_7,
+        20.551_512,
+        -7.060_749,
+    ];
+    let y: [f32; 5] = [
+        0.610_891_4,
+        -0.091_823_46,
+        1.041_949_7,
+        -1.284_469_5,
+        0.617_406_3,
+    ];
     let (kl, kr, tv, _, hq) = reference(&x, &y);
-    assert!(tv < 1.0 && kl > 3.0, "the float64 reference itself: tv {tv}, kl {kl}");
+    assert!(
+        tv < 1.0 && kl > 3.0,
+        "the float64 reference itself: tv {tv}, kl {kl}"
+    );
     for l in levels() {
         let f = fused_or_pair_at(l, &x, &y);
         let what = l.name().to_string();
         assert_pair_close(&what, &f.m, (kl, kr, tv), 1e-6, 0.0, 1e-6);
-        assert!(close(f.c.entropy, hq, 1e-6, 1e-12), "{what}: H {} vs {hq}", f.c.entropy);
+        assert!(
+            close(f.c.entropy, hq, 1e-6, 1e-12),
+            "{what}: H {} vs {hq}",
+            f.c.entropy
+        );
     }
     let (_, f, _) = compare_rows(&x, &y).unwrap();
     assert_pair_close("compare_rows", &f.m, (kl, kr, tv), 1e-6, 0.0, 1e-6);
