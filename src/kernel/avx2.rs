@@ -21,7 +21,7 @@ use super::exp::{exp_table8, ExpK8};
 use super::lanes::{hsum, hsum64, widen_add, F, W};
 use super::row::Src;
 use super::{
-    exp_block, fused_block, fused_step, Ahead, FusedConsts, FusedLanes, FUSED_CARRY,
+    exp_block, fused_block, fused_step, norm_blocks, Ahead, FusedConsts, FusedLanes, FUSED_CARRY,
     FUSED_SERIES_BELOW, G_LONG, G_SHORT, NORM_BLOCK, SERIES_BELOW, T_EVERY,
 };
 use std::arch::x86_64::*;
@@ -91,7 +91,7 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
     ahead: Ahead,
 ) -> (f64, f64) {
     let n = x.len();
-    let nb = n.div_ceil(NORM_BLOCK);
+    let nb = norm_blocks(n);
     let whole = n / NORM_BLOCK;
     assert!(
         blocks.len() >= nb && (!STORE || e.len() >= n),
@@ -299,7 +299,7 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
     ahead: Ahead,
 ) -> f64 {
     let n = x.len();
-    let nb = n.div_ceil(NORM_BLOCK);
+    let nb = norm_blocks(n);
     let whole = n / NORM_BLOCK;
     assert!(
         y.len() == n && er.len() >= n && vbuf.len() >= n && bw.len() >= nb,
