@@ -4,6 +4,7 @@ time, one per core, and the ratio of their times per function.
 
     python scripts/bench/kernel_ab.py OLD_BENCH NEW_BENCH [--rounds 6]
         [--only normalise_store,compare_fused_bf16] [--args "128256 avx2"]
+        [--alternate]
 
 OLD_BENCH and NEW_BENCH are copies of the benchmark binary that
 `cargo bench --bench kernel --no-run` prints (target/release/deps/kernel-*),
@@ -21,6 +22,13 @@ It prints, per function, the median time of each build (microseconds, the
 benchmark's own median per round) and the median of the per-round ratios
 old / new: above 1 means the new build is faster. A measuring tool, not a
 test: it asserts nothing.
+
+With --alternate the builds run one after the other on the first core
+instead, the order swapped each round, and it compares each build's
+fastest time over all rounds (the benchmark's own minimum, the run least
+disturbed by the machine): no shared cache or memory between the two, at
+the price of their not sharing the same seconds. The "fastest of N
+alternating runs" figures in DEVELOPERS.md come from this mode.
 """
 import argparse
 import os
@@ -29,18 +37,39 @@ import subprocess
 import sys
 
 
-def parse(out):
-    """{function: median microseconds} from the benchmark's table."""
+def parse(out, column=3):
+    """{function: microseconds} from the benchmark's table: its median
+    (column 3) or its minimum (column 2)."""
     got = {}
     for line in out.splitlines():
         p = line.split()
         # level, function, min us, median us, col/ns
         if len(p) == 5:
             try:
-                got[p[1]] = float(p[3])
+                got[p[1]] = float(p[column])
             except ValueError:
                 pass
     return got
+
+
+def alternate(a, only):
+    """--alternate: one build after the other on one core; fastest of all rounds."""
+    core = sorted(os.sched_getaffinity(0))[0]
+    best = {"old": {}, "new": {}}
+    for r in range(a.rounds):
+        order = (("old", a.old), ("new", a.new)) if r % 2 == 0 else (("new", a.new), ("old", a.old))
+        for k, b in order:
+            out = subprocess.run(["taskset", "-c", str(core), b] + a.args.split(),
+                                 capture_output=True, text=True, check=True).stdout
+            for f, t in parse(out, column=2).items():
+                if not only or f in only:
+                    best[k][f] = min(t, best[k].get(f, t))
+    print(f"{a.rounds} rounds, builds one after the other on core {core} (order swapped each round)")
+    print(f"{'function':26s} {'old min us':>11s} {'new min us':>11s}  old/new of the fastest")
+    for f in best["old"]:
+        if f in best["new"]:
+            o, n = best["old"][f], best["new"][f]
+            print(f"{f:26s} {o:11.1f} {n:11.1f}  {o / n:.3f}")
 
 
 def main():
@@ -51,11 +80,15 @@ def main():
     ap.add_argument("--only", default="", help="comma-separated function names")
     ap.add_argument("--args", default="128256",
                     help="the benchmark's arguments, e.g. \"128256 avx2\" (vocabulary, level)")
+    ap.add_argument("--alternate", action="store_true",
+                    help="one build after the other on one core, fastest of all rounds")
     a = ap.parse_args()
+    only = [f for f in a.only.split(",") if f]
+    if a.alternate:
+        return alternate(a, only)
     if len(os.sched_getaffinity(0)) < 2:
         sys.exit("kernel_ab.py needs two CPUs")
     cores = sorted(os.sched_getaffinity(0))[:2]
-    only = [f for f in a.only.split(",") if f]
     times = {"old": {}, "new": {}}
     ratios = {}
     for r in range(a.rounds):
