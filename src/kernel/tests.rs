@@ -864,6 +864,31 @@ fn fused_or_pair_at(l: Level, x: &[f32], y: &[f32]) -> Fused {
     }
 }
 
+/// At every level, what `compare_pair` would answer (`fused_or_pair_at`)
+/// against float64 values: KL both ways and TV within `pair` = (relative,
+/// absolute, TV relative) as `assert_pair_close` takes them, the
+/// candidate's entropy `hq` within `h` = (relative, absolute).
+fn assert_every_level_close(
+    what: &str,
+    x: &[f32],
+    y: &[f32],
+    want: (f64, f64, f64),
+    hq: f64,
+    pair: (f64, f64, f64),
+    h: (f64, f64),
+) {
+    for l in levels() {
+        let f = fused_or_pair_at(l, x, y);
+        let what = format!("{} {what}", l.name());
+        assert_pair_close(&what, &f.m, want, pair.0, pair.1, pair.2);
+        assert!(
+            close(f.c.entropy, hq, h.0, h.1),
+            "{what}: H(q) {} vs {hq}",
+            f.c.entropy
+        );
+    }
+}
+
 #[test]
 fn fused_pass_matches_f64_near_and_far() {
     // From near-identical rows (every column in the series range) to rows
@@ -1163,16 +1188,16 @@ fn fused_pass_keeps_precision_when_the_mass_sits_off_the_rows_centre() {
             .collect();
         let (kl, kr) = reference_cancellation_free(&x, &y);
         let (_, _, tv, _, hq) = reference(&x, &y);
-        for l in levels() {
-            let f = fused_or_pair_at(l, &x, &y);
-            let what = format!("{} shift={shift}", l.name());
-            assert_pair_close(&what, &f.m, (kl, kr, tv), 1e-4, 0.0, 1e-4);
-            assert!(
-                close(f.c.entropy, hq, 1e-5, 1e-9),
-                "{what}: H {} vs {hq}",
-                f.c.entropy
-            );
-        }
+        let what = format!("shift={shift}");
+        assert_every_level_close(
+            &what,
+            &x,
+            &y,
+            (kl, kr, tv),
+            hq,
+            (1e-4, 0.0, 1e-4),
+            (1e-5, 1e-9),
+        );
     }
 }
 
@@ -1203,16 +1228,15 @@ fn a_candidate_with_little_mass_where_the_reference_has_all_of_it() {
         tv < 1.0 && kl > 3.0,
         "the float64 reference itself: tv {tv}, kl {kl}"
     );
-    for l in levels() {
-        let f = fused_or_pair_at(l, &x, &y);
-        let what = l.name().to_string();
-        assert_pair_close(&what, &f.m, (kl, kr, tv), 1e-6, 0.0, 1e-6);
-        assert!(
-            close(f.c.entropy, hq, 1e-6, 1e-12),
-            "{what}: H {} vs {hq}",
-            f.c.entropy
-        );
-    }
+    assert_every_level_close(
+        "",
+        &x,
+        &y,
+        (kl, kr, tv),
+        hq,
+        (1e-6, 0.0, 1e-6),
+        (1e-6, 1e-12),
+    );
     let (_, f, _) = compare_rows(&x, &y).unwrap();
     assert_pair_close("compare_rows", &f.m, (kl, kr, tv), 1e-6, 0.0, 1e-6);
 }
@@ -1550,14 +1574,5 @@ fn the_series_and_the_direct_form_use_the_same_anchor() {
         36.615063, 24.790644, 22.09608, 17.623693, 16.728535, 21.935345, 59.801224, 16.86839,
     ];
     let (kl, kr, tv, _, hq) = reference(&x, &y);
-    for l in levels() {
-        let f = fused_or_pair_at(l, &x, &y);
-        let what = l.name().to_string();
-        assert_pair_close(&what, &f.m, (kl, kr, tv), 1e-5, 0.0, 1e-5);
-        assert!(
-            close(f.c.entropy, hq, 1e-5, 0.0),
-            "{what}: H(q) {} vs {hq}",
-            f.c.entropy
-        );
-    }
+    assert_every_level_close("", &x, &y, (kl, kr, tv), hq, (1e-5, 0.0, 1e-5), (1e-5, 0.0));
 }
