@@ -29,8 +29,8 @@ measured in the same run.
 """
 import argparse
 import json
-import resource
 import os
+import resource
 import shutil
 import statistics
 import subprocess
