@@ -30,7 +30,6 @@ measured in the same run.
 import argparse
 import json
 import os
-import resource
 import shutil
 import statistics
 import subprocess
@@ -58,25 +57,10 @@ GROUPS = [
 ]
 
 
-def run_timed(cmd):
-    """Runs cmd unwatched; returns (wall s, stdout)."""
-    t0 = time.perf_counter()
-    p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    out, err = p.communicate()
-    wall = time.perf_counter() - t0
-    if p.returncode not in (0, 1):
-        sys.exit(f"{' '.join(cmd)} failed ({p.returncode}):\n{err}")
-    return wall, out
-
-
-def children_cpu():
-    """User + system CPU seconds of all reaped children so far."""
-    r = resource.getrusage(resource.RUSAGE_CHILDREN)
-    return r.ru_utime + r.ru_stime
-
-
-def run_polled(cmd, env=None):
-    """Runs cmd; returns (wall s, user+sys CPU s, peak RssAnon KiB, peak RssFile KiB, stdout)."""
+def run_cmd(cmd, watch=False, env=None):
+    """Runs cmd; returns (wall s, user+sys CPU s, peak RssAnon KiB, peak RssFile KiB, stdout).
+    The peaks are polled from /proc/PID/status every 2 ms where `watch`, else 0:
+    the polling takes CPU from the run (see the module's docstring)."""
     t0 = time.perf_counter()
     p = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env, text=True)
     peak = {"RssAnon": 0, "RssFile": 0}
@@ -96,7 +80,8 @@ def run_polled(cmd, env=None):
             stop.wait(0.002)
 
     th = threading.Thread(target=poll, daemon=True)
-    th.start()
+    if watch:
+        th.start()
     out_chunks = []
     reader = threading.Thread(target=lambda: out_chunks.append(p.stdout.read()), daemon=True)
     reader.start()
@@ -105,7 +90,8 @@ def run_polled(cmd, env=None):
     p.returncode = os.waitstatus_to_exitcode(status)
     wall = time.perf_counter() - t0
     stop.set()
-    th.join()
+    if watch:
+        th.join()
     reader.join()
     out = out_chunks[0] if out_chunks else ""
     if p.returncode not in (0, 1):
@@ -183,7 +169,7 @@ def main():
             warm(files)
             for label, nc, threads, tool in runs:
                 if tool == "k":
-                    _, _, anon, rfile, _ = run_polled(command(nc, threads, tool))
+                    _, _, anon, rfile, _ = run_cmd(command(nc, threads, tool), watch=True)
                     memory[label] = (anon, rfile)
             times = {label: [] for label, *_ in runs}
             for _ in range(a.rounds):
@@ -192,9 +178,7 @@ def main():
                 # meets a cold file measures the disk, not the tool.
                 warm(files)
                 for label, nc, threads, tool in runs:
-                    cpu0 = children_cpu()
-                    wall, out = run_timed(command(nc, threads, tool))
-                    cpu = children_cpu() - cpu0
+                    wall, cpu, _, _, out = run_cmd(command(nc, threads, tool))
                     if tool != "k":
                         wall = json.loads(out.strip().splitlines()[-1])["seconds"]
                     anon, rfile = memory.get(label, (0, 0))
