@@ -106,6 +106,34 @@ def warm(paths):
                 pass
 
 
+def kib_per_fault(paths):
+    """KiB the kernel maps per page fault when the files are touched through
+    a map, page by page: how the page cache holds them, which moves a run
+    of klgauge by a third or more (see DEVELOPERS.md, "AVX-512 machine, at
+    4c9646e"). 2,048 means whole 2 MiB pieces mapped at once, 64 means 4 KiB
+    pages (the kernel maps a 64 KiB window around each fault). Returns None
+    where the system does not count faults."""
+    try:
+        import mmap
+        import resource
+    except ImportError:
+        return None
+    page = mmap.PAGESIZE
+    before = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+    total = 0
+    for p in paths:
+        with open(p, "rb") as f:
+            m = mmap.mmap(f.fileno(), 0, prot=mmap.PROT_READ)
+            try:
+                for i in range(0, len(m), page):
+                    m[i]
+                total += len(m)
+            finally:
+                m.close()
+    faults = resource.getrusage(resource.RUSAGE_SELF).ru_minflt - before
+    return total / max(faults, 1) / 1024 if faults >= 0 else None
+
+
 def as_read_from_disk(paths):
     """Drops the just-written files from the page cache and reads them back.
 
@@ -171,6 +199,7 @@ def main():
                 if tool == "k":
                     _, _, anon, rfile, _ = run_cmd(command(nc, threads, tool), watch=True)
                     memory[label] = (anon, rfile)
+            cache_before = kib_per_fault(files)
             times = {label: [] for label, *_ in runs}
             for _ in range(a.rounds):
                 # Read the files again before every round: a virtual machine's
@@ -183,8 +212,12 @@ def main():
                         wall = json.loads(out.strip().splitlines()[-1])["seconds"]
                     anon, rfile = memory.get(label, (0, 0))
                     times[label].append((wall, cpu, anon, rfile))
+            cache_after = kib_per_fault(files)
             print(f"\n{name}: {a.rows} rows x {vocab} {dtype}")
-            group = {}
+            if cache_before is not None and cache_after is not None:
+                print(f"  page cache: {cache_before:,.0f} KiB mapped per fault before the rounds, {cache_after:,.0f} after"
+                      " (2,048: whole 2 MiB pieces; 64: 4 KiB pages)")
+            group = {"page_cache_kib_per_fault": [cache_before, cache_after]}
             for label, nc, threads, tool in runs:
                 ts = times[label]
                 sec = statistics.median(t[0] for t in ts)
