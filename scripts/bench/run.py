@@ -134,6 +134,34 @@ def kib_per_fault(paths):
     return total / max(faults, 1) / 1024 if faults >= 0 else None
 
 
+def page_cache_reclaim():
+    """A line naming the proactive reclaim of this machine's page cache, or
+    None. Some virtual machines run DAMON with a "pageout" scheme that drops
+    page cache left untouched for about a minute; files read back after that
+    come back in pieces of other sizes, which moves klgauge's runs (see
+    kib_per_fault)."""
+    root = "/sys/kernel/mm/damon/admin/kdamonds"
+    try:
+        for k in sorted(os.listdir(root)):
+            if not k.isdigit():
+                continue
+            with open(os.path.join(root, k, "state")) as f:
+                if f.read().strip() != "on":
+                    continue
+            ctxs = os.path.join(root, k, "contexts")
+            for c in sorted(x for x in os.listdir(ctxs) if x.isdigit()):
+                schemes = os.path.join(ctxs, c, "schemes")
+                for sc in sorted(x for x in os.listdir(schemes) if x.isdigit()):
+                    with open(os.path.join(schemes, sc, "action")) as f:
+                        if f.read().strip() == "pageout":
+                            return ("this machine pages out idle memory (DAMON kdamond "
+                                    f"{k}, action pageout): how the page cache holds the files can differ "
+                                    "from one run of this script to the next")
+    except OSError:
+        pass
+    return None
+
+
 def as_read_from_disk(paths):
     """Drops the just-written files from the page cache and reads them back.
 
@@ -176,6 +204,9 @@ def main():
     print(f"klgauge {a.klgauge}; torch via {a.python}; {a.rows} rows; {a.rounds} rounds; "
           f"{os.cpu_count()} CPUs; load average at start {os.getloadavg()[0]:.2f}")
     print("klgauge: whole process, default metrics and --samples; torch: its streaming loop only")
+    reclaim = page_cache_reclaim()
+    if reclaim:
+        print(f"note: {reclaim}")
     results = {}
     try:
         for name, dtype, vocab, ncand, runs in groups:
