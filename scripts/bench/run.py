@@ -110,7 +110,7 @@ def kib_per_fault(paths):
     """KiB the kernel maps per page fault when the files are touched through
     a map, page by page: how the page cache holds them, which moves a run
     of klgauge by a third or more (see DEVELOPERS.md, "AVX-512 machine, at
-    4c9646e"). 2,048 means whole 2 MiB pieces mapped at once, 64 means 4 KiB
+    a011e0d"). 2,048 means whole 2 MiB pieces mapped at once, 64 means 4 KiB
     pages (the kernel maps a 64 KiB window around each fault). Returns None
     where the system does not count faults."""
     try:
