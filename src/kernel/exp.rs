@@ -43,7 +43,7 @@ const Q3: f32 = 1.0 / 6.0;
 /// The bits of ROUND: tt's bits minus these are the integer k.
 const ROUND_BITS: i32 = 0x4B40_0000;
 /// 2^(j/16) rounded to f32 (checked against f64 `powf` in the tests).
-static EXP2_FRAC: [f32; 16] = [
+const EXP2_FRAC: [f32; 16] = [
     1.0,
     1.044_273_7,
     1.090_507_7,
@@ -61,6 +61,23 @@ static EXP2_FRAC: [f32; 16] = [
     1.834_008_1,
     1.915_206_6,
 ];
+
+/// The vector loops' table: the bits of 2^(j/16) less j << 19, so that adding
+/// tt's bits shifted left by 19 gives the bits of 2^(j/16) 2^n in one integer
+/// addition. tt's bits are ROUND_BITS + k with k = 16 n + j; shifted by 19,
+/// ROUND_BITS leaves no bits and k gives (n << 23) + (j << 19): n in the
+/// exponent field, j's part cancelled by the entry. One shift fewer than
+/// taking n = k >> 4 first (`exp_step`; both vector builds). The values are
+/// never used as numbers, only permuted and added to as integers.
+static EXP2_ENTRY: [f32; 16] = {
+    let mut a = [0f32; 16];
+    let mut j = 0;
+    while j < 16 {
+        a[j] = f32::from_bits(EXP2_FRAC[j].to_bits().wrapping_sub((j as u32) << 19));
+        j += 1;
+    }
+    a
+};
 
 pub const EXP_UNDERFLOW: f32 = -87.3;
 const EXP_CLAMP_HI: f32 = 88.3;
@@ -185,8 +202,8 @@ impl ExpK8 {
             [-T_LN2_LO; 8],
             [Q3; 8],
             [Q2; 8],
-            EXP2_FRAC[..8].try_into().unwrap(),
-            EXP2_FRAC[8..].try_into().unwrap(),
+            EXP2_ENTRY[..8].try_into().unwrap(),
+            EXP2_ENTRY[8..].try_into().unwrap(),
             [EXP_UNDERFLOW; 8],
         ]);
         // SAFETY: loads of the arrays above; AVX as the caller promises.
@@ -230,12 +247,12 @@ pub unsafe fn exp_table8(
         let lo = _mm256_permutevar8x32_ps(k.t_lo, ti);
         let hi = _mm256_permutevar8x32_ps(k.t_hi, ti);
         let tb = _mm256_blendv_ps(lo, hi, _mm256_castsi256_ps(_mm256_slli_epi32::<28>(ti)));
-        // Times 2^n, n = floor(k / 16) >= -126: the entry (in [1, 2)) with n
-        // added to its exponent field, exactly the product. The bits of tt
-        // are ROUND_BITS + k, and ROUND_BITS / 16 shifted by 23 leaves no bits.
+        // Times 2^n, n = floor(k / 16) >= -126: the entry 2^(j/16) (in
+        // [1, 2)) with n added to its exponent field, exactly the product
+        // (see `EXP2_ENTRY`).
         let ts = _mm256_castsi256_ps(_mm256_add_epi32(
             _mm256_castps_si256(tb),
-            _mm256_slli_epi32::<23>(_mm256_srai_epi32::<4>(ti)),
+            _mm256_slli_epi32::<19>(ti),
         ));
         let v = _mm256_fmadd_ps(ts, em1, ts);
         let keep = _mm256_cmp_ps::<_CMP_NLT_UQ>(x, k.under);
@@ -274,12 +291,13 @@ pub fn exp_step<const L: u8>(
             let em1 = _mm512_fmadd_ps(_mm512_mul_ps(r, r), _mm512_fmadd_ps(r, k(Q3), k(Q2)), r);
             // The entry: a permute by the low 4 bits of tt (k mod 16).
             let ti = _mm512_castps_si512(tt);
-            let tb = _mm512_permutexvar_ps(ti, _mm512_loadu_ps(EXP2_FRAC.as_ptr()));
+            let tb = _mm512_permutexvar_ps(ti, _mm512_loadu_ps(EXP2_ENTRY.as_ptr()));
             // Times 2^n as on AVX2 (`exp_table8`): n added to the entry's
-            // exponent field, exactly the product for the lanes kept.
+            // exponent field (see `EXP2_ENTRY`), exactly the product for the
+            // lanes kept.
             let ts = _mm512_castsi512_ps(_mm512_add_epi32(
                 _mm512_castps_si512(tb),
-                _mm512_slli_epi32::<23>(_mm512_srai_epi32::<4>(ti)),
+                _mm512_slli_epi32::<19>(ti),
             ));
             // Lanes with x < EXP_UNDERFLOW are zeroed and add no t; NaN lanes are kept.
             let keep = _mm512_cmp_ps_mask::<_CMP_NLT_UQ>(x, k(EXP_UNDERFLOW));
@@ -400,6 +418,23 @@ mod tests {
         assert!(w < 4.0 * eps, "scalar build: worst relative error {w}");
         let w = worst_on_softmax_range(exp_nonpos::<2>, 61);
         assert!(w < 4.0 * eps, "fused: worst relative error {w}");
+    }
+
+    #[test]
+    fn vector_entries_give_the_scaled_powers_of_two() {
+        // The integer identity the vector loops rely on, for every j and
+        // every n the normalising pass meets (n = floor(k / 16) in [-126, 0]):
+        // entry bits + (tt bits << 19) = bits of 2^(j/16) * 2^n.
+        for n in -126i32..=0 {
+            for j in 0..16i32 {
+                let k = 16 * n + j;
+                let tt_bits = (ROUND_BITS + k) as u32;
+                let got =
+                    f32::from_bits(EXP2_ENTRY[j as usize].to_bits().wrapping_add(tt_bits << 19));
+                let want = EXP2_FRAC[j as usize] * 2f32.powi(n);
+                assert_eq!(got.to_bits(), want.to_bits(), "j {j}, n {n}");
+            }
+        }
     }
 
     #[test]
