@@ -131,7 +131,7 @@ def kib_per_fault(paths):
             finally:
                 m.close()
     faults = resource.getrusage(resource.RUSAGE_SELF).ru_minflt - before
-    return total / max(faults, 1) / 1024 if faults >= 0 else None
+    return total / max(faults, 1) / 1024
 
 
 def page_cache_reclaim():
