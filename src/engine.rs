@@ -551,9 +551,7 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
 
 /// Rows counted at all: not masked out in any file.
 fn counted(row: usize, files: &[&LogitFile]) -> bool {
-    files
-        .iter()
-        .all(|f| f.mask.as_ref().map_or(true, |m| m[row]))
+    files.iter().all(|f| f.mask.as_ref().is_none_or(|m| m[row]))
 }
 
 pub fn run(
@@ -582,14 +580,16 @@ pub fn run(
     // Every file has the reference's rows (checked by `align`).
     let floor_rows: Vec<usize> = crate::floor::sample_rows(reference.rows).collect();
 
-    let mut res = EngineResult::default();
-    res.candidates = (0..nc)
-        .map(|_| CandidateAccum {
-            values: vec![Vec::new(); NMETRIC],
-            estimators: vec![Default::default(); samples.len()],
-            ..Default::default()
-        })
-        .collect();
+    let mut res = EngineResult {
+        candidates: (0..nc)
+            .map(|_| CandidateAccum {
+                values: vec![Vec::new(); NMETRIC],
+                estimators: vec![Default::default(); samples.len()],
+                ..Default::default()
+            })
+            .collect(),
+        ..Default::default()
+    };
     for a in 0..nc {
         for b in a + 1..nc {
             res.pairs.push(PairAccum {

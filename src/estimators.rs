@@ -248,10 +248,10 @@ impl EstimatorSums {
         }
         self.n += 1.0;
         self.exact += exact;
-        for k in 0..3 {
-            self.sum[k] += est[k];
-            self.sum_sq[k] += est[k] * est[k];
-            self.sum_err_sq[k] += (est[k] - exact) * (est[k] - exact);
+        for (k, &e) in est.iter().enumerate() {
+            self.sum[k] += e;
+            self.sum_sq[k] += e * e;
+            self.sum_err_sq[k] += (e - exact) * (e - exact);
         }
     }
 

@@ -267,10 +267,7 @@ mod tests {
         std::fs::write(&dest, "old").unwrap();
         let e = write_atomic(&dest, |w| {
             w.write_all(b"new, but")?;
-            Err(std::io::Error::new(
-                std::io::ErrorKind::Other,
-                "disk on fire",
-            ))
+            Err(std::io::Error::other("disk on fire"))
         })
         .unwrap_err();
         assert!(e.message.contains("disk on fire"));

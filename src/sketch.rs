@@ -509,7 +509,7 @@ mod tests {
         let u = uniforms(4, 9000);
         let v: Vec<f64> = u.iter().map(|x| (x * 30.0 - 25.0).exp()).collect();
         let mut whole = Sketch::default();
-        let mut parts = vec![Sketch::default(), Sketch::default(), Sketch::default()];
+        let mut parts = [Sketch::default(), Sketch::default(), Sketch::default()];
         for (i, &x) in v.iter().enumerate() {
             whole.add(x);
             parts[i * 3 / v.len()].add(x);

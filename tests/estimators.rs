@@ -604,7 +604,9 @@ fn estimate_bad_input_exits_2_naming_the_file() {
     let d = tempdir::Dir::new();
     let n = 8usize;
     let good: Vec<f32> = (0..n).map(|i| -(i as f32) * 0.1 - 0.1).collect();
-    let cases: Vec<(&str, Vec<(&str, T)>, &str)> = vec![
+    // (case name, tensors in the file, what the error must mention)
+    type Case<'a> = (&'a str, Vec<(&'a str, T)>, &'a str);
+    let cases: Vec<Case> = vec![
         (
             "missing",
             vec![("logprob_ref", floats(Dtype::F32, &[n], &good))],

@@ -1174,7 +1174,7 @@ fn an_interrupted_run_leaves_nothing_behind() {
     let inputs = listing(d);
     let (j, c) = (d.join("r.json"), d.join("p.csv"));
     let mut args = vec!["compare".to_string(), s(&rp).into()];
-    args.extend(std::iter::repeat(s(&cp).to_string()).take(48));
+    args.extend(std::iter::repeat_n(s(&cp).to_string(), 48));
     args.extend(
         [
             "--samples",

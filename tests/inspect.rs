@@ -345,7 +345,9 @@ fn shards_logprob_files_and_declared_forms() {
 fn invalid_files_exit_2_with_the_validation_message() {
     let d = tempdir::Dir::new();
     let good: Vec<f32> = (0..12).map(|i| i as f32).collect();
-    let cases: Vec<(&str, Vec<(&str, T)>, &str)> = vec![
+    // (case name, tensors in the file, what the error must mention)
+    type Case<'a> = (&'a str, Vec<(&'a str, T)>, &'a str);
+    let cases: Vec<Case> = vec![
         (
             "no-logits",
             vec![("scores", floats(Dtype::F32, &[3, 4], &good))],

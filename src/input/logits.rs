@@ -137,7 +137,7 @@ impl LogitFile {
             let mut v: Vec<PathBuf> = std::fs::read_dir(path)
                 .map_err(|e| Error::input(path, format!("cannot list directory: {e}")))?
                 .filter_map(|e| e.ok().map(|e| e.path()))
-                .filter(|p| p.is_file() && p.extension().map_or(false, |x| x == "safetensors"))
+                .filter(|p| p.is_file() && p.extension().is_some_and(|x| x == "safetensors"))
                 .collect();
             v.sort();
             if v.is_empty() {
@@ -334,7 +334,7 @@ impl LogitFile {
     pub fn prompt_of_rows(&self) -> Vec<u32> {
         let mut out = Vec::with_capacity(self.rows);
         for (p, w) in self.prompt_starts.windows(2).enumerate() {
-            out.extend(std::iter::repeat(p as u32).take(w[1] - w[0]));
+            out.extend(std::iter::repeat_n(p as u32, w[1] - w[0]));
         }
         out
     }

@@ -16,6 +16,8 @@
 
 const LOG2E: f32 = std::f32::consts::LOG2_E;
 // ln 2 split so that n * LN2_HI is exact for |n| < 2^9 (Cody and Waite's method, common practice).
+// LN2_HI is exactly 355/512, written out in full.
+#[allow(clippy::excessive_precision)]
 const LN2_HI: f32 = 0.693_359_375;
 const LN2_LO: f32 = -2.121_944_4e-4;
 // Minimax-style coefficients for exp on [-ln2/2, ln2/2] (the classic single-precision set).
@@ -24,7 +26,8 @@ const P1: f32 = 1.398_199_9e-3;
 const P2: f32 = 8.333_452e-3;
 const P3: f32 = 4.166_579_6e-2;
 const P4: f32 = 1.666_666_5e-1;
-const P5: f32 = 5.000_000_1e-1;
+// The set's last coefficient, 5.0000001e-1, is 0.5 once rounded to f32.
+const P5: f32 = 0.5;
 /// 1.5 * 2^23: adding it rounds to an integer, which then sits in the low
 /// mantissa bits of the sum.
 const ROUND: f32 = 12_582_912.0;

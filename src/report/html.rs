@@ -9,6 +9,10 @@
 //! Every panel of one kind shares its axes across candidates, so the panels
 //! can be compared at a glance.
 
+// Tests such as `!(span > 0.0)` are meant to be true for NaN (a missing or
+// undefined value draws nothing), which `span <= 0.0` would not be.
+#![allow(clippy::neg_cmp_op_on_partial_ord)]
+
 use super::{CandidateReport, Format, Gate, Report, TokenProb, WorstPositionReport};
 use std::fmt::Write as _;
 use std::io::Write;

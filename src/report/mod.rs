@@ -867,7 +867,7 @@ pub fn evaluate_gates(
     prompts: &[engine::PromptSums],
 ) -> Vec<Gate> {
     let mut g = Vec::new();
-    let inside = |ci: Option<[f64; 2]>, x: f64| ci.map_or(false, |[a, b]| a <= x && x <= b);
+    let inside = |ci: Option<[f64; 2]>, x: f64| ci.is_some_and(|[a, b]| a <= x && x <= b);
     if let Some(x) = limits.max_kl_mean {
         let v = kl.mean;
         g.push(Gate {
