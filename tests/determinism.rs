@@ -188,11 +188,13 @@ fn run(
 }
 
 #[test]
-fn one_and_two_threads_give_byte_identical_reports() {
+fn one_two_and_sixteen_threads_give_byte_identical_reports() {
     let inp = inputs();
     let a = run(&inp, &inp.reference, &inp.candidates, 1, 7, "t1", &[]);
     let b = run(&inp, &inp.reference, &inp.candidates, 2, 7, "t2", &[]);
     let c = run(&inp, &inp.reference, &inp.candidates, 2, 7, "t2-again", &[]);
+    // More workers than cores: every task is stolen somewhere else.
+    let d = run(&inp, &inp.reference, &inp.candidates, 16, 7, "t16", &[]);
     // The input did exercise what it was built for.
     let v: serde_json::Value = serde_json::from_str(&a.json).unwrap();
     assert_eq!(v["candidates"].as_array().unwrap().len(), 3);
@@ -202,8 +204,13 @@ fn one_and_two_threads_give_byte_identical_reports() {
     assert!(v["timing"]["exact_pass_seconds"].is_number());
     assert_eq!(a.json, b.json, "JSON differs between 1 and 2 threads");
     assert_eq!(b.json, c.json, "JSON differs between two identical runs");
-    assert!(a.csv == b.csv && b.csv == c.csv, "CSV differs");
+    assert_eq!(a.json, d.json, "JSON differs between 1 and 16 threads");
+    assert!(
+        a.csv == b.csv && b.csv == c.csv && c.csv == d.csv,
+        "CSV differs"
+    );
     assert_eq!(a.text, b.text, "terminal report differs");
+    assert_eq!(a.text, d.text, "terminal report differs at 16 threads");
     assert!(a.csv.len() > 3 * 400 * 50, "CSV unexpectedly short");
 }
 
