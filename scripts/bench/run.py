@@ -28,6 +28,7 @@ machine are noisy: the load average is printed with them; compare ratios
 measured in the same run.
 """
 import argparse
+import glob
 import json
 import os
 import shutil
@@ -141,24 +142,21 @@ def page_cache_reclaim():
     come back in pieces of other sizes, which moves klgauge's runs (see
     kib_per_fault)."""
     root = "/sys/kernel/mm/damon/admin/kdamonds"
-    try:
-        for k in sorted(os.listdir(root)):
-            if not k.isdigit():
-                continue
-            with open(os.path.join(root, k, "state")) as f:
-                if f.read().strip() != "on":
-                    continue
-            ctxs = os.path.join(root, k, "contexts")
-            for c in sorted(x for x in os.listdir(ctxs) if x.isdigit()):
-                schemes = os.path.join(ctxs, c, "schemes")
-                for sc in sorted(x for x in os.listdir(schemes) if x.isdigit()):
-                    with open(os.path.join(schemes, sc, "action")) as f:
-                        if f.read().strip() == "pageout":
-                            return ("this machine pages out idle memory (DAMON kdamond "
-                                    f"{k}, action pageout): how the page cache holds the files can differ "
-                                    "from one run of this script to the next")
-    except OSError:
-        pass
+
+    def read(*parts):
+        try:
+            with open(os.path.join(root, *parts)) as f:
+                return f.read().strip()
+        except OSError:
+            return None
+
+    # kdamonds/K/contexts/C/schemes/S/action
+    for action in sorted(glob.glob(os.path.join(root, "*", "contexts", "*", "schemes", "*", "action"))):
+        k = os.path.relpath(action, root).split(os.sep)[0]
+        if read(k, "state") == "on" and read(os.path.relpath(action, root)) == "pageout":
+            return ("this machine pages out idle memory (DAMON kdamond "
+                    f"{k}, action pageout): how the page cache holds the files can differ "
+                    "from one run of this script to the next")
     return None
 
 
@@ -241,8 +239,7 @@ def main():
                     wall, cpu, _, _, out = run_cmd(command(nc, threads, tool))
                     if tool != "k":
                         wall = json.loads(out.strip().splitlines()[-1])["seconds"]
-                    anon, rfile = memory.get(label, (0, 0))
-                    times[label].append((wall, cpu, anon, rfile))
+                    times[label].append((wall, cpu))
             cache_after = kib_per_fault(files)
             print(f"\n{name}: {a.rows} rows x {vocab} {dtype}")
             if cache_before is not None and cache_after is not None:
@@ -251,13 +248,14 @@ def main():
             group = {"page_cache_kib_per_fault": [cache_before, cache_after]}
             for label, nc, threads, tool in runs:
                 ts = times[label]
+                anon, rfile = memory.get(label, (0, 0))
                 sec = statistics.median(t[0] for t in ts)
                 gb = a.rows * vocab * SIZE[dtype] * (1 + nc) / 1e9
                 best = min(t[0] for t in ts)
                 r = {"seconds": sec, "best_seconds": best, "rows_per_s": a.rows / sec,
                      "best_rows_per_s": a.rows / best, "gb_per_s": gb / sec,
                      "cpu_seconds": statistics.median(t[1] for t in ts), "all_seconds": [round(t[0], 3) for t in ts],
-                     "peak_rss_anon_mib": max(t[2] for t in ts) / 1024, "peak_rss_file_mib": max(t[3] for t in ts) / 1024}
+                     "peak_rss_anon_mib": anon / 1024, "peak_rss_file_mib": rfile / 1024}
                 group[label] = r
                 mem = f"  peak RssAnon {r['peak_rss_anon_mib']:6.1f} MiB" if tool == "k" else ""
                 print(f"  {label:<22} {r['rows_per_s']:8.0f} rows/s {r['gb_per_s']:6.2f} GB/s  best {r['best_rows_per_s']:8.0f} rows/s"
