@@ -132,7 +132,15 @@ pub fn draw_weighted(
         // The draw's block: the first from here whose end (prefix[bi + 1])
         // passes u, else the last. (A scan: the draws are sorted, so all of
         // them together pass each block once; a binary search per draw
-        // measured slower.)
+        // measured slower.) The running sums never decrease (`block_prefix`),
+        // so where the end of the block SKIP blocks on has not passed u,
+        // none before it has: the scan moves SKIP blocks in one test and
+        // stops where the one-block scan would (a NaN block makes every
+        // later sum NaN, and a NaN end is never skipped over).
+        const SKIP: usize = 8;
+        while bi + SKIP < blocks.len() && prefix[bi + SKIP] <= u {
+            bi += SKIP;
+        }
         while bi + 1 < blocks.len() && prefix[bi + 1] <= u {
             bi += 1;
         }
