@@ -1509,10 +1509,15 @@ fn tv_step<const L: u8>(t: &mut F, v: &F, e: &F, uz: f32) {
 }
 
 /// sum |v - uz e| in f32 lanes per PAIR_BLOCK columns, then in f64.
+/// The blocks are taken from the row's end back to its start: the fused pass
+/// that wrote v has just left the row's last part of v and e in L2 (the
+/// 1.5 MiB it streams does not fit), so this order finds them there before
+/// the older part is read back from L3 (`compare_fused` 1.02x to 1.03x,
+/// fastest of 8 and 16 alternating runs of each build).
 #[inline(always)]
 fn tv_pass<const L: u8>(v: &[f32], e: &[f32], uz: f32) -> f64 {
     let mut acc = [0f64; W];
-    for (bv, be) in v.chunks(PAIR_BLOCK).zip(e.chunks(PAIR_BLOCK)) {
+    for (bv, be) in v.chunks(PAIR_BLOCK).zip(e.chunks(PAIR_BLOCK)).rev() {
         let mut t = [0f32; W];
         let (cv, ce) = (bv.chunks_exact(W), be.chunks_exact(W));
         let (rv, re) = (cv.remainder(), ce.remainder());
