@@ -1183,8 +1183,9 @@ fn fused_block<const L: u8, const OFF: bool, SX: Src, SY: Src>(
 /// cost about 5% of the pass (`compare_fused` 1.06x at 512 on AVX-512,
 /// 1.025x on AVX2, fastest of 12 and 8 alternating runs). A recursive f32
 /// sum of 32 terms is within 31 x 2^-24 (1.8e-6) of the sum of their
-/// magnitudes (Higham, "Accuracy and Stability of Numerical Algorithms",
-/// ch. 4; common practice), against 0.9e-6 at 256: far inside the kernel
+/// magnitudes (the recursive-summation bound, common practice; as in
+/// Higham's "Accuracy and Stability of Numerical Algorithms", ch. 4, cited
+/// from memory), against 0.9e-6 at 256: far inside the kernel
 /// tests' bounds, which pass unchanged, as do a million randomized pairs.
 const FUSED_CARRY: usize = 2 * PAIR_BLOCK / NORM_BLOCK;
 
