@@ -152,8 +152,9 @@ def page_cache_reclaim():
 
     # kdamonds/K/contexts/C/schemes/S/action
     for action in sorted(glob.glob(os.path.join(root, "*", "contexts", "*", "schemes", "*", "action"))):
-        k = os.path.relpath(action, root).split(os.sep)[0]
-        if read(k, "state") == "on" and read(os.path.relpath(action, root)) == "pageout":
+        rel = os.path.relpath(action, root)
+        k = rel.split(os.sep)[0]
+        if read(k, "state") == "on" and read(rel) == "pageout":
             return ("this machine pages out idle memory (DAMON kdamond "
                     f"{k}, action pageout): how the page cache holds the files can differ "
                     "from one run of this script to the next")
@@ -168,8 +169,9 @@ def as_read_from_disk(paths):
     pieces (on recent kernels and file systems that support them), and
     klgauge reads rows the way that is cheaper for what it finds (see
     LogitFile::stored_row). Logits worth a release decision are usually
-    read back from disk, so the benchmark measures that state, the same
-    in every run."""
+    read back from disk, so the benchmark starts every case from that
+    state. (A machine that reclaims idle page cache can change it during
+    the rounds; kib_per_fault reports it before and after them.)"""
     for p in paths:
         fd = os.open(p, os.O_RDONLY)
         try:
