@@ -18,11 +18,11 @@
 //! pass that needs exp, go through the generic code on the same sums.
 
 use super::exp::{exp_table8, ExpK8};
-use super::lanes::{hsum, hsum64, widen_add, F, W};
+use super::lanes::{hsum64, hsum_wide, widen_add, F, W};
 use super::row::Src;
 use super::{
     exp_block, fused_block, fused_step, norm_blocks, Ahead, FusedConsts, FusedLanes, FUSED_CARRY,
-    FUSED_SERIES_BELOW, G_LONG, G_SHORT, NORM_BLOCK, SERIES_BELOW, T_EVERY,
+    FUSED_SERIES_BELOW, G_LONG, G_SHORT, NORM_BLOCK, SERIES_BELOW,
 };
 use std::arch::x86_64::*;
 
@@ -99,7 +99,6 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
     );
     let mut sums = NormSums {
         total: 0.0,
-        t4: zero(),
         t_acc: [0f64; W],
     };
     // SAFETY: the caller runs with AVX2 and FMA; every column read or
@@ -139,16 +138,14 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
             let (s, t) = exp_block::<1, STORE, S>(x, whole * NORM_BLOCK, n, m, e);
             sums.fold(whole, pair(&s), pair(&t), blocks);
         }
-        widen_add::<1>(&mut sums.t_acc, &unpair(sums.t4));
     }
     (sums.total, hsum64(&sums.t_acc))
 }
 
 /// What the normalising pass carries from block to block: the sum of the
-/// block sums, and t in f32 lanes (carried into f64 every T_EVERY blocks).
+/// block sums, and the f64 lanes of t.
 struct NormSums {
     total: f64,
-    t4: Pair,
     t_acc: [f64; W],
 }
 
@@ -159,16 +156,10 @@ impl NormSums {
     unsafe fn fold(&mut self, b: usize, s: Pair, t: Pair, blocks: &mut [f64]) {
         // SAFETY: the caller runs with AVX2; plain vector adds and stores.
         unsafe {
-            let v = hsum::<1>(&unpair(s)) as f64;
+            let v = hsum_wide::<1>(&unpair(s));
             blocks[b] = v;
             self.total += v;
-            for (a, v) in self.t4.iter_mut().zip(t) {
-                *a = _mm256_add_ps(*a, v);
-            }
-            if b % T_EVERY == T_EVERY - 1 {
-                widen_add::<1>(&mut self.t_acc, &unpair(self.t4));
-                self.t4 = zero();
-            }
+            widen_add::<1>(&mut self.t_acc, &unpair(t));
         }
     }
 }
@@ -365,7 +356,7 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
                 r = Sums::load(s);
                 vb
             };
-            let v = hsum::<1>(&vb) as f64;
+            let v = hsum_wide::<1>(&vb);
             bw[b] = v;
             vtot += v;
             if b % FUSED_CARRY == FUSED_CARRY - 1 {

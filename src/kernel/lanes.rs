@@ -57,6 +57,51 @@ pub fn hsum<const L: u8>(v: &F) -> f32 {
     (b[0] + b[2]) + (b[1] + b[3])
 }
 
+/// Sum of the lanes in f64 (each widened exactly) by the same fixed tree as
+/// `hsum`: a block's sum loses only the rounding of its f64 additions, not
+/// the 2^-24 of an f32 result.
+#[inline(always)]
+pub fn hsum_wide<const L: u8>(v: &F) -> f64 {
+    #[cfg(target_arch = "x86_64")]
+    if L >= 2 {
+        use std::arch::x86_64::*;
+        // SAFETY: level 2 is only instantiated inside functions compiled with
+        // AVX-512F, called after run-time detection; the load reads `v`.
+        unsafe {
+            let f = _mm512_loadu_ps(v.as_ptr());
+            let lo = _mm512_cvtps_pd(_mm512_castps512_ps256(f));
+            let hi = _mm512_cvtps_pd(_mm256_castpd_ps(_mm512_extractf64x4_pd::<1>(
+                _mm512_castps_pd(f),
+            )));
+            let a = _mm512_add_pd(lo, hi);
+            let b = _mm256_add_pd(_mm512_castpd512_pd256(a), _mm512_extractf64x4_pd::<1>(a));
+            let c = _mm_add_pd(_mm256_castpd256_pd128(b), _mm256_extractf128_pd::<1>(b));
+            return _mm_cvtsd_f64(_mm_add_sd(c, _mm_unpackhi_pd(c, c)));
+        }
+    }
+    #[cfg(target_arch = "x86_64")]
+    if L >= 1 {
+        use std::arch::x86_64::*;
+        // SAFETY: as in `hsum`; the loads read the 16 values of `v`.
+        unsafe {
+            let q = |k: usize| _mm256_cvtps_pd(_mm_loadu_ps(v.as_ptr().add(4 * k)));
+            let (a0, a1) = (_mm256_add_pd(q(0), q(2)), _mm256_add_pd(q(1), q(3)));
+            let b = _mm256_add_pd(a0, a1);
+            let c = _mm_add_pd(_mm256_castpd256_pd128(b), _mm256_extractf128_pd::<1>(b));
+            return _mm_cvtsd_f64(_mm_add_sd(c, _mm_unpackhi_pd(c, c)));
+        }
+    }
+    let mut a = [0f64; 8];
+    for j in 0..8 {
+        a[j] = v[j] as f64 + v[j + 8] as f64;
+    }
+    let mut b = [0f64; 4];
+    for j in 0..4 {
+        b[j] = a[j] + a[j + 4];
+    }
+    (b[0] + b[2]) + (b[1] + b[3])
+}
+
 /// Sum of f64 lanes by the same fixed tree.
 #[inline(always)]
 pub fn hsum64(v: &[f64; W]) -> f64 {
@@ -221,14 +266,6 @@ pub fn any_above<const L: u8, const N: usize>(v: [&F; N], bound: f32) -> bool {
         }
     }
     v.iter().any(|c| c.iter().any(|&x| x > bound))
-}
-
-/// Adds `v` into `acc` lane by lane.
-#[inline(always)]
-pub fn add(acc: &mut F, v: &F) {
-    for j in 0..W {
-        acc[j] += v[j];
-    }
 }
 
 /// Largest lane (ignores NaN lanes; order does not matter for a maximum).
