@@ -57,6 +57,27 @@ pub fn hsum<const L: u8>(v: &F) -> f32 {
     (b[0] + b[2]) + (b[1] + b[3])
 }
 
+/// The 16 lanes as f64 (exact), lanes 0..8 and 8..16, from one 512-bit
+/// load.
+///
+/// # Safety
+/// Only called from code compiled with AVX-512F, after run-time detection.
+#[cfg(target_arch = "x86_64")]
+#[inline(always)]
+unsafe fn widen16(v: &F) -> (std::arch::x86_64::__m512d, std::arch::x86_64::__m512d) {
+    use std::arch::x86_64::*;
+    // SAFETY: the load reads the 16 values of `v`; AVX-512F as the caller
+    // promises.
+    unsafe {
+        let f = _mm512_loadu_ps(v.as_ptr());
+        let lo = _mm512_cvtps_pd(_mm512_castps512_ps256(f));
+        let hi = _mm512_cvtps_pd(_mm256_castpd_ps(_mm512_extractf64x4_pd::<1>(
+            _mm512_castps_pd(f),
+        )));
+        (lo, hi)
+    }
+}
+
 /// Sum of the lanes in f64 (each widened exactly) by the same fixed tree as
 /// `hsum`: a block's sum loses only the rounding of its f64 additions, not
 /// the 2^-24 of an f32 result.
@@ -68,11 +89,7 @@ pub fn hsum_wide<const L: u8>(v: &F) -> f64 {
         // SAFETY: level 2 is only instantiated inside functions compiled with
         // AVX-512F, called after run-time detection; the load reads `v`.
         unsafe {
-            let f = _mm512_loadu_ps(v.as_ptr());
-            let lo = _mm512_cvtps_pd(_mm512_castps512_ps256(f));
-            let hi = _mm512_cvtps_pd(_mm256_castpd_ps(_mm512_extractf64x4_pd::<1>(
-                _mm512_castps_pd(f),
-            )));
+            let (lo, hi) = widen16(v);
             let a = _mm512_add_pd(lo, hi);
             let b = _mm256_add_pd(_mm512_castpd512_pd256(a), _mm512_extractf64x4_pd::<1>(a));
             let c = _mm_add_pd(_mm256_castpd256_pd128(b), _mm256_extractf128_pd::<1>(b));
@@ -91,15 +108,7 @@ pub fn hsum_wide<const L: u8>(v: &F) -> f64 {
             return _mm_cvtsd_f64(_mm_add_sd(c, _mm_unpackhi_pd(c, c)));
         }
     }
-    let mut a = [0f64; 8];
-    for j in 0..8 {
-        a[j] = v[j] as f64 + v[j + 8] as f64;
-    }
-    let mut b = [0f64; 4];
-    for j in 0..4 {
-        b[j] = a[j] + a[j + 4];
-    }
-    (b[0] + b[2]) + (b[1] + b[3])
+    hsum64(&v.map(|x| x as f64))
 }
 
 /// Sum of f64 lanes by the same fixed tree.
@@ -128,11 +137,7 @@ pub fn widen_add<const L: u8>(acc: &mut [f64; W], v: &F) {
         // in four quarters, LLVM keeps a running `v` in four 128-bit
         // registers and splits every addition into it four ways.
         unsafe {
-            let f = _mm512_loadu_ps(v.as_ptr());
-            let lo = _mm512_cvtps_pd(_mm512_castps512_ps256(f));
-            let hi = _mm512_cvtps_pd(_mm256_castpd_ps(_mm512_extractf64x4_pd::<1>(
-                _mm512_castps_pd(f),
-            )));
+            let (lo, hi) = widen16(v);
             let a = acc.as_mut_ptr();
             _mm512_storeu_pd(a, _mm512_add_pd(_mm512_loadu_pd(a), lo));
             _mm512_storeu_pd(a.add(8), _mm512_add_pd(_mm512_loadu_pd(a.add(8)), hi));
