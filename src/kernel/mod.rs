@@ -339,11 +339,13 @@ dispatched! {
 // Normalising one row.
 
 /// The largest value of a row, NaN passed over (-inf for a row with no
-/// other values). Four independent running maxima (chunk i goes to number
-/// i mod 4), so the compare-and-select chains overlap; they are separate
-/// variables so that they stay in registers.
+/// other values), and the first column of the SEG-column segment in which
+/// the running maximum first reached it: the row's first column holding the
+/// maximum is in that segment or after it. Four independent running maxima
+/// (chunk i goes to number i mod 4), so the compare-and-select chains
+/// overlap; they are separate variables so that they stay in registers.
 #[inline(always)]
-fn row_max<const L: u8, S: Src>(x: S) -> f32 {
+fn row_max<const L: u8, S: Src>(x: S) -> (f32, usize) {
     #[inline(always)]
     fn step(c: &F, m: &mut F) {
         for j in 0..W {
@@ -351,9 +353,14 @@ fn row_max<const L: u8, S: Src>(x: S) -> f32 {
             m[j] = if c[j] > m[j] { c[j] } else { m[j] };
         }
     }
+    /// Columns per segment: one reduction of the four maxima per segment.
+    const SEG: usize = 2048;
     let (mut m0, mut m1, mut m2, mut m3) = ([NEG_INF; W], [NEG_INF; W], [NEG_INF; W], [NEG_INF; W]);
     let n = x.len();
     let mut i = 0usize;
+    // The running maximum at the end of the segments so far, and the first
+    // column of the segment where it last rose.
+    let (mut best, mut from, mut seg) = (NEG_INF, 0usize, 0usize);
     // SAFETY (every chunk below): i + 16 <= n where a whole chunk is read.
     while i + 4 * W <= n {
         step(&unsafe { x.chunk::<L>(i) }, &mut m0);
@@ -361,6 +368,13 @@ fn row_max<const L: u8, S: Src>(x: S) -> f32 {
         step(&unsafe { x.chunk::<L>(i + 2 * W) }, &mut m2);
         step(&unsafe { x.chunk::<L>(i + 3 * W) }, &mut m3);
         i += 4 * W;
+        if i - seg == SEG {
+            let h = hmax4(&m0, &m1, &m2, &m3);
+            if h > best {
+                (best, from) = (h, seg);
+            }
+            seg = i;
+        }
     }
     while i + W <= n {
         step(&unsafe { x.chunk::<L>(i) }, &mut m0);
@@ -369,8 +383,18 @@ fn row_max<const L: u8, S: Src>(x: S) -> f32 {
     if i < n {
         step(&x.padded(i, n, NEG_INF), &mut m1);
     }
+    let mx = hmax4(&m0, &m1, &m2, &m3);
+    if mx > best {
+        from = seg;
+    }
+    (mx, from)
+}
+
+/// The largest lane of four (NaN lanes passed over).
+#[inline(always)]
+fn hmax4(m0: &F, m1: &F, m2: &F, m3: &F) -> f32 {
     let mut mx = NEG_INF;
-    for m in [&m0, &m1, &m2, &m3] {
+    for m in [m0, m1, m2, m3] {
         let h = hmax(m);
         mx = if h > mx { h } else { mx };
     }
@@ -379,15 +403,16 @@ fn row_max<const L: u8, S: Src>(x: S) -> f32 {
 
 /// The maximum over the non-NaN values and the lowest column holding it
 /// (column 0 for a row of -inf and NaN only): one pass for the value, then
-/// a search from the front that stops at its first occurrence, cheaper
-/// than carrying each lane's column through the whole row.
+/// a search for its first occurrence from the segment where the pass saw
+/// the maximum first reached, cheaper than carrying each lane's column
+/// through the whole row.
 #[inline(always)]
 fn scan_max<const L: u8, S: Src>(x: S) -> (f32, usize) {
-    let mx = row_max::<L, S>(x);
+    let (mx, from) = row_max::<L, S>(x);
     if mx == NEG_INF {
         return (mx, 0);
     }
-    (mx, first_equal::<L, S>(x, x.len(), mx))
+    (mx, first_equal::<L, S>(x, from, x.len(), mx))
 }
 
 /// What is wrong with a row that did not normalise (NaN first, as SPEC
@@ -1406,10 +1431,10 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
     let hw = t_r + (ts - (xa - k.sx) as f64 * vtot) - as_ - js;
     let argmax = if max_c > ya {
         // The pass found the maximum: only its first column is missing.
-        first_equal::<L, SY>(y, n, max_c)
+        first_equal::<L, SY>(y, 0, n, max_c)
     } else {
         // y_a is the maximum; the top column is the first that holds it.
-        first_equal::<L, SY>(y, r.argmax as usize, ya)
+        first_equal::<L, SY>(y, 0, r.argmax as usize, ya)
     };
     let c = RowNorm {
         max: max_c,
@@ -1430,15 +1455,16 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
     Some((f, uz, as_ / sum_r))
 }
 
-/// The first column before `upto` holding `v`, the row's maximum, or `upto`.
+/// The first column in `from..upto` holding `v`, the row's maximum (no
+/// column before `from` holds it), or `upto`.
 /// Whole chunks are tested 64 columns at a time, then 16 (nothing exceeds
 /// `v`, so "not below v" means equal): one branch per 64 columns instead
 /// of four (the kernel benchmark's `scan_row` 1.07x, `normalise_store`
 /// 1.05x, side by side).
 #[inline(always)]
-fn first_equal<const L: u8, S: Src>(y: S, upto: usize, v: f32) -> usize {
+fn first_equal<const L: u8, S: Src>(y: S, from: usize, upto: usize, v: f32) -> usize {
     let below = v.next_down();
-    let mut i = 0;
+    let mut i = from;
     while i + 4 * W <= upto {
         // SAFETY (both loops): every chunk read ends at or before `upto`,
         // which is at most the row's length.

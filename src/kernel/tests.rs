@@ -224,8 +224,28 @@ fn row_argmax_is_the_first_maximum_wherever_it_lies() {
     // The lowest column holding the largest non-NaN value (the plain
     // definition, common practice), against the chunked search at every
     // level: maxima inside a 64-column group, on group and chunk edges, in
-    // the tail, behind NaN lanes, and a maximum of zero held as -0.0 first.
-    let n = 1_000;
+    // the tail, behind NaN lanes, and a maximum of zero held as -0.0 first;
+    // in a longer row also on the edges of the scan's 2,048-column segments,
+    // with the same maximum again in later segments.
+    for (n, ats) in [
+        (
+            1_000usize,
+            &[
+                0usize, 5, 15, 16, 63, 64, 65, 127, 128, 500, 959, 960, 975, 999,
+            ][..],
+        ),
+        (
+            10_000,
+            &[
+                2_000, 2_045, 2_047, 2_048, 2_049, 4_095, 4_096, 6_100, 8_190, 9_999,
+            ][..],
+        ),
+    ] {
+        argmax_cases(n, ats);
+    }
+}
+
+fn argmax_cases(n: usize, ats: &[usize]) {
     let base: Vec<f32> = (0..n)
         .map(|i| ((i * 37) % 101) as f32 * 0.01 - 2.0)
         .collect();
@@ -237,21 +257,20 @@ fn row_argmax_is_the_first_maximum_wherever_it_lies() {
         x.iter().position(|&v| v == m).unwrap()
     };
     let mut cases: Vec<Vec<f32>> = Vec::new();
-    for at in [
-        0usize, 5, 15, 16, 63, 64, 65, 127, 128, 500, 959, 960, 975, 999,
-    ] {
+    for &at in ats {
         let mut x = base.clone();
         x[at] = 7.0;
         x[(at + 3) % n] = 7.0;
         x[(at + 200) % n] = 7.0;
+        x[(at + 2_500) % n] = 7.0;
         if at >= 2 {
             x[at - 2] = f32::NAN;
         }
         cases.push(x);
     }
     let mut z: Vec<f32> = vec![-1.0; n];
-    z[300] = -0.0;
-    z[700] = 0.0;
+    z[n * 3 / 10] = -0.0;
+    z[n * 7 / 10] = 0.0;
     cases.push(z);
     for x in &cases {
         for l in levels() {
