@@ -361,12 +361,12 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
             vtot += v;
             if b % FUSED_CARRY == FUSED_CARRY - 1 {
                 r.store(s);
-                s.carry::<1>(acc);
+                s.carry::<1>(acc, ((b + 1) * NORM_BLOCK).min(n));
                 r = Sums::load(s);
             }
         }
         r.store(s);
-        s.carry::<1>(acc);
+        s.carry::<1>(acc, n);
     }
     vtot
 }

@@ -1011,13 +1011,33 @@ struct FusedLanes {
     /// every close chunk takes it, so the route stays predictable on rows
     /// where the two mix (a coarse candidate) instead of mispredicting.
     long: bool,
+    /// The largest y at the last carry, the first column of the span
+    /// between two carries where it last rose, and where the span since
+    /// the last carry began: the candidate's first column holding its
+    /// maximum is at `from` or after it (see `scan_max`).
+    best: f32,
+    from: usize,
+    span: usize,
 }
 
 impl FusedLanes {
+    fn new() -> FusedLanes {
+        FusedLanes {
+            g: [0f32; W],
+            j: [0f32; W],
+            t: [0f32; W],
+            my: [NEG_INF; W],
+            long: false,
+            best: NEG_INF,
+            from: 0,
+            span: 0,
+        }
+    }
+
     /// Adds the f32 sums of e g(d), v d and v (x - sx) into their f64
-    /// lanes and starts them afresh.
+    /// lanes and starts them afresh; `at`: the column the pass has reached.
     #[inline(always)]
-    fn carry<const L: u8>(&mut self, acc: &mut [[f64; W]; 3]) {
+    fn carry<const L: u8>(&mut self, acc: &mut [[f64; W]; 3], at: usize) {
         for (q, l) in [&mut self.g, &mut self.j, &mut self.t]
             .into_iter()
             .enumerate()
@@ -1025,6 +1045,12 @@ impl FusedLanes {
             widen_add::<L>(&mut acc[q], l);
             *l = [0f32; W];
         }
+        // The maximum rises at a few carries of a row: one compare of the
+        // lanes with the best so far, and the reduction only where it rose.
+        if any_above::<L, 1>([&self.my], self.best) {
+            (self.best, self.from) = (hmax(&self.my), self.span);
+        }
+        self.span = at;
     }
 }
 
@@ -1211,7 +1237,8 @@ fn fused_block<const L: u8, const OFF: bool, SX: Src, SY: Src>(
 const FUSED_CARRY: usize = 2 * PAIR_BLOCK / NORM_BLOCK;
 
 /// The fused pass's loop over the row: the f64 sums of e g(d), v d and
-/// v (x - sx), the sum of v (its block sums into `bw`), the lane maxima of y.
+/// v (x - sx), the sum of v (its block sums into `bw`), the lane maxima of
+/// y, and the column where the search for y's first maximum may start.
 #[inline(always)]
 #[allow(clippy::too_many_arguments)]
 fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
@@ -1222,20 +1249,14 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
     vbuf: &mut [f32],
     bw: &mut [f64],
     ahead: Ahead,
-) -> ([[f64; W]; 3], f64, F) {
+) -> ([[f64; W]; 3], f64, F, usize) {
     let n = x.len();
     let nb = norm_blocks(n);
     assert!(
         y.len() == n && er.len() >= n && vbuf.len() >= n && bw.len() >= nb,
         "compare_fused: row or buffer lengths differ"
     );
-    let mut s = FusedLanes {
-        g: [0f32; W],
-        j: [0f32; W],
-        t: [0f32; W],
-        my: [NEG_INF; W],
-        long: false,
-    };
+    let mut s = FusedLanes::new();
     let mut acc = [[0f64; W]; 3];
     #[cfg(target_arch = "x86_64")]
     if L == 1 && avx2_loops() {
@@ -1245,18 +1266,18 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
         let vtot = unsafe {
             avx2::fused_loop::<OFF, SX, SY>(x, y, er, k, &mut s, &mut acc, vbuf, bw, ahead)
         };
-        return (acc, vtot, s.my);
+        return (acc, vtot, s.my, s.from);
     }
     let vtot = for_blocks!(L, n, bw, |b, lo, hi| {
         ahead.block(b, nb);
         let vb = fused_block::<L, OFF, SX, SY>(x, y, er, k, &mut s, vbuf, lo, hi);
         if b % FUSED_CARRY == FUSED_CARRY - 1 {
-            s.carry::<L>(&mut acc);
+            s.carry::<L>(&mut acc, hi);
         }
         vb
     });
-    s.carry::<L>(&mut acc);
-    (acc, vtot, s.my)
+    s.carry::<L>(&mut acc, n);
+    (acc, vtot, s.my, s.from)
 }
 
 #[inline(always)]
@@ -1391,7 +1412,7 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
     }
     let kc = a - q;
     let k = FusedConsts { sx, sy, kc, ya: q };
-    let (acc, vtot, my) = if off {
+    let (acc, vtot, my, from) = if off {
         fused_loop::<L, true, SX, SY>(x, y, er, &k, vbuf, bw, ahead)
     } else {
         fused_loop::<L, false, SX, SY>(x, y, er, &k, vbuf, bw, ahead)
@@ -1431,10 +1452,10 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
     let hw = t_r + (ts - (xa - k.sx) as f64 * vtot) - as_ - js;
     let argmax = if max_c > ya {
         // The pass found the maximum: only its first column is missing.
-        first_equal::<L, SY>(y, 0, n, max_c)
+        first_equal::<L, SY>(y, from, n, max_c)
     } else {
         // y_a is the maximum; the top column is the first that holds it.
-        first_equal::<L, SY>(y, 0, r.argmax as usize, ya)
+        first_equal::<L, SY>(y, from, r.argmax as usize, ya)
     };
     let c = RowNorm {
         max: max_c,

@@ -1124,6 +1124,44 @@ fn fused_candidate_argmax_takes_the_lowest_tied_column() {
     y[77] = 3.5;
     let f = fused_at(detected_level(), &x, &y).1.unwrap();
     assert_eq!(f.c.argmax, 77);
+    // A 10,000-column row, at every level: the search for the top column
+    // starts in the 512-column span where the pass saw its running maximum
+    // last rise, so ties on span edges and in later spans are checked
+    // against the plain first maximum (common practice).
+    let n = 10_000;
+    let x: Vec<f32> = (0..n).map(|i| ((i * 7) % 13) as f32 * 0.1).collect();
+    for (top, ties) in [
+        (5_000usize, &[511usize, 512, 9_000][..]),
+        (5_000, &[1_023, 7_000][..]),
+        (511, &[512, 4_000][..]),
+        (9_999, &[9_216, 9_215][..]),
+    ] {
+        for higher in [false, true] {
+            let mut xr = x.clone();
+            xr[top] = 3.0;
+            let mut y = xr.clone();
+            for &t in ties {
+                y[t] = 3.0;
+            }
+            if higher {
+                for &t in ties {
+                    y[t] = 3.5;
+                }
+            }
+            let want = y
+                .iter()
+                .position(|&v| v == y.iter().cloned().fold(f32::MIN, f32::max));
+            for l in levels() {
+                let f = fused_at(l, &xr, &y).1.unwrap();
+                assert_eq!(
+                    Some(f.c.argmax as usize),
+                    want,
+                    "{} top {top} ties {ties:?}",
+                    l.name()
+                );
+            }
+        }
+    }
 }
 
 #[test]
