@@ -19,6 +19,7 @@
 //! k3 only at second order, since E_p[r] = 1. Both are far below the sampling
 //! noise of any feasible number of positions.
 
+use crate::kernel::lanes::{hsum64, W};
 use crate::kernel::{Row, NORM_BLOCK};
 use serde::{Deserialize, Serialize};
 
@@ -203,18 +204,14 @@ pub fn draw_weighted(
     }
 }
 
-/// Columns per chunk of the draws' walk inside a block.
-const CHUNK: usize = 16;
+/// Columns per chunk of the draws' walk inside a block: one kernel lane set.
+const CHUNK: usize = W;
 
-/// The sum of weights lo .. lo + CHUNK, in f64, by a fixed pairwise tree.
+/// The sum of weights lo .. lo + CHUNK, in f64, by the kernel's fixed
+/// pairwise tree (`lanes::hsum64`).
 #[inline(always)]
 fn chunk_sum(weight: &impl Fn(usize) -> f32, lo: usize) -> f64 {
-    let mut a = [0f64; 8];
-    for (j, a) in a.iter_mut().enumerate() {
-        *a = weight(lo + j) as f64 + weight(lo + j + 8) as f64;
-    }
-    let b = [a[0] + a[4], a[1] + a[5], a[2] + a[6], a[3] + a[7]];
-    (b[0] + b[2]) + (b[1] + b[3])
+    hsum64(&std::array::from_fn(|j| weight(lo + j) as f64))
 }
 
 /// The running sums of `blocks` into `prefix` (resized to blocks.len() + 1):
