@@ -10,6 +10,7 @@
 //! the least disturbed by other work on the machine), in microseconds per row
 //! and in columns per nanosecond. No assertions: a benchmark, not a test.
 
+use klgauge::kernel::buf::Aligned;
 use klgauge::kernel::{self, Level, RowNorm};
 use std::hint::black_box;
 use std::time::Instant;
@@ -101,9 +102,9 @@ fn main() {
         .iter()
         .flat_map(|v| half::f16::from_f32(*v).to_bits().to_le_bytes())
         .collect();
-    let mut er = vec![0f32; cols];
-    let mut ec = vec![0f32; cols];
-    let mut out = vec![0f32; cols];
+    let mut er = Aligned::<f32>::zeroed(cols);
+    let mut ec = Aligned::<f32>::zeroed(cols);
+    let mut out = Aligned::<f32>::zeroed(cols);
     let mut blocks = vec![0f64; kernel::norm_blocks(cols)];
     println!(
         "kernel benchmark, {cols} columns; detected level {}",
@@ -158,10 +159,10 @@ fn main() {
             .flat_map(|v| ((v.to_bits() >> 16) as u16).to_le_bytes())
             .collect();
         let (mut xr, mut xc, mut er3, mut ec3) = (
-            vec![0f32; cols],
-            vec![0f32; cols],
-            vec![0f32; cols],
-            vec![0f32; cols],
+            Aligned::<f32>::zeroed(cols),
+            Aligned::<f32>::zeroed(cols),
+            Aligned::<f32>::zeroed(cols),
+            Aligned::<f32>::zeroed(cols),
         );
         let (mut br, mut bc) = (
             vec![0f64; kernel::norm_blocks(cols)],
@@ -180,7 +181,7 @@ fn main() {
         let (rx, ry) = (kernel::Row::Bf16(&bf), kernel::Row::Bf16(&bfy));
         let rr = kernel::normalise_row_at(l, rx, &mut er3, &mut br, kernel::Ahead::NONE).unwrap();
         let mut bw = vec![0f64; kernel::norm_blocks(cols)];
-        let mut vb = vec![0f32; cols];
+        let mut vb = Aligned::<f32>::zeroed(cols);
         run("compare_fused_bf16", &mut || {
             black_box(kernel::compare_fused_at(
                 l,

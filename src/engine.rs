@@ -10,6 +10,7 @@
 use crate::error::{Error, Result};
 use crate::estimators::{draw_weighted, k_values, EstimatorSums};
 use crate::input::LogitFile;
+use crate::kernel::buf::Aligned;
 use crate::kernel::{self, Ahead, Row, RowFault, RowNorm};
 use serde::{Deserialize, Serialize};
 use std::ops::Range;
@@ -353,10 +354,10 @@ struct RowOut {
 struct Scratch {
     cols: usize,
     /// The stored bytes of the reference row and of the current candidate row.
-    raw_r: Vec<u8>,
-    raw_c: Vec<u8>,
+    raw_r: Aligned<u8>,
+    raw_c: Aligned<u8>,
     /// exp(x - max) of the reference row, and its block sums.
-    er: Vec<f32>,
+    er: Aligned<f32>,
     br: Vec<f64>,
     pair: kernel::PairScratch,
     /// Decoded rows, for the opt-in Jensen-Shannon pass only.
@@ -371,9 +372,9 @@ impl Scratch {
     fn new(cols: usize, draws: usize) -> Scratch {
         Scratch {
             cols,
-            raw_r: Vec::new(),
-            raw_c: Vec::new(),
-            er: vec![0.0; cols],
+            raw_r: Aligned::zeroed(0),
+            raw_c: Aligned::zeroed(0),
+            er: Aligned::zeroed(cols),
             br: vec![0.0; kernel::norm_blocks(cols)],
             pair: kernel::PairScratch::new(cols),
             xd: Vec::new(),

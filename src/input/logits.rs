@@ -4,6 +4,7 @@
 
 use super::file::MappedFile;
 use crate::error::{Error, Result};
+use crate::kernel::buf::Aligned;
 use crate::kernel::{Ahead, Row};
 use safetensors::Dtype;
 use std::collections::BTreeMap;
@@ -387,7 +388,7 @@ impl LogitFile {
     /// than copying (10% more time). `map_streams_cheaply` measures which,
     /// once per shard, when the pass first reads it. `KLGAUGE_IO=map` or
     /// `KLGAUGE_IO=read` overrides it.
-    pub fn stored_row<'a>(&'a self, row: usize, cols: usize, raw: &'a mut Vec<u8>) -> Row<'a> {
+    pub fn stored_row<'a>(&'a self, row: usize, cols: usize, raw: &'a mut Aligned<u8>) -> Row<'a> {
         let es = self.dtype.size();
         #[cfg(unix)]
         {
@@ -395,7 +396,7 @@ impl LogitFile {
             let s = self.shard_of(row);
             if let Some(f) = s.positioned_reader(es) {
                 let start = s.logits_start + (row - s.first_row) * s.stride * es;
-                raw.resize(cols * es, 0);
+                raw.resize(cols * es);
                 if f.read_exact_at(raw, start as u64).is_ok() {
                     return self.dtype.row(raw);
                 }

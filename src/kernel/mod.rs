@@ -22,6 +22,7 @@
 
 #[cfg(target_arch = "x86_64")]
 mod avx2;
+pub mod buf;
 pub mod exp;
 pub mod lanes;
 pub mod row;
@@ -1625,7 +1626,7 @@ dispatched! {
 /// Working memory of `compare_pair`, allocated once per worker.
 pub struct PairScratch {
     /// v = w - e of the fused pass.
-    v: Vec<f32>,
+    v: buf::Aligned<f32>,
     /// Block sums of the candidate: exp(y - anchor), summed per NORM_BLOCK columns.
     pub blocks: Vec<f64>,
     // The two-pass route: decoded rows and the candidate's exponentials.
@@ -1648,7 +1649,7 @@ impl PairScratch {
 
     pub fn new(cols: usize) -> PairScratch {
         PairScratch {
-            v: vec![0.0; cols],
+            v: buf::Aligned::zeroed(cols),
             blocks: vec![0.0; norm_blocks(cols)],
             xd: Vec::new(),
             yd: Vec::new(),
