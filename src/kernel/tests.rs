@@ -276,6 +276,66 @@ fn argmax_cases(n: usize, ats: &[usize]) {
         for l in levels() {
             assert_eq!(scan_row_at(l, x).1, plain(x), "{}", l.name());
         }
+        stored_bf16_argmax(x, &plain);
+    }
+}
+
+/// The same cases stored as bf16, as the streaming pass reads them (the
+/// scan and the search widen the stored bytes themselves): the reference's
+/// top column from `normalise_row` and the candidate's from
+/// `compare_fused`, at every level, against the plain first maximum of the
+/// decoded row. NaN is not a value a row may hold there, so it is replaced
+/// by the row's lowest value.
+fn stored_bf16_argmax(x: &[f32], plain: &dyn Fn(&[f32]) -> usize) {
+    let n = x.len();
+    let bytes: Vec<u8> = x
+        .iter()
+        .map(|&v| if v.is_nan() { -2.0 } else { v })
+        .flat_map(|v| half::bf16::from_f32(v).to_bits().to_le_bytes())
+        .collect();
+    let decoded: Vec<f32> = bytes
+        .chunks_exact(2)
+        .map(|b| row::bf16_to_f32(u16::from_le_bytes([b[0], b[1]])))
+        .collect();
+    let want = plain(&decoded);
+    // A reference whose own top column is 0, for the candidate's search.
+    let mut flat = vec![0u8; 2 * n];
+    flat[..2].copy_from_slice(&half::bf16::from_f32(1.0).to_bits().to_le_bytes());
+    for l in levels() {
+        let (mut e, mut b) = (vec![0f32; n], vec![0f64; norm_blocks(n)]);
+        let r = normalise_row_at(l, Row::Bf16(&bytes), &mut e, &mut b, Ahead::NONE).unwrap();
+        assert_eq!(r.argmax as usize, want, "reference, {}", l.name());
+        let r0 = normalise_row_at(l, Row::Bf16(&flat), &mut e, &mut b, Ahead::NONE).unwrap();
+        let (mut v, mut bw) = (vec![0f32; n], vec![0f64; norm_blocks(n)]);
+        let row = Row::Bf16(&bytes);
+        let c = match compare_fused_at(
+            l,
+            Row::Bf16(&flat),
+            row,
+            &e,
+            &b,
+            &r0,
+            &mut v,
+            &mut bw,
+            Ahead::NONE,
+        ) {
+            Some(f) => f.c,
+            None => {
+                compare_pair(
+                    Row::Bf16(&flat),
+                    row,
+                    &e,
+                    &b,
+                    &r0,
+                    &mut PairScratch::new(n),
+                    Ahead::NONE,
+                )
+                .unwrap()
+                .0
+                .c
+            }
+        };
+        assert_eq!(c.argmax as usize, want, "candidate, {}", l.name());
     }
 }
 
