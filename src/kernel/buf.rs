@@ -1,8 +1,8 @@
 //! Working buffers that start on a cache-line boundary.
 //!
 //! The kernel's passes read and write 64 bytes (16 f32 lanes) at a time.
-//! A `Vec<f32>` of a row's length comes from the allocator 16 bytes past a
-//! page boundary (the allocator's own header), so every one of those
+//! A `Vec<f32>` of a row's length came from the allocator (glibc, which
+//! maps such sizes) 16 bytes past a page boundary, its own header, so every one of those
 //! accesses straddles two cache lines. Starting the buffers on a line
 //! boundary made the fused pass 1.04x faster on AVX-512 (`kernel_ab.py
 //! --alternate`, fastest of 10; see DEVELOPERS.md).

@@ -285,7 +285,7 @@ fn argmax_cases(n: usize, ats: &[usize]) {
 /// top column from `normalise_row` and the candidate's from
 /// `compare_fused`, at every level, against the plain first maximum of the
 /// decoded row. NaN is not a value a row may hold there, so it is replaced
-/// by the row's lowest value.
+/// by -2.0, the lowest value the cases hold.
 fn stored_bf16_argmax(x: &[f32], plain: &dyn Fn(&[f32]) -> usize) {
     let n = x.len();
     let bytes: Vec<u8> = x
