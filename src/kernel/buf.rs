@@ -80,12 +80,6 @@ impl<T: Plain> DerefMut for Aligned<T> {
     }
 }
 
-impl<T: Plain + std::fmt::Debug> std::fmt::Debug for Aligned<T> {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.debug_list().entries(self.iter()).finish()
-    }
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -24,39 +24,6 @@ pub fn padded(s: &[f32], fill: f32) -> F {
     v
 }
 
-/// Sum of the lanes by a fixed pairwise tree: a_j = v_j + v_(j+8),
-/// b_j = a_j + a_(j+4), then (b_0 + b_2) + (b_1 + b_3). `L` is the build
-/// level (see `kernel::Level`): the vector builds run the same tree with
-/// x86 shuffles, which LLVM does not reliably find on its own.
-#[inline(always)]
-pub fn hsum<const L: u8>(v: &F) -> f32 {
-    #[cfg(target_arch = "x86_64")]
-    if L >= 1 {
-        use std::arch::x86_64::*;
-        // SAFETY: levels 1 and 2 are only instantiated inside functions
-        // compiled with AVX2 (and AVX-512), called after run-time detection;
-        // the loads read the 16 values of `v`.
-        unsafe {
-            let lo = _mm256_loadu_ps(v.as_ptr());
-            let hi = _mm256_loadu_ps(v.as_ptr().add(8));
-            let a = _mm256_add_ps(lo, hi);
-            let b = _mm_add_ps(_mm256_castps256_ps128(a), _mm256_extractf128_ps::<1>(a));
-            let c = _mm_add_ps(b, _mm_movehl_ps(b, b));
-            let d = _mm_add_ss(c, _mm_movehdup_ps(c));
-            return _mm_cvtss_f32(d);
-        }
-    }
-    let mut a = [0f32; 8];
-    for j in 0..8 {
-        a[j] = v[j] + v[j + 8];
-    }
-    let mut b = [0f32; 4];
-    for j in 0..4 {
-        b[j] = a[j] + a[j + 4];
-    }
-    (b[0] + b[2]) + (b[1] + b[3])
-}
-
 /// The 16 lanes as f64 (exact), lanes 0..8 and 8..16, from one 512-bit
 /// load.
 ///
@@ -78,9 +45,11 @@ unsafe fn widen16(v: &F) -> (std::arch::x86_64::__m512d, std::arch::x86_64::__m5
     }
 }
 
-/// Sum of the lanes in f64 (each widened exactly) by the same fixed tree as
-/// `hsum`: a block's sum loses only the rounding of its f64 additions, not
-/// the 2^-24 of an f32 result.
+/// Sum of the lanes in f64 (each widened exactly) by the fixed tree of
+/// `hsum64`: a block's sum loses only the rounding of its f64 additions, not
+/// the 2^-24 of an f32 result. `L` is the build level (see
+/// `kernel::Level`): the vector builds run the same tree with x86 shuffles,
+/// which LLVM does not reliably find on its own.
 #[inline(always)]
 pub fn hsum_wide<const L: u8>(v: &F) -> f64 {
     #[cfg(target_arch = "x86_64")]
@@ -99,7 +68,9 @@ pub fn hsum_wide<const L: u8>(v: &F) -> f64 {
     #[cfg(target_arch = "x86_64")]
     if L >= 1 {
         use std::arch::x86_64::*;
-        // SAFETY: as in `hsum`; the loads read the 16 values of `v`.
+        // SAFETY: levels 1 and 2 are only instantiated inside functions
+        // compiled with AVX2 (and AVX-512), called after run-time detection;
+        // the loads read the 16 values of `v`.
         unsafe {
             let q = |k: usize| _mm256_cvtps_pd(_mm_loadu_ps(v.as_ptr().add(4 * k)));
             let (a0, a1) = (_mm256_add_pd(q(0), q(2)), _mm256_add_pd(q(1), q(3)));
@@ -111,7 +82,8 @@ pub fn hsum_wide<const L: u8>(v: &F) -> f64 {
     hsum64(&v.map(|x| x as f64))
 }
 
-/// Sum of f64 lanes by the same fixed tree.
+/// Sum of f64 lanes by a fixed pairwise tree: a_j = v_j + v_(j+8),
+/// b_j = a_j + a_(j+4), then (b_0 + b_2) + (b_1 + b_3).
 #[inline(always)]
 pub fn hsum64(v: &[f64; W]) -> f64 {
     let mut a = [0f64; 8];
@@ -147,7 +119,7 @@ pub fn widen_add<const L: u8>(acc: &mut [f64; W], v: &F) {
     #[cfg(target_arch = "x86_64")]
     if L >= 1 {
         use std::arch::x86_64::*;
-        // SAFETY: as in `hsum`; the loads and stores stay inside `v` and `acc`.
+        // SAFETY: as in `hsum_wide`; the loads and stores stay inside `v` and `acc`.
         unsafe {
             for q in 0..4 {
                 let f = _mm256_cvtps_pd(_mm_loadu_ps(v.as_ptr().add(4 * q)));
@@ -178,7 +150,7 @@ pub fn all_abs_below<const L: u8>(v: &F, bound: f32) -> bool {
     #[cfg(target_arch = "x86_64")]
     if L >= 1 {
         use std::arch::x86_64::*;
-        // SAFETY: as in `hsum`.
+        // SAFETY: as in `hsum_wide`.
         unsafe {
             let sign = _mm256_set1_ps(-0.0);
             let bd = _mm256_set1_ps(bound);
@@ -257,7 +229,7 @@ pub fn any_above<const L: u8, const N: usize>(v: [&F; N], bound: f32) -> bool {
     #[cfg(target_arch = "x86_64")]
     if L == 1 {
         use std::arch::x86_64::*;
-        // SAFETY: as in `hsum`.
+        // SAFETY: as in `hsum_wide`.
         unsafe {
             let bd = _mm256_set1_ps(bound);
             let mut m = _mm256_setzero_ps();
