@@ -717,11 +717,11 @@ const G_LONG: [f32; 8] = [
 /// loop reads each as a whole vector, which LLVM keeps in a register
 /// through the fused loop. Written as scalar constants, LLVM chose to
 /// broadcast two of them from memory again in every 16-column step
-/// (`vbroadcastss`), and the loop ran slower: `compare_fused_bf16` 1.038x,
-/// `fused_row_bf16` 1.034x, `row_from_memory_ahead` 1.020x with the lane
-/// copies on AVX-512 (fastest of 12 alternating runs of each build; whole
-/// runs 1.021x on two threads, 1.028x with three candidates). The
-/// values, and so the bits, are the same.
+/// (`vbroadcastss`), and the loop ran slower: `compare_fused_bf16` 1.038x
+/// and 1.054x, `fused_row_bf16` 1.034x and 1.032x, `row_from_memory_ahead`
+/// 1.020x and 1.032x with the lane copies on AVX-512 (fastest of 12 and 10
+/// alternating runs of each build; whole runs 1.021x on two threads, 1.028x
+/// with three candidates). The values, and so the bits, are the same.
 #[inline(always)]
 fn g_series<const L: u8, const LONG: bool>(d: f32, j: usize) -> f32 {
     let ma = mul_add::<L>;
