@@ -288,19 +288,20 @@ fn argmax_cases(n: usize, ats: &[usize]) {
 /// by -2.0, the lowest value the cases hold.
 fn stored_bf16_argmax(x: &[f32], plain: &dyn Fn(&[f32]) -> usize) {
     let n = x.len();
-    let bytes: Vec<u8> = x
+    let values: Vec<f32> = x
         .iter()
         .map(|&v| if v.is_nan() { -2.0 } else { v })
-        .flat_map(|v| half::bf16::from_f32(v).to_bits().to_le_bytes())
         .collect();
+    let bytes = Form::Bf16.bytes(&values);
     let decoded: Vec<f32> = bytes
         .chunks_exact(2)
         .map(|b| row::bf16_to_f32(u16::from_le_bytes([b[0], b[1]])))
         .collect();
     let want = plain(&decoded);
     // A reference whose own top column is 0, for the candidate's search.
-    let mut flat = vec![0u8; 2 * n];
-    flat[..2].copy_from_slice(&half::bf16::from_f32(1.0).to_bits().to_le_bytes());
+    let mut top0 = vec![0f32; n];
+    top0[0] = 1.0;
+    let flat = Form::Bf16.bytes(&top0);
     for l in levels() {
         let (mut e, mut b) = (vec![0f32; n], vec![0f64; norm_blocks(n)]);
         let r = normalise_row_at(l, Row::Bf16(&bytes), &mut e, &mut b, Ahead::NONE).unwrap();
@@ -370,6 +371,39 @@ fn levels() -> Vec<Level> {
         .into_iter()
         .filter(|&l| l <= detected_level())
         .collect()
+}
+
+/// How a test row is stored: its values rounded to nearest in the form, as
+/// the little-endian bytes a logit file holds, and read back as a `Row`.
+#[derive(Clone, Copy, Debug)]
+enum Form {
+    F32,
+    Bf16,
+    F16,
+}
+
+impl Form {
+    fn bytes(self, v: &[f32]) -> Vec<u8> {
+        match self {
+            Form::F32 => v.iter().flat_map(|f| f.to_le_bytes()).collect(),
+            Form::Bf16 => v
+                .iter()
+                .flat_map(|&f| half::bf16::from_f32(f).to_le_bytes())
+                .collect(),
+            Form::F16 => v
+                .iter()
+                .flat_map(|&f| half::f16::from_f32(f).to_le_bytes())
+                .collect(),
+        }
+    }
+
+    fn row(self, b: &[u8]) -> Row<'_> {
+        match self {
+            Form::F32 => Row::F32(b),
+            Form::Bf16 => Row::Bf16(b),
+            Form::F16 => Row::F16(b),
+        }
+    }
 }
 
 /// Rows of awkward lengths with -inf columns (shared and one-sided), ties
@@ -1265,23 +1299,9 @@ fn fused_pass_reads_every_stored_format_exactly() {
             .iter()
             .map(|&v| q(v as f64 + 0.05 * normal(&mut s), bf))
             .collect();
-        let enc = |v: &[f32]| -> Vec<u8> {
-            v.iter()
-                .flat_map(|&a| {
-                    if bf {
-                        half::bf16::from_f32(a).to_le_bytes()
-                    } else {
-                        half::f16::from_f32(a).to_le_bytes()
-                    }
-                })
-                .collect()
-        };
-        let (xb, yb) = (enc(&x), enc(&y));
-        let (xr, yr) = if bf {
-            (Row::Bf16(&xb), Row::Bf16(&yb))
-        } else {
-            (Row::F16(&xb), Row::F16(&yb))
-        };
+        let form = if bf { Form::Bf16 } else { Form::F16 };
+        let (xb, yb) = (form.bytes(&x), form.bytes(&y));
+        let (xr, yr) = (form.row(&xb), form.row(&yb));
         for l in levels() {
             let mut er = vec![0f32; n];
             let mut br = vec![0f64; norm_blocks(n)];
@@ -1489,36 +1509,16 @@ fn avx2_loops_give_the_generic_bits() {
                 y[1500] += 4.0;
                 x[1900] -= 3.0;
             }
-            for form in 0..3 {
-                let enc = |v: &[f32]| -> Vec<u8> {
-                    match form {
-                        0 => v.iter().flat_map(|f| f.to_le_bytes()).collect(),
-                        1 => v
-                            .iter()
-                            .flat_map(|f| half::bf16::from_f32(*f).to_bits().to_le_bytes())
-                            .collect(),
-                        _ => v
-                            .iter()
-                            .flat_map(|f| half::f16::from_f32(*f).to_bits().to_le_bytes())
-                            .collect(),
-                    }
-                };
-                let (bx, by) = (enc(&x), enc(&y));
-                fn row(form: usize, b: &[u8]) -> Row<'_> {
-                    match form {
-                        0 => Row::F32(b),
-                        1 => Row::Bf16(b),
-                        _ => Row::F16(b),
-                    }
-                }
+            for form in [Form::F32, Form::Bf16, Form::F16] {
+                let (bx, by) = (form.bytes(&x), form.bytes(&y));
                 set(false);
-                let fast = passes_at(Level::Avx2, row(form, &bx), row(form, &by));
+                let fast = passes_at(Level::Avx2, form.row(&bx), form.row(&by));
                 set(true);
-                let generic = passes_at(Level::Avx2, row(form, &bx), row(form, &by));
+                let generic = passes_at(Level::Avx2, form.row(&bx), form.row(&by));
                 set(false);
                 assert_eq!(
                     fast, generic,
-                    "n={n} noise={noise} shift={shift} form={form}"
+                    "n={n} noise={noise} shift={shift} form={form:?}"
                 );
                 declined += (fast.last() == Some(&u64::MAX)) as usize;
                 cases += 1;
