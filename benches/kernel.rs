@@ -61,7 +61,19 @@ fn engine_row(
     ps: &mut kernel::PairScratch,
 ) {
     let r = kernel::normalise_row_at(l, black_box(rx), er, br, ahead).unwrap();
-    black_box(kernel::compare_pair(rx, black_box(ry), er, br, &r, ps, kernel::Ahead::NONE).ok());
+    black_box(
+        kernel::compare_pair(
+            rx,
+            black_box(ry),
+            er,
+            br,
+            &r,
+            ps,
+            kernel::Ahead::NONE,
+            &mut kernel::TvFold::default(),
+        )
+        .ok(),
+    );
 }
 
 fn main() {
@@ -193,6 +205,7 @@ fn main() {
                 &mut vb,
                 &mut bw,
                 kernel::Ahead::NONE,
+                &mut kernel::TvFold::default(),
             ));
         });
         run("fused_row_bf16", &mut || {

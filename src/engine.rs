@@ -482,17 +482,30 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
         .map(|t| t[row])
         .filter(|&t| t >= 0 && (t as usize) < cols);
     let floor_row = ctx.floor_rows.binary_search(&row).is_ok();
+    // A candidate's total variation is summed by the next candidate's pass
+    // (see `kernel::TvFold`); `owed_by`: whose it is.
+    let mut fold = kernel::TvFold::default();
+    let mut owed_by = 0usize;
+    let last = ctx.candidates.len().saturating_sub(1);
     for (k, cand) in ctx.candidates.iter().enumerate() {
-        let co = &mut out.cands[k];
         let xc = cand.stored_row(row, cols, raw_c);
         // The candidate is normalised inside the pair pass (see `kernel::compare_pair`).
-        let (f, route) = match kernel::compare_pair(xr, xc, er, br, &nr, pair, ahead(k + 1)) {
+        fold.defer = k < last;
+        let got = kernel::compare_pair(xr, xc, er, br, &nr, pair, ahead(k + 1), &mut fold);
+        if let Some(tv) = fold.settled.take() {
+            out.cands[owed_by].m[TV] = tv;
+        }
+        let co = &mut out.cands[k];
+        let (f, route) = match got {
             Ok(v) => v,
             Err(fault) => {
                 co.fault = Some(fault);
                 continue;
             }
         };
+        if let Some(o) = f.owed {
+            (fold.owed, owed_by) = (Some(o), k);
+        }
         co.fault = None;
         co.floor = if floor_row {
             crate::floor::stored_row_floor(xr, ctx.reference.dtype, xc, cand.dtype, er, &nr)

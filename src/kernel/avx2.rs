@@ -352,7 +352,9 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
             } else {
                 // The row's last, partial block: the generic code.
                 r.store(s);
-                let vb = fused_block::<1, OFF, SX, SY>(x, y, er, k, s, vbuf, lo, n);
+                let vb = fused_block::<1, OFF, false, SX, SY>(
+                    x, y, er, k, s, vbuf, lo, n, 0.0, &mut [0f32; W],
+                );
                 r = Sums::load(s);
                 vb
             };

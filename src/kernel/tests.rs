@@ -319,6 +319,7 @@ fn stored_bf16_argmax(x: &[f32], plain: &dyn Fn(&[f32]) -> usize) {
             &mut v,
             &mut bw,
             Ahead::NONE,
+            &mut TvFold::default(),
         ) {
             Some(f) => f.c,
             None => {
@@ -330,6 +331,7 @@ fn stored_bf16_argmax(x: &[f32], plain: &dyn Fn(&[f32]) -> usize) {
                     &r0,
                     &mut PairScratch::new(n),
                     Ahead::NONE,
+                    &mut TvFold::default(),
                 )
                 .unwrap()
                 .0
@@ -976,6 +978,7 @@ fn fused_at(l: Level, x: &[f32], y: &[f32]) -> (RowNorm, Option<Fused>, Vec<f64>
         &mut v,
         &mut bw,
         Ahead::NONE,
+        &mut TvFold::default(),
     );
     (r, f, bw)
 }
@@ -1311,7 +1314,18 @@ fn fused_pass_reads_every_stored_format_exactly() {
             let r32 = normalise_store_at(l, &x, &mut vec![0f32; n], &mut br.clone()).unwrap();
             assert_eq!(r, r32, "{} bf16={bf}", l.name());
             let (mut v, mut bw) = (vec![0f32; n], vec![0f64; norm_blocks(n)]);
-            let got = compare_fused_at(l, xr, yr, &er, &br, &r, &mut v, &mut bw, Ahead(&xb));
+            let got = compare_fused_at(
+                l,
+                xr,
+                yr,
+                &er,
+                &br,
+                &r,
+                &mut v,
+                &mut bw,
+                Ahead(&xb),
+                &mut TvFold::default(),
+            );
             assert_eq!(got, fused_at(l, &x, &y).1, "{} bf16={bf}", l.name());
         }
     }
@@ -1443,7 +1457,18 @@ fn passes_at(l: Level, x: Row, y: Row) -> Vec<u64> {
     assert_eq!(r2, r, "normalise without storing differs");
     let mut v = vec![0f32; n];
     let mut bw = vec![0f64; norm_blocks(n)];
-    match compare_fused_at(l, x, y, &er, &br, &r, &mut v, &mut bw, Ahead::NONE) {
+    match compare_fused_at(
+        l,
+        x,
+        y,
+        &er,
+        &br,
+        &r,
+        &mut v,
+        &mut bw,
+        Ahead::NONE,
+        &mut TvFold::default(),
+    ) {
         Some(f) => {
             out.extend(
                 [
@@ -1704,4 +1729,70 @@ fn the_series_and_the_direct_form_use_the_same_anchor() {
     ];
     let (kl, kr, tv, _, hq) = reference(&x, &y);
     assert_every_level_close("", &x, &y, (kl, kr, tv), hq, (1e-5, 0.0, 1e-5), (1e-5, 0.0));
+}
+
+/// A candidate's total variation left owed (`TvFold`) and summed inside
+/// the next candidate's fused pass, by the standalone pass where the next
+/// row takes the two-pass route, or by `PairScratch::settle`, has the bits
+/// of the pass that sums it on its own, at every level; the next
+/// candidate's results do not change. Row lengths with a partial last
+/// block and a partial last chunk; the last candidates force the two-pass
+/// route before a pass runs (no value at the reference's top column) and
+/// after one (a column without mass).
+#[test]
+fn folded_total_variation_keeps_its_bits() {
+    for n in [300usize, 4_099, 20_000] {
+        let mut seed = n as u64;
+        let x: Vec<f32> = (0..n).map(|_| 2.5 * normal(&mut seed) as f32).collect();
+        let y1: Vec<f32> = x.iter().map(|&v| v + 0.1 * normal(&mut seed) as f32).collect();
+        let y2: Vec<f32> = x.iter().map(|&v| v + 0.3 * normal(&mut seed) as f32).collect();
+        let bx = Form::Bf16.bytes(&x);
+        let top = {
+            let (mut e, mut b) = (vec![0f32; n], vec![0f64; norm_blocks(n)]);
+            let r = normalise_row_at(Level::Scalar, Row::Bf16(&bx), &mut e, &mut b, Ahead::NONE);
+            r.unwrap().argmax as usize
+        };
+        let mut y3 = y2.clone();
+        y3[top] = f32::NEG_INFINITY;
+        let mut y4 = y2.clone();
+        y4[(top + n / 2) % n] = f32::NEG_INFINITY;
+        let ys: Vec<Vec<u8>> = [&y1, &y2, &y3, &y4]
+            .iter()
+            .map(|y| Form::Bf16.bytes(y))
+            .collect();
+        for l in levels() {
+            let (mut e, mut b) = (vec![0f32; n], vec![0f64; norm_blocks(n)]);
+            let r = normalise_row_at(l, Row::Bf16(&bx), &mut e, &mut b, Ahead::NONE).unwrap();
+            let pair = |y: &[u8], s: &mut PairScratch, fold: &mut TvFold| {
+                compare_pair(Row::Bf16(&bx), Row::Bf16(y), &e, &b, &r, s, Ahead::NONE, fold)
+                    .unwrap()
+            };
+            let alone = |y: &[u8]| pair(y, &mut PairScratch::new(n), &mut TvFold::default());
+            let want = alone(&ys[0]).0.m.tv;
+            for (k, next) in ys.iter().enumerate().skip(1) {
+                let what = format!("n={n}, next candidate {k}, {}", l.name());
+                let mut s = PairScratch::new(n);
+                let mut fold = TvFold {
+                    defer: true,
+                    ..TvFold::default()
+                };
+                let (f1, route) = pair(&ys[0], &mut s, &mut fold);
+                assert_eq!(route, Route::Fused, "{what}");
+                assert!(f1.m.tv.is_nan(), "{what}");
+                let owed = f1.owed.expect("a close candidate's total variation is deferred");
+                assert_eq!(s.settle(&e, owed).to_bits(), want.to_bits(), "{what}");
+                fold = TvFold {
+                    defer: false,
+                    owed: Some(owed),
+                    settled: None,
+                };
+                let (f2, route2) = pair(next, &mut s, &mut fold);
+                assert_eq!(fold.owed, None, "{what}");
+                assert_eq!(fold.settled.map(f64::to_bits), Some(want.to_bits()), "{what}");
+                let (a2, alone_route) = alone(next);
+                assert_eq!((f2, route2), (a2, alone_route), "{what}");
+                assert_eq!(route2 == Route::Fused, k == 1, "{what}");
+            }
+        }
+    }
 }
