@@ -366,6 +366,13 @@ struct Scratch {
     order: crate::estimators::DrawScratch,
     tok_p: Vec<u32>,
     tok_q: Vec<u32>,
+    /// The total variation this worker's last row left owed (see
+    /// `compute_row`), and that row.
+    carry: Carry,
+    carry_row: usize,
+    /// Total variations settled for earlier rows since the block began:
+    /// (row, candidate, value), put into the block's results after it.
+    settled: Vec<(usize, usize, f64)>,
 }
 
 impl Scratch {
@@ -382,6 +389,9 @@ impl Scratch {
             order: Default::default(),
             tok_p: vec![0; draws],
             tok_q: vec![0; draws],
+            carry: Carry::default(),
+            carry_row: 0,
+            settled: Vec::new(),
         }
     }
 }
@@ -425,10 +435,27 @@ fn fold_draws(
     }
 }
 
+/// A total variation one row's pass left to the next pass over the same
+/// buffers (see `kernel::TvFold`), and whose it is: candidate `cand`.
+#[derive(Default)]
+struct Carry {
+    fold: kernel::TvFold,
+    cand: usize,
+}
+
 /// Computes one row into `out`. Each kernel pass pulls the row of the
 /// candidate compared next toward the cache while it runs (where that file
 /// is read from the map; see `LogitFile::ahead`). Pulling the thread's next
 /// reference row the same way during the last comparison measured no gain.
+///
+/// A candidate's total variation is summed by the next pass that streams
+/// the same buffers (`kernel::TvFold`): the next candidate's, or, for the
+/// last candidate, the normalising pass of the next row this worker takes
+/// (`s.carry`). What the previous row left there is settled by this row's
+/// first pass, whatever happens to this row, into `s.settled`; what is
+/// still owed when a block ends is summed on its own (`settle_block`).
+/// Which rows a worker takes does not change a bit of the results: a
+/// folded sum has the bits of the pass on its own.
 fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
     let Scratch {
         cols,
@@ -442,6 +469,9 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
         order,
         tok_p,
         tok_q,
+        carry,
+        carry_row,
+        settled,
     } = s;
     let cols = *cols;
     let xr = ctx.reference.stored_row(row, cols, raw_r);
@@ -450,7 +480,13 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
             .get(k)
             .map_or(Ahead::NONE, |c| c.ahead(row, cols))
     };
-    let nr = match kernel::normalise_row(xr, er, br, ahead(0)) {
+    let fold = &mut carry.fold;
+    let got = kernel::normalise_settling(xr, er, br, ahead(0), pair, fold);
+    if let Some(tv) = fold.settled.take() {
+        settled.push((*carry_row, carry.cand, tv));
+    }
+    *carry_row = row;
+    let nr = match got {
         Ok(n) => n,
         Err(f) => {
             out.ref_fault = Some(f);
@@ -482,18 +518,13 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
         .map(|t| t[row])
         .filter(|&t| t >= 0 && (t as usize) < cols);
     let floor_row = ctx.floor_rows.binary_search(&row).is_ok();
-    // A candidate's total variation is summed by the next candidate's pass
-    // (see `kernel::TvFold`); `owed_by`: whose it is.
-    let mut fold = kernel::TvFold::default();
-    let mut owed_by = 0usize;
-    let last = ctx.candidates.len().saturating_sub(1);
     for (k, cand) in ctx.candidates.iter().enumerate() {
         let xc = cand.stored_row(row, cols, raw_c);
         // The candidate is normalised inside the pair pass (see `kernel::compare_pair`).
-        fold.defer = k < last;
-        let got = kernel::compare_pair(xr, xc, er, br, &nr, pair, ahead(k + 1), &mut fold);
+        fold.defer = true;
+        let got = kernel::compare_pair(xr, xc, er, br, &nr, pair, ahead(k + 1), fold);
         if let Some(tv) = fold.settled.take() {
-            out.cands[owed_by].m[TV] = tv;
+            out.cands[carry.cand].m[TV] = tv;
         }
         let co = &mut out.cands[k];
         let (f, route) = match got {
@@ -504,7 +535,7 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
             }
         };
         if let Some(o) = f.owed {
-            (fold.owed, owed_by) = (Some(o), k);
+            (fold.owed, carry.cand) = (Some(o), k);
         }
         co.fault = None;
         co.floor = if floor_row {
@@ -559,6 +590,23 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
             fold_draws(&mut co.est, 1, &ctx.opts.samples, |j| {
                 -log_ratio(xr, &nr, xc, &nc, tq[j])
             });
+        }
+    }
+}
+
+/// Puts the total variations a block's rows left to later passes into
+/// its results (`outs`, from row `row0`), summing on their own those still
+/// owed (see `compute_row`).
+fn settle_block(scratch: &[std::sync::Mutex<Scratch>], row0: usize, outs: &mut [RowOut]) {
+    for m in scratch {
+        let mut g = m.lock().unwrap_or_else(|e| e.into_inner());
+        let s = &mut *g;
+        if let Some(o) = s.carry.fold.owed.take() {
+            let tv = s.pair.settle(&s.er, o);
+            s.settled.push((s.carry_row, s.carry.cand, tv));
+        }
+        for (row, k, tv) in s.settled.drain(..) {
+            outs[row - row0].cands[k].m[TV] = tv;
         }
     }
 }
@@ -676,6 +724,7 @@ pub fn run(
                     }
                 }
             });
+        settle_block(&scratch, row0, outs);
     };
     let bar = progress_bar(opts.progress, range.len() as u64);
     let start = std::time::Instant::now();

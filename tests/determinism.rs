@@ -187,6 +187,37 @@ fn run(
     }
 }
 
+/// Each candidate's per-position values are the same bits whether it is
+/// compared alone or beside others: a candidate's total variation may be
+/// summed inside another candidate's pass or the next row's (see
+/// `kernel::TvFold`), which must not change it.
+#[test]
+fn a_candidate_alone_gives_the_bits_it_gives_among_others() {
+    let inp = inputs();
+    let all = run(&inp, &inp.reference, &inp.candidates, 2, 7, "all", &[]);
+    let all = String::from_utf8(all.csv).unwrap();
+    for (k, c) in inp.candidates.iter().enumerate() {
+        let alone = run(
+            &inp,
+            &inp.reference,
+            std::slice::from_ref(c),
+            2,
+            7,
+            "alone",
+            &[],
+        );
+        let alone = String::from_utf8(alone.csv).unwrap();
+        let mine: Vec<&str> = all
+            .lines()
+            .skip(1)
+            .filter_map(|l| l.strip_prefix(&format!("{k},")))
+            .collect();
+        let want: Vec<&str> = alone.lines().skip(1).collect();
+        assert!(want.len() > 400, "candidate {k}: {} rows", want.len());
+        assert_eq!(mine, want, "candidate {k}");
+    }
+}
+
 #[test]
 fn one_two_and_sixteen_threads_give_byte_identical_reports() {
     let inp = inputs();

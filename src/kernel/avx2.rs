@@ -135,7 +135,16 @@ pub(super) unsafe fn exp_pass<const STORE: bool, S: Src>(
         if whole * NORM_BLOCK < n {
             // The row's last, partial block: the generic code.
             ahead.block(whole, nb);
-            let (s, t) = exp_block::<1, STORE, S>(x, whole * NORM_BLOCK, n, m, e);
+            let (s, t) = exp_block::<1, STORE, false, S>(
+                x,
+                whole * NORM_BLOCK,
+                n,
+                m,
+                e,
+                &[],
+                0.0,
+                &mut [0f32; W],
+            );
             sums.fold(whole, pair(&s), pair(&t), blocks);
         }
     }
@@ -353,7 +362,16 @@ pub(super) unsafe fn fused_loop<const OFF: bool, SX: Src, SY: Src>(
                 // The row's last, partial block: the generic code.
                 r.store(s);
                 let vb = fused_block::<1, OFF, false, SX, SY>(
-                    x, y, er, k, s, vbuf, lo, n, 0.0, &mut [0f32; W],
+                    x,
+                    y,
+                    er,
+                    k,
+                    s,
+                    vbuf,
+                    lo,
+                    n,
+                    0.0,
+                    &mut [0f32; W],
                 );
                 r = Sums::load(s);
                 vb

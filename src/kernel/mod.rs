@@ -506,13 +506,19 @@ macro_rules! for_blocks {
 
 /// The normalising pass over columns lo..hi of one block: e = exp(x - m)
 /// (stored where STORE), and the block's lane sums of e and of (x - m) e.
+/// Where TV (and STORE), first adds |v - uz e| of the e the buffer held to
+/// `tv` (see `TvFold`), chunk by chunk as `tv_pass` does.
 #[inline(always)]
-fn exp_block<const L: u8, const STORE: bool, S: Src>(
+#[allow(clippy::too_many_arguments)]
+fn exp_block<const L: u8, const STORE: bool, const TV: bool, S: Src>(
     x: S,
     lo: usize,
     hi: usize,
     m: f32,
     e: &mut [f32],
+    v: &[f32],
+    uz: f32,
+    tv: &mut F,
 ) -> (F, F) {
     // Both sums start afresh in every block, so consecutive blocks'
     // dependency chains overlap.
@@ -520,17 +526,23 @@ fn exp_block<const L: u8, const STORE: bool, S: Src>(
     let mut t = [0f32; W];
     let mut c = lo;
     while c + W <= hi {
+        if TV {
+            tv_step::<L>(tv, load(&v[c..c + W]), load(&e[c..c + W]), uz);
+        }
         // SAFETY: c + 16 <= hi <= n.
-        let v = exp_step::<L>(&unsafe { x.chunk::<L>(c) }, m, &mut s, &mut t);
+        let r = exp_step::<L>(&unsafe { x.chunk::<L>(c) }, m, &mut s, &mut t);
         if STORE {
-            e[c..c + W].copy_from_slice(&v);
+            e[c..c + W].copy_from_slice(&r);
         }
         c += W;
     }
     if c < hi {
-        let v = exp_step::<L>(&x.padded(c, hi, NEG_INF), m, &mut s, &mut t);
+        if TV {
+            tv_step::<L>(tv, &padded(&v[c..hi], 0.0), &padded(&e[c..hi], 0.0), uz);
+        }
+        let r = exp_step::<L>(&x.padded(c, hi, NEG_INF), m, &mut s, &mut t);
         if STORE {
-            e[c..hi].copy_from_slice(&v[..hi - c]);
+            e[c..hi].copy_from_slice(&r[..hi - c]);
         }
     }
     (s, t)
@@ -545,25 +557,62 @@ fn exp_pass<const L: u8, const STORE: bool, S: Src>(
     e: &mut [f32],
     blocks: &mut [f64],
     ahead: Ahead,
+    v: &[f32],
+    fold: &mut TvFold,
 ) -> (f64, f64) {
+    let n = x.len();
     #[cfg(target_arch = "x86_64")]
     if L == 1 && avx2_loops() {
+        // As in fused_loop: what is owed is summed on its own first.
+        settle_alone::<L>(v, e, fold);
         // SAFETY: level 1 is only instantiated inside functions compiled
         // with AVX2 and FMA, called after run-time detection; the buffer
         // lengths were asserted by the caller.
         return unsafe { avx2::exp_pass::<STORE, S>(x, m, e, blocks, ahead) };
     }
     // t is summed in f32 lanes per block (NORM_BLOCK columns), then in f64.
-    let n = x.len();
     let nb = norm_blocks(n);
     let mut t_acc = [0f64; W];
-    let s_tot = for_blocks!(L, n, blocks, |b, lo, hi| {
-        ahead.block(b, nb);
-        let (s, t) = exp_block::<L, STORE, S>(x, lo, hi, m, e);
-        widen_add::<L>(&mut t_acc, &t);
-        s
-    });
+    let mut tv_acc = [0f64; W];
+    macro_rules! walk {
+        ($tv:literal, $uz:expr) => {
+            for_blocks!(L, n, blocks, |b, lo, hi| {
+                ahead.block(b, nb);
+                let mut tv = [0f32; W];
+                let (s, t) = exp_block::<L, STORE, $tv, S>(x, lo, hi, m, e, v, $uz, &mut tv);
+                widen_add::<L>(&mut t_acc, &t);
+                if $tv {
+                    widen_add::<L>(&mut tv_acc, &tv);
+                }
+                s
+            })
+        };
+    }
+    let s_tot = match fold.owed.take() {
+        Some(o) if STORE => {
+            assert!(
+                o.n == n && v.len() >= n,
+                "normalise: owed row of another length"
+            );
+            let s_tot = walk!(true, o.uz);
+            fold.settled = Some(o.finish(hsum64(&tv_acc)));
+            s_tot
+        }
+        o => {
+            fold.owed = o;
+            walk!(false, 0.0)
+        }
+    };
     (s_tot, hsum64(&t_acc))
+}
+
+/// What `fold` owes, summed on its own pass (v and e still those it was
+/// owed on).
+#[inline(always)]
+fn settle_alone<const L: u8>(v: &[f32], e: &[f32], fold: &mut TvFold) {
+    if let Some(o) = fold.owed.take() {
+        fold.settled = Some(o.finish(tv_pass::<L>(&v[..o.n], &e[..o.n], o.uz)));
+    }
 }
 
 #[inline(always)]
@@ -572,6 +621,24 @@ fn normalise_any<const L: u8, const STORE: bool, S: Src>(
     e: &mut [f32],
     blocks: &mut [f64],
     ahead: Ahead,
+    v: &[f32],
+    fold: &mut TvFold,
+) -> Result<RowNorm, RowFault> {
+    let got = normalise_folding::<L, STORE, S>(x, e, blocks, ahead, v, fold);
+    // A row that failed before its exponentials were written: e is still
+    // the one owed on.
+    settle_alone::<L>(v, e, fold);
+    got
+}
+
+#[inline(always)]
+fn normalise_folding<const L: u8, const STORE: bool, S: Src>(
+    x: S,
+    e: &mut [f32],
+    blocks: &mut [f64],
+    ahead: Ahead,
+    v: &[f32],
+    fold: &mut TvFold,
 ) -> Result<RowNorm, RowFault> {
     assert!(
         !STORE || e.len() >= x.len(),
@@ -585,7 +652,7 @@ fn normalise_any<const L: u8, const STORE: bool, S: Src>(
     if !max.is_finite() {
         return Err(classify_fault(x));
     }
-    let (s, t) = exp_pass::<L, STORE, S>(x, max, e, blocks, ahead);
+    let (s, t) = exp_pass::<L, STORE, S>(x, max, e, blocks, ahead, v, fold);
     // A NaN logit went through exp into the sum (NaN lanes are kept), so
     // one test here replaces a test per column.
     if s.is_nan() {
@@ -607,7 +674,14 @@ fn normalise_impl<const L: u8>(
     e: &mut [f32],
     blocks: &mut [f64],
 ) -> Result<RowNorm, RowFault> {
-    normalise_any::<L, true, _>(row::F32Le(bytemuck::cast_slice(x)), e, blocks, Ahead::NONE)
+    normalise_any::<L, true, _>(
+        row::F32Le(bytemuck::cast_slice(x)),
+        e,
+        blocks,
+        Ahead::NONE,
+        &[],
+        &mut TvFold::default(),
+    )
 }
 
 #[inline(always)]
@@ -617,6 +691,8 @@ fn normalise_only_impl<const L: u8>(x: &[f32], blocks: &mut [f64]) -> Result<Row
         &mut [],
         blocks,
         Ahead::NONE,
+        &[],
+        &mut TvFold::default(),
     )
 }
 
@@ -627,13 +703,36 @@ fn normalise_row_impl<const L: u8>(
     blocks: &mut [f64],
     ahead: Ahead,
 ) -> Result<RowNorm, RowFault> {
-    with_src!(x, s => normalise_any::<L, true, _>(s, e, blocks, ahead))
+    let fold = &mut TvFold::default();
+    with_src!(x, s => normalise_any::<L, true, _>(s, e, blocks, ahead, &[], fold))
+}
+
+#[inline(always)]
+fn normalise_settling_impl<const L: u8>(
+    x: Row,
+    e: &mut [f32],
+    blocks: &mut [f64],
+    ahead: Ahead,
+    s: &PairScratch,
+    fold: &mut TvFold,
+) -> Result<RowNorm, RowFault> {
+    let v = &s.v[..];
+    with_src!(x, src => normalise_any::<L, true, _>(src, e, blocks, ahead, v, fold))
 }
 
 dispatched! {
     /// `normalise_store` of a row in its stored form, widened as it is
     /// read; `ahead` is pulled toward the cache meanwhile.
     pub fn normalise_row / normalise_row_at(x: Row, e: &mut [f32], blocks: &mut [f64], ahead: Ahead) -> Result<RowNorm, RowFault> => normalise_row_impl
+}
+
+dispatched! {
+    /// `normalise_row` of the next reference row into the `e` a fused pass
+    /// over `s` left a total variation owed on (`fold.owed`; see
+    /// `TvFold`): the pass adds each chunk's |v - uz e| before it
+    /// overwrites the chunk's e, and leaves the sum in `fold.settled`
+    /// (summed on its own where the row fails first).
+    pub fn normalise_settling / normalise_settling_at(x: Row, e: &mut [f32], blocks: &mut [f64], ahead: Ahead, s: &PairScratch, fold: &mut TvFold) -> Result<RowNorm, RowFault> => normalise_settling_impl
 }
 
 dispatched! {
@@ -1583,7 +1682,10 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
     let (tv, owed) = if defer {
         (f64::NAN, Some(owed))
     } else {
-        (owed.finish(tv_pass::<L>(&vbuf[..n], &er[..n], owed.uz)), None)
+        (
+            owed.finish(tv_pass::<L>(&vbuf[..n], &er[..n], owed.uz)),
+            None,
+        )
     };
     for (b, &r) in bw[..nb].iter_mut().zip(br) {
         *b = (*b + r).max(0.0);
@@ -1627,7 +1729,15 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
 /// block sums of v, `br`: of e), with the reference's top column, where a
 /// peaked row's difference sits, split from its block. A partition's sum
 /// over v - uz e is 0, so a row of one block without that column gives 0.
-fn tv_lower_bound(v: &[f32], er: &[f32], bw: &[f64], br: &[f64], r: &RowNorm, uz: f64, z: f64) -> f64 {
+fn tv_lower_bound(
+    v: &[f32],
+    er: &[f32],
+    bw: &[f64],
+    br: &[f64],
+    r: &RowNorm,
+    uz: f64,
+    z: f64,
+) -> f64 {
     let a = r.argmax as usize;
     let ba = a / NORM_BLOCK;
     let mut t = 0f64;
@@ -1997,7 +2107,14 @@ fn floor_impl<const L: u8>(x: &[f32], rx: Rounding, y: &[f32], ry: Rounding) -> 
     let ys = row::F32Le(bytemuck::cast_slice(&y[..n]));
     let mut e = vec![0f32; n];
     let mut blocks = vec![0f64; norm_blocks(n)];
-    match normalise_any::<L, true, _>(xs, &mut e, &mut blocks, Ahead::NONE) {
+    match normalise_any::<L, true, _>(
+        xs,
+        &mut e,
+        &mut blocks,
+        Ahead::NONE,
+        &[],
+        &mut TvFold::default(),
+    ) {
         Ok(r) => floor_sum::<L, _, _>(xs, rx, ys, ry, (1.0 / r.sum) as f32, &e),
         Err(_) => f64::NAN,
     }

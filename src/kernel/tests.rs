@@ -1731,21 +1731,59 @@ fn the_series_and_the_direct_form_use_the_same_anchor() {
     assert_every_level_close("", &x, &y, (kl, kr, tv), hq, (1e-5, 0.0, 1e-5), (1e-5, 0.0));
 }
 
+/// The fused pass at level `l` with its own buffers, handing `fold` on.
+#[allow(clippy::too_many_arguments)]
+fn fused_folding(
+    l: Level,
+    x: &[u8],
+    y: &[u8],
+    e: &[f32],
+    b: &[f64],
+    r: &RowNorm,
+    v: &mut [f32],
+    fold: &mut TvFold,
+) -> Option<Fused> {
+    let mut bw = vec![0f64; b.len()];
+    compare_fused_at(
+        l,
+        Row::Bf16(x),
+        Row::Bf16(y),
+        e,
+        b,
+        r,
+        v,
+        &mut bw,
+        Ahead::NONE,
+        fold,
+    )
+}
+
+/// What `owed` comes to, summed on its own at level `l`.
+fn settle_at(l: Level, v: &[f32], e: &[f32], owed: TvOwed) -> f64 {
+    owed.finish(tv_sum_at(l, &v[..owed.n], &e[..owed.n], owed.uz))
+}
+
 /// A candidate's total variation left owed (`TvFold`) and summed inside
-/// the next candidate's fused pass, by the standalone pass where the next
-/// row takes the two-pass route, or by `PairScratch::settle`, has the bits
-/// of the pass that sums it on its own, at every level; the next
-/// candidate's results do not change. Row lengths with a partial last
-/// block and a partial last chunk; the last candidates force the two-pass
-/// route before a pass runs (no value at the reference's top column) and
-/// after one (a column without mass).
+/// the next candidate's fused pass, or by the pass on its own where the
+/// next row declines the fused route, has the bits of the pass that sums
+/// it on its own, at every level (`PairScratch::settle` the same at the
+/// detected one); the next candidate's results do not change. Row lengths
+/// with a partial last block and a partial last chunk; the last
+/// candidates are declined before a pass runs (no value at the
+/// reference's top column) and after one (a column without mass).
 #[test]
 fn folded_total_variation_keeps_its_bits() {
     for n in [300usize, 4_099, 20_000] {
         let mut seed = n as u64;
         let x: Vec<f32> = (0..n).map(|_| 2.5 * normal(&mut seed) as f32).collect();
-        let y1: Vec<f32> = x.iter().map(|&v| v + 0.1 * normal(&mut seed) as f32).collect();
-        let y2: Vec<f32> = x.iter().map(|&v| v + 0.3 * normal(&mut seed) as f32).collect();
+        let y1: Vec<f32> = x
+            .iter()
+            .map(|&v| v + 0.1 * normal(&mut seed) as f32)
+            .collect();
+        let y2: Vec<f32> = x
+            .iter()
+            .map(|&v| v + 0.3 * normal(&mut seed) as f32)
+            .collect();
         let bx = Form::Bf16.bytes(&x);
         let top = {
             let (mut e, mut b) = (vec![0f32; n], vec![0f64; norm_blocks(n)]);
@@ -1763,35 +1801,159 @@ fn folded_total_variation_keeps_its_bits() {
         for l in levels() {
             let (mut e, mut b) = (vec![0f32; n], vec![0f64; norm_blocks(n)]);
             let r = normalise_row_at(l, Row::Bf16(&bx), &mut e, &mut b, Ahead::NONE).unwrap();
-            let pair = |y: &[u8], s: &mut PairScratch, fold: &mut TvFold| {
-                compare_pair(Row::Bf16(&bx), Row::Bf16(y), &e, &b, &r, s, Ahead::NONE, fold)
-                    .unwrap()
+            let alone = |y: &[u8]| {
+                fused_folding(
+                    l,
+                    &bx,
+                    y,
+                    &e,
+                    &b,
+                    &r,
+                    &mut vec![0f32; n],
+                    &mut TvFold::default(),
+                )
             };
-            let alone = |y: &[u8]| pair(y, &mut PairScratch::new(n), &mut TvFold::default());
-            let want = alone(&ys[0]).0.m.tv;
-            for (k, next) in ys.iter().enumerate().skip(1) {
-                let what = format!("n={n}, next candidate {k}, {}", l.name());
+            let want = alone(&ys[0]).unwrap().m.tv;
+            if l == detected_level() {
                 let mut s = PairScratch::new(n);
                 let mut fold = TvFold {
                     defer: true,
                     ..TvFold::default()
                 };
-                let (f1, route) = pair(&ys[0], &mut s, &mut fold);
-                assert_eq!(route, Route::Fused, "{what}");
+                let (f, route) = compare_pair(
+                    Row::Bf16(&bx),
+                    Row::Bf16(&ys[0]),
+                    &e,
+                    &b,
+                    &r,
+                    &mut s,
+                    Ahead::NONE,
+                    &mut fold,
+                )
+                .unwrap();
+                assert_eq!(route, Route::Fused);
+                assert_eq!(
+                    s.settle(&e, f.owed.unwrap()).to_bits(),
+                    want.to_bits(),
+                    "n={n}"
+                );
+            }
+            for (k, next) in ys.iter().enumerate().skip(1) {
+                let what = format!("n={n}, next candidate {k}, {}", l.name());
+                let mut v = vec![0f32; n];
+                let mut fold = TvFold {
+                    defer: true,
+                    ..TvFold::default()
+                };
+                let f1 = fused_folding(l, &bx, &ys[0], &e, &b, &r, &mut v, &mut fold).unwrap();
                 assert!(f1.m.tv.is_nan(), "{what}");
-                let owed = f1.owed.expect("a close candidate's total variation is deferred");
-                assert_eq!(s.settle(&e, owed).to_bits(), want.to_bits(), "{what}");
+                let owed = f1
+                    .owed
+                    .expect("a close candidate's total variation is deferred");
+                assert_eq!(
+                    settle_at(l, &v, &e, owed).to_bits(),
+                    want.to_bits(),
+                    "{what}"
+                );
                 fold = TvFold {
                     defer: false,
                     owed: Some(owed),
                     settled: None,
                 };
-                let (f2, route2) = pair(next, &mut s, &mut fold);
+                let f2 = fused_folding(l, &bx, next, &e, &b, &r, &mut v, &mut fold);
                 assert_eq!(fold.owed, None, "{what}");
-                assert_eq!(fold.settled.map(f64::to_bits), Some(want.to_bits()), "{what}");
-                let (a2, alone_route) = alone(next);
-                assert_eq!((f2, route2), (a2, alone_route), "{what}");
-                assert_eq!(route2 == Route::Fused, k == 1, "{what}");
+                assert_eq!(
+                    fold.settled.map(f64::to_bits),
+                    Some(want.to_bits()),
+                    "{what}"
+                );
+                assert_eq!(f2, alone(next), "{what}");
+                assert_eq!(f2.is_some(), k == 1, "{what}");
+            }
+        }
+    }
+}
+
+/// The same for a total variation settled by the next reference row's
+/// normalising pass (`normalise_settling`), which overwrites the e it was
+/// owed on: the bits of the pass on its own, and the row's own summary,
+/// exponentials and block sums those of `normalise_row`; a next row that
+/// fails before its pass (no finite logit) settles it on its own.
+#[test]
+fn total_variation_settled_by_the_next_row_keeps_its_bits() {
+    for n in [300usize, 4_099, 20_000] {
+        let mut seed = 7 * n as u64;
+        let mut row = |sd: f64, base: Option<&[f32]>| -> Vec<f32> {
+            (0..n)
+                .map(|i| base.map_or(0.0, |b| b[i]) + (sd * normal(&mut seed)) as f32)
+                .collect()
+        };
+        let x = row(2.5, None);
+        let y = row(0.1, Some(&x));
+        let x2 = row(3.0, None);
+        let (bx, by, bx2) = (
+            Form::Bf16.bytes(&x),
+            Form::Bf16.bytes(&y),
+            Form::Bf16.bytes(&x2),
+        );
+        let dead = Form::Bf16.bytes(&vec![f32::NEG_INFINITY; n]);
+        for l in levels() {
+            let what = format!("n={n}, {}", l.name());
+            let blank = || (vec![0f32; n], vec![0f64; norm_blocks(n)]);
+            let (mut e, mut b) = blank();
+            let r = normalise_row_at(l, Row::Bf16(&bx), &mut e, &mut b, Ahead::NONE).unwrap();
+            let mut s = PairScratch::new(n);
+            let mut fold = TvFold {
+                defer: true,
+                ..TvFold::default()
+            };
+            let f = fused_folding(l, &bx, &by, &e, &b, &r, &mut s.v, &mut fold).unwrap();
+            let owed = f
+                .owed
+                .expect("a close candidate's total variation is deferred");
+            let alone = fused_folding(
+                l,
+                &bx,
+                &by,
+                &e,
+                &b,
+                &r,
+                &mut vec![0f32; n],
+                &mut TvFold::default(),
+            );
+            let want = alone.unwrap().m.tv;
+            for next in [&bx2, &dead] {
+                let (mut e2, mut b2) = (e.clone(), b.clone());
+                let mut fold = TvFold {
+                    defer: false,
+                    owed: Some(owed),
+                    settled: None,
+                };
+                let got = normalise_settling_at(
+                    l,
+                    Row::Bf16(next),
+                    &mut e2,
+                    &mut b2,
+                    Ahead::NONE,
+                    &s,
+                    &mut fold,
+                );
+                assert_eq!(fold.owed, None, "{what}");
+                assert_eq!(
+                    fold.settled.map(f64::to_bits),
+                    Some(want.to_bits()),
+                    "{what}"
+                );
+                let (mut e3, mut b3) = blank();
+                let plain = normalise_row_at(l, Row::Bf16(next), &mut e3, &mut b3, Ahead::NONE);
+                assert_eq!(got, plain, "{what}");
+                if got.is_ok() {
+                    assert!(
+                        e2.iter().zip(&e3).all(|(a, b)| a.to_bits() == b.to_bits()),
+                        "{what}"
+                    );
+                    assert_eq!(b2, b3, "{what}");
+                }
             }
         }
     }
