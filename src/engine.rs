@@ -445,8 +445,13 @@ struct Carry {
 
 /// Computes one row into `out`. Each kernel pass pulls the row of the
 /// candidate compared next toward the cache while it runs (where that file
-/// is read from the map; see `LogitFile::ahead`). Pulling the thread's next
-/// reference row the same way during the last comparison measured no gain.
+/// is read from the map; see `LogitFile::ahead`), and the last comparison
+/// pulls the next reference row, which this worker most often takes next
+/// (its task's second row, or the next task's first). That measured no gain
+/// on the first AVX-512 machines; on one whose loops run twice as fast
+/// (Zen 5), where a row's trip from memory weighs more, 1.050x and 1.047x
+/// on two threads, 1.059x and 0.997x on one, 1.035x and 1.031x with three
+/// candidates (`builds_ab.py --as-read-from-disk`, two runs of 10 rounds).
 ///
 /// A candidate's total variation is summed by the next pass that streams
 /// the same buffers (`kernel::TvFold`): the next candidate's, or, for the
@@ -475,10 +480,10 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
     } = s;
     let cols = *cols;
     let xr = ctx.reference.stored_row(row, cols, raw_r);
-    let ahead = |k: usize| {
-        ctx.candidates
-            .get(k)
-            .map_or(Ahead::NONE, |c| c.ahead(row, cols))
+    let ahead = |k: usize| match ctx.candidates.get(k) {
+        Some(c) => c.ahead(row, cols),
+        None if row + 1 < ctx.reference.rows => ctx.reference.ahead(row + 1, cols),
+        None => Ahead::NONE,
     };
     let fold = &mut carry.fold;
     let got = kernel::normalise_settling(xr, er, br, ahead(0), pair, fold);
