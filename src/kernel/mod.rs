@@ -624,22 +624,6 @@ fn normalise_any<const L: u8, const STORE: bool, S: Src>(
     v: &[f32],
     fold: &mut TvFold,
 ) -> Result<RowNorm, RowFault> {
-    let got = normalise_folding::<L, STORE, S>(x, e, blocks, ahead, v, fold);
-    // A row that failed before its exponentials were written: e is still
-    // the one owed on.
-    settle_alone::<L>(v, e, fold);
-    got
-}
-
-#[inline(always)]
-fn normalise_folding<const L: u8, const STORE: bool, S: Src>(
-    x: S,
-    e: &mut [f32],
-    blocks: &mut [f64],
-    ahead: Ahead,
-    v: &[f32],
-    fold: &mut TvFold,
-) -> Result<RowNorm, RowFault> {
     assert!(
         !STORE || e.len() >= x.len(),
         "normalise: exp buffer shorter than the row"
@@ -650,6 +634,8 @@ fn normalise_folding<const L: u8, const STORE: bool, S: Src>(
     );
     let (max, argmax) = scan_max::<L, S>(x);
     if !max.is_finite() {
+        // No exponential is written: e is still the one owed on.
+        settle_alone::<L>(v, e, fold);
         return Err(classify_fault(x));
     }
     let (s, t) = exp_pass::<L, STORE, S>(x, max, e, blocks, ahead, v, fold);
@@ -1457,10 +1443,7 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
     if L == 1 && avx2_loops() {
         // The AVX2 loop has no registers to spare: what is owed is summed
         // on its own first.
-        if let Some(o) = fold.owed.take() {
-            debug_assert_eq!(o.n, n);
-            fold.settled = Some(o.finish(tv_pass::<L>(&vbuf[..n], &er[..n], o.uz)));
-        }
+        settle_alone::<L>(vbuf, er, fold);
         // SAFETY: level 1 is only instantiated inside functions compiled
         // with AVX2 and FMA, called after run-time detection; the buffer
         // lengths are asserted above.
@@ -1875,9 +1858,7 @@ fn fused_impl<const L: u8>(
     let f = with_src!(x, sx => with_src!(y, sy => fused_src::<L, _, _>(sx, sy, er, br, r, v, bw, ahead, fold)));
     // No pass ran (the row went to the two-pass route before one): v is
     // still the one owed on.
-    if let Some(o) = fold.owed.take() {
-        fold.settled = Some(o.finish(tv_pass::<L>(&v[..o.n], &er[..o.n], o.uz)));
-    }
+    settle_alone::<L>(v, er, fold);
     f
 }
 
