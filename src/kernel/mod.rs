@@ -611,7 +611,7 @@ fn exp_pass<const L: u8, const STORE: bool, S: Src>(
 #[inline(always)]
 fn settle_alone<const L: u8>(v: &[f32], e: &[f32], fold: &mut TvFold) {
     if let Some(o) = fold.owed.take() {
-        fold.settled = Some(o.finish(tv_pass::<L>(&v[..o.n], &e[..o.n], o.uz)));
+        fold.settled = Some(o.alone::<L>(v, e));
     }
 }
 
@@ -1124,6 +1124,12 @@ impl TvOwed {
     fn finish(self, sum: f64) -> f64 {
         (0.5 * sum / self.z).clamp(0.0, 1.0)
     }
+
+    /// The total variation summed by its own pass over `v` and `e`.
+    #[inline(always)]
+    fn alone<const L: u8>(self, v: &[f32], e: &[f32]) -> f64 {
+        self.finish(tv_pass::<L>(&v[..self.n], &e[..self.n], self.uz))
+    }
 }
 
 /// Total variation handed from one fused pass to the next. The second
@@ -1351,7 +1357,7 @@ unsafe fn chunks3<const L: u8, SX: Src, SY: Src>(x: SX, y: SY, e: &[f32], c: usi
 /// The fused pass over columns lo..hi of one block: adds them to `s`,
 /// writes v into `vbuf`, and returns the block's lane sums of v. Where TV,
 /// first adds |v - uz e| of the v the buffer held to `tv` (see `TvFold`),
-/// chunk by chunk as `tv_block` does.
+/// chunk by chunk as `tv_pass` does.
 #[inline(always)]
 #[allow(clippy::too_many_arguments)]
 fn fused_block<const L: u8, const OFF: bool, const TV: bool, SX: Src, SY: Src>(
@@ -1452,35 +1458,33 @@ fn fused_loop<const L: u8, const OFF: bool, SX: Src, SY: Src>(
         };
         return (acc, vtot, s.my, s.rise.from);
     }
+    let mut tacc = [0f64; W];
     macro_rules! walk {
-        ($tv:literal, $uz:expr, $tacc:expr) => {{
-            let tacc: &mut [f64; W] = $tacc;
-            let vtot = for_blocks!(L, n, bw, |b, lo, hi| {
+        ($tv:literal, $uz:expr) => {
+            for_blocks!(L, n, bw, |b, lo, hi| {
                 ahead.block(b, nb);
                 let mut t = [0f32; W];
                 let vb = fused_block::<L, OFF, $tv, SX, SY>(
                     x, y, er, k, &mut s, vbuf, lo, hi, $uz, &mut t,
                 );
                 if $tv {
-                    widen_add::<L>(tacc, &t);
+                    widen_add::<L>(&mut tacc, &t);
                 }
                 if b % FUSED_CARRY == FUSED_CARRY - 1 {
                     s.carry::<L>(&mut acc, hi);
                 }
                 vb
-            });
-            vtot
-        }};
+            })
+        };
     }
-    let mut tacc = [0f64; W];
     let vtot = match fold.owed.take() {
         Some(o) => {
             debug_assert_eq!(o.n, n);
-            let vtot = walk!(true, o.uz, &mut tacc);
+            let vtot = walk!(true, o.uz);
             fold.settled = Some(o.finish(hsum64(&tacc)));
             vtot
         }
-        None => walk!(false, 0.0, &mut tacc),
+        None => walk!(false, 0.0),
     };
     s.carry::<L>(&mut acc, n);
     (acc, vtot, s.my, s.rise.from)
@@ -1667,10 +1671,7 @@ fn fused_pass<const L: u8, SX: Src, SY: Src>(
     let (tv, owed) = if defer {
         (f64::NAN, Some(owed))
     } else {
-        (
-            owed.finish(tv_pass::<L>(&vbuf[..n], &er[..n], owed.uz)),
-            None,
-        )
+        (owed.alone::<L>(vbuf, er), None)
     };
     for (b, &r) in bw[..nb].iter_mut().zip(br) {
         *b = (*b + r).max(0.0);
@@ -1864,9 +1865,14 @@ fn fused_impl<const L: u8>(
     f
 }
 
+#[inline(always)]
+fn settle_impl<const L: u8>(v: &[f32], e: &[f32], owed: TvOwed) -> f64 {
+    owed.alone::<L>(v, e)
+}
+
 dispatched! {
-    /// sum |v - uz e| as the fused pass sums it for total variation.
-    pub fn tv_sum / tv_sum_at(v: &[f32], e: &[f32], uz: f32) -> f64 => tv_pass
+    /// The total variation `owed` over `v` and `e`, summed by its own pass.
+    pub fn settle_owed / settle_owed_at(v: &[f32], e: &[f32], owed: TvOwed) -> f64 => settle_impl
 }
 
 dispatched! {
@@ -1909,7 +1915,7 @@ impl PairScratch {
     /// The total variation a fused pass over this scratch left owed, summed
     /// on its own (`er`: the reference's exponentials it was compared with).
     pub fn settle(&self, er: &[f32], owed: TvOwed) -> f64 {
-        owed.finish(tv_sum(&self.v[..owed.n], &er[..owed.n], owed.uz))
+        settle_owed(&self.v, er, owed)
     }
 
     pub fn new(cols: usize) -> PairScratch {

@@ -1758,11 +1758,6 @@ fn fused_folding(
     )
 }
 
-/// What `owed` comes to, summed on its own at level `l`.
-fn settle_at(l: Level, v: &[f32], e: &[f32], owed: TvOwed) -> f64 {
-    owed.finish(tv_sum_at(l, &v[..owed.n], &e[..owed.n], owed.uz))
-}
-
 /// A candidate's total variation left owed (`TvFold`) and summed inside
 /// the next candidate's fused pass, or by the pass on its own where the
 /// next row declines the fused route, has the bits of the pass that sums
@@ -1851,7 +1846,7 @@ fn folded_total_variation_keeps_its_bits() {
                     .owed
                     .expect("a close candidate's total variation is deferred");
                 assert_eq!(
-                    settle_at(l, &v, &e, owed).to_bits(),
+                    settle_owed_at(l, &v, &e, owed).to_bits(),
                     want.to_bits(),
                     "{what}"
                 );
