@@ -367,9 +367,8 @@ struct Scratch {
     tok_p: Vec<u32>,
     tok_q: Vec<u32>,
     /// The total variation this worker's last row left owed (see
-    /// `compute_row`), and that row.
+    /// `compute_row`).
     carry: Carry,
-    carry_row: usize,
     /// Total variations settled for earlier rows since the block began:
     /// (row, candidate, value), put into the block's results after it.
     settled: Vec<(usize, usize, f64)>,
@@ -390,7 +389,6 @@ impl Scratch {
             tok_p: vec![0; draws],
             tok_q: vec![0; draws],
             carry: Carry::default(),
-            carry_row: 0,
             settled: Vec::new(),
         }
     }
@@ -436,10 +434,12 @@ fn fold_draws(
 }
 
 /// A total variation one row's pass left to the next pass over the same
-/// buffers (see `kernel::TvFold`), and whose it is: candidate `cand`.
+/// buffers (see `kernel::TvFold`), and whose it is: candidate `cand` of
+/// `row`.
 #[derive(Default)]
 struct Carry {
     fold: kernel::TvFold,
+    row: usize,
     cand: usize,
 }
 
@@ -475,7 +475,6 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
         tok_p,
         tok_q,
         carry,
-        carry_row,
         settled,
     } = s;
     let cols = *cols;
@@ -488,9 +487,9 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
     let fold = &mut carry.fold;
     let got = kernel::normalise_settling(xr, er, br, ahead(0), pair, fold);
     if let Some(tv) = fold.settled.take() {
-        settled.push((*carry_row, carry.cand, tv));
+        settled.push((carry.row, carry.cand, tv));
     }
-    *carry_row = row;
+    carry.row = row;
     let nr = match got {
         Ok(n) => n,
         Err(f) => {
@@ -608,7 +607,7 @@ fn settle_block(scratch: &[std::sync::Mutex<Scratch>], row0: usize, outs: &mut [
         let s = &mut *g;
         if let Some(o) = s.carry.fold.owed.take() {
             let tv = s.pair.settle(&s.er, o);
-            s.settled.push((s.carry_row, s.carry.cand, tv));
+            s.settled.push((s.carry.row, s.carry.cand, tv));
         }
         for (row, k, tv) in s.settled.drain(..) {
             outs[row - row0].cands[k].m[TV] = tv;
