@@ -695,13 +695,11 @@ pub fn run(
     let scratch: Vec<std::sync::Mutex<Scratch>> = (0..rayon::current_num_threads().max(1))
         .map(|_| std::sync::Mutex::new(Scratch::new(cols, draws)))
         .collect();
-    // Computes rows row0..row1 into `outs` in parallel, after asking the
-    // kernel to read ahead the block that follows.
+    // Computes rows row0..row1 into `outs` in parallel. Reading ahead is
+    // left to the kernel's sequential read-ahead (see
+    // `LogitFile::advise_sequential`).
     let compute = |row0: usize, row1: usize, outs: &mut [RowOut]| {
         use rayon::prelude::*;
-        for f in &files {
-            f.advise_window(row1, block);
-        }
         // Each task takes a few consecutive rows, so a worker reads the
         // maps front to back; small tasks keep both workers busy to the
         // end of the block. `with_max_len(1)` lets every task be stolen:
@@ -733,9 +731,6 @@ pub fn run(
     let bar = progress_bar(opts.progress, range.len() as u64);
     let start = std::time::Instant::now();
     let mut row0 = range.start;
-    for f in &files {
-        f.advise_window(row0, block);
-    }
     let mut row1 = (row0 + block).min(range.end);
     if row0 < row1 {
         compute(row0, row1, &mut cur);

@@ -42,6 +42,5 @@ fuzz_target!(|data: &[u8]| {
             assert!(!n.lse.is_nan() && n.entropy >= -1e-6, "row {r}: {n:?}");
         }
     }
-    f.advise_window(0, f.rows);
     f.release_before(f.rows);
 });

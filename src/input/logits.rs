@@ -353,8 +353,29 @@ impl LogitFile {
         &s.file.map[start..start + cols * es]
     }
 
-    /// Decodes the first `out.len()` columns of `row` into f32.
+    /// Decodes the first `out.len()` columns of `row` into f32, for single
+    /// rows far apart (the worst positions' tokens, `inspect`'s samples):
+    /// with one positioned read of the row's bytes where the file is open
+    /// for reads, else through the map. On the map, each page fault on a
+    /// page the page cache no longer holds brings the shard's sequential
+    /// read-ahead with it, megabytes around every such row: after a pass
+    /// over files larger than the memory allowed, the faults for the 20
+    /// worst positions' tokens were 9% of a run's CPU samples.
     pub fn read_row(&self, row: usize, out: &mut [f32]) {
+        #[cfg(unix)]
+        {
+            use std::os::unix::fs::FileExt;
+            let s = self.shard_of(row);
+            if let Some(f) = &s.reader {
+                let es = self.dtype.size();
+                let start = s.logits_start + (row - s.first_row) * s.stride * es;
+                let mut bytes = vec![0u8; out.len() * es];
+                if f.read_exact_at(&mut bytes, start as u64).is_ok() {
+                    decode_row(self.dtype, &bytes, out);
+                    return;
+                }
+            }
+        }
         let bytes = self.row_bytes(row, out.len());
         decode_row(self.dtype, bytes, out);
     }
@@ -418,24 +439,6 @@ impl LogitFile {
         Ahead(self.row_bytes(row, cols))
     }
 
-    /// Asks the kernel to read ahead `rows` rows starting at `row` (an
-    /// asynchronous hint; on non-Unix systems it does nothing).
-    pub fn advise_window(&self, row: usize, rows: usize) {
-        let es = self.dtype.size();
-        for s in &self.shards {
-            let lo = row.max(s.first_row);
-            let hi = (row + rows).min(s.first_row + s.rows);
-            if lo < hi {
-                let row_bytes = s.stride * es;
-                let off = s.logits_start + (lo - s.first_row) * row_bytes;
-                let _ =
-                    s.file
-                        .map
-                        .advise_range(memmap2::Advice::WillNeed, off, (hi - lo) * row_bytes);
-            }
-        }
-    }
-
     /// Releases the mapped pages of rows before `row` that were not released
     /// yet, so that a file larger than RAM streams through the page cache and
     /// the process's resident size stays bounded. Only whole pages that hold
@@ -473,15 +476,41 @@ impl LogitFile {
     }
 
     /// Tells the kernel that the logits of every shard will be read once,
-    /// front to back (larger read-ahead on page faults).
+    /// front to back, through the map and through the file opened for
+    /// positioned reads (twice the read-ahead of a plain read).
+    ///
+    /// This is all the read-ahead there is: the kernel reads ahead of the
+    /// pass as it goes. An explicit `MADV_WILLNEED` for the next block of
+    /// rows, which earlier builds issued, reads only the device's read-ahead
+    /// size per call (8 MiB of a 64 MiB window where `read_ahead_kb` is
+    /// 8192, 128 KiB at the usual default), in 4 KiB pages where the
+    /// kernel's own read-ahead builds large folios, and under a memory limit
+    /// its pages were evicted again before the pass got there. Leaving it
+    /// out made runs on files not in the page cache about a fifth faster,
+    /// with or without a memory limit, and did not change runs on cached
+    /// files (see DEVELOPERS.md, "Reading rows").
     fn advise_sequential(&self) {
         let es = self.dtype.size();
         for s in &self.shards {
-            let _ = s.file.map.advise_range(
-                memmap2::Advice::Sequential,
-                s.logits_start,
-                s.rows * s.stride * es,
-            );
+            let len = s.rows * s.stride * es;
+            let _ = s
+                .file
+                .map
+                .advise_range(memmap2::Advice::Sequential, s.logits_start, len);
+            #[cfg(target_os = "linux")]
+            if let Some(f) = &s.reader {
+                use std::os::fd::AsRawFd;
+                // SAFETY: a hint on an open descriptor; it reads and writes no
+                // memory of this process.
+                unsafe {
+                    libc::posix_fadvise(
+                        f.as_raw_fd(),
+                        s.logits_start as libc::off_t,
+                        len as libc::off_t,
+                        libc::POSIX_FADV_SEQUENTIAL,
+                    );
+                }
+            }
         }
     }
 }
@@ -510,7 +539,18 @@ impl Shard {
 
     /// Touches 8 MiB of the shard's rows through the map, in eight pieces
     /// spread over the shard, and counts the page faults this thread took:
-    /// true where a fault mapped 256 KiB or more on average. Measured here
+    /// true where a fault mapped 256 KiB or more on average.
+    ///
+    /// Where most of those pieces are not in the page cache (a file not
+    /// read since the machine dropped it, or larger than the memory it may
+    /// use), nothing is touched and the answer is positioned reads: a touch
+    /// would read eight scattered pieces from disk, each with its own
+    /// read-ahead, which a file larger than memory evicts again before the
+    /// pass gets there, and the faults would count how the kernel reads
+    /// from disk, not how the cache holds the file. Positioned reads front
+    /// to back get the kernel's sequential read-ahead, in large pieces
+    /// where the file system supports them (see DEVELOPERS.md, "Reading
+    /// rows"). Measured here
     /// on 8 MiB pieces: 1.6 MiB per fault where the page cache holds the
     /// file in large pieces, 64 KiB where it holds 4 KiB pages (the kernel
     /// maps a 64 KiB window around each fault), and anything between on
@@ -534,13 +574,20 @@ impl Shard {
             return false;
         }
         let page = page_size();
+        // Piece k starts at (2k + 1) / 16 of the way (the last one ends
+        // inside the shard); pieces overlap on a shard under 8 MiB.
+        let piece = |k: usize| {
+            let from = ((total - PIECE) * (2 * k + 1) / (2 * PIECES)) / page * page;
+            &self.file.map[self.logits_start + from..][..PIECE]
+        };
+        let cached: Option<usize> = (0..PIECES).map(|k| resident_pages(piece(k), page)).sum();
+        if cached.is_some_and(|c| 2 * c * page < PIECES * PIECE) {
+            return false;
+        }
         let mut touched = 0;
         let mut x = 0u8;
         for k in 0..PIECES {
-            // Piece k starts at (2k + 1) / 16 of the way (the last one ends
-            // inside the shard); pieces overlap on a shard under 8 MiB.
-            let from = ((total - PIECE) * (2 * k + 1) / (2 * PIECES)) / page * page;
-            let bytes = &self.file.map[self.logits_start + from..][..PIECE];
+            let bytes = piece(k);
             for i in (0..PIECE).step_by(page) {
                 // SAFETY: i < PIECE, inside the slice; a volatile read so
                 // that the touch is not optimised away.
@@ -584,6 +631,27 @@ fn thread_faults() -> Option<usize> {
     None
 }
 
+/// How many of the pages that `bytes` (part of a map) lies on are in the
+/// page cache, without touching them (`mincore`); None where the system
+/// cannot tell.
+fn resident_pages(bytes: &[u8], page: usize) -> Option<usize> {
+    #[cfg(target_os = "linux")]
+    {
+        let start = bytes.as_ptr() as usize / page * page;
+        let end = (bytes.as_ptr() as usize + bytes.len()).div_ceil(page) * page;
+        let mut vec = vec![0u8; (end - start) / page];
+        // SAFETY: [start, end) covers only pages of `bytes`, which lie inside
+        // a live mapping; mincore reads no memory there and writes one byte
+        // per page into `vec`, which has exactly that many.
+        let r = unsafe { libc::mincore(start as *mut libc::c_void, end - start, vec.as_mut_ptr()) };
+        if r == 0 {
+            return Some(vec.iter().filter(|&&b| b & 1 != 0).count());
+        }
+    }
+    let _ = (bytes, page);
+    None
+}
+
 /// The virtual-memory page size (4 KiB where it cannot be asked).
 fn page_size() -> usize {
     #[cfg(unix)]
@@ -613,4 +681,98 @@ fn names(f: &MappedFile) -> String {
 /// allows a misaligned tensor) with the kernel's vectorised decoders.
 pub fn decode_row(dtype: StoredDtype, bytes: &[u8], out: &mut [f32]) {
     crate::kernel::decode(dtype.row(bytes), out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A bf16 logit file of `rows` x `vocab` in the temporary directory,
+    /// written with the safetensors crate; values vary by row and column.
+    fn bf16_file(tag: &str, rows: usize, vocab: usize) -> PathBuf {
+        let mut bytes = Vec::with_capacity(rows * vocab * 2);
+        for r in 0..rows {
+            for c in 0..vocab {
+                let v = half::bf16::from_f32(((r * 7 + c * 13) % 97) as f32 * 0.125 - 6.0);
+                bytes.extend_from_slice(&v.to_le_bytes());
+            }
+        }
+        let view = safetensors::tensor::TensorView::new(
+            safetensors::Dtype::BF16,
+            vec![rows, vocab],
+            &bytes,
+        )
+        .unwrap();
+        let path = std::env::temp_dir().join(format!(
+            "klgauge-logits-{}-{tag}.safetensors",
+            std::process::id()
+        ));
+        safetensors::serialize_to_file([("logits", view)], None, &path).unwrap();
+        path
+    }
+
+    #[test]
+    fn positioned_row_reads_give_the_mapped_values() {
+        let path = bf16_file("rows", 9, 1000);
+        let f = LogitFile::open(&path).unwrap();
+        let (mut a, mut b) = (vec![0f32; 1000], vec![0f32; 1000]);
+        for row in [0, 4, 8] {
+            f.read_row(row, &mut a);
+            decode_row(f.dtype, f.row_bytes(row, 1000), &mut b);
+            assert_eq!(a, b, "row {row}");
+            // The stored values themselves (exact in bf16).
+            assert_eq!(a[3], ((row * 7 + 39) % 97) as f32 * 0.125 - 6.0);
+        }
+        let _ = std::fs::remove_file(&path);
+    }
+
+    #[cfg(target_os = "linux")]
+    #[test]
+    fn resident_pages_counts_touched_pages() {
+        let path = bf16_file("resident", 64, 4096);
+        let f = LogitFile::open(&path).unwrap();
+        let page = page_size();
+        let bytes = &f.shards[0].file.map[..];
+        let sum: u64 = bytes.iter().step_by(page).map(|&b| b as u64).sum();
+        std::hint::black_box(sum);
+        let pages =
+            (bytes.as_ptr() as usize + bytes.len()).div_ceil(page) - bytes.as_ptr() as usize / page;
+        assert_eq!(resident_pages(bytes, page), Some(pages));
+        let _ = std::fs::remove_file(&path);
+    }
+
+    /// A shard the page cache does not hold is read with positioned reads,
+    /// and the probe touches none of it. Where the file system keeps the
+    /// file in memory anyway (tmpfs), there is nothing to check.
+    #[cfg(target_os = "linux")]
+    #[test]
+    fn a_shard_not_in_the_page_cache_is_read_without_touching_the_map() {
+        use std::os::fd::AsRawFd;
+        let path = bf16_file("cold", 512, 8192);
+        {
+            let file = std::fs::File::open(&path).unwrap();
+            file.sync_all().unwrap();
+            // SAFETY: a hint on an open descriptor.
+            unsafe { libc::posix_fadvise(file.as_raw_fd(), 0, 0, libc::POSIX_FADV_DONTNEED) };
+        }
+        let f = LogitFile::open(&path).unwrap();
+        let s = &f.shards[0];
+        let page = page_size();
+        let logits = &s.file.map[s.logits_start..];
+        let before = resident_pages(logits, page).unwrap();
+        if 4 * before > logits.len() / page {
+            eprintln!("skipped: the file system kept the file in memory");
+            let _ = std::fs::remove_file(&path);
+            return;
+        }
+        assert!(!s.streams_from_map(2) || io_choice() == Some(true));
+        if io_choice().is_none() {
+            assert_eq!(
+                resident_pages(logits, page),
+                Some(before),
+                "the probe read the file"
+            );
+        }
+        let _ = std::fs::remove_file(&path);
+    }
 }
