@@ -642,6 +642,16 @@ pub fn run(
     let files: Vec<&LogitFile> = std::iter::once(reference)
         .chain(candidates.iter())
         .collect();
+    // Files that cannot all stay in the page cache are dropped from it
+    // behind the pass (see `input::room`).
+    let streamed: u64 = files
+        .iter()
+        .map(|f| (range.len() * f.row_len_bytes()) as u64)
+        .sum();
+    let drop = crate::input::room::cache_room().is_some_and(|room| streamed > room);
+    for f in &files {
+        f.set_drop_behind(drop);
+    }
     let nc = candidates.len();
     // Every file has the reference's rows (checked by `align`).
     let floor_rows: Vec<usize> = crate::floor::sample_rows(reference.rows).collect();

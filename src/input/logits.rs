@@ -128,6 +128,9 @@ pub struct LogitFile {
     /// Shape of `logits` in the first shard, for display.
     pub shape: Vec<usize>,
     shards: Vec<Shard>,
+    /// Whether `release_before` also drops finished rows from the page
+    /// cache (see `set_drop_behind`).
+    drop_behind: std::sync::atomic::AtomicBool,
 }
 
 impl LogitFile {
@@ -318,6 +321,7 @@ impl LogitFile {
             metadata,
             shape: shape0,
             shards,
+            drop_behind: std::sync::atomic::AtomicBool::new(false),
         };
         f.advise_sequential();
         Ok(f)
@@ -443,7 +447,8 @@ impl LogitFile {
     /// yet, so that a file larger than RAM streams through the page cache and
     /// the process's resident size stays bounded. Only whole pages that hold
     /// nothing but finished rows are released; each page is released once.
-    /// The page cache keeps the file's pages, so a later run still finds them.
+    /// The page cache keeps the file's pages, so a later run still finds
+    /// them, unless `set_drop_behind` asked for them to be dropped too.
     pub fn release_before(&self, row: usize) {
         let es = self.dtype.size();
         let page = page_size();
@@ -470,9 +475,38 @@ impl LogitFile {
                         end - begin,
                     )
                 };
+                #[cfg(target_os = "linux")]
+                if let (true, Some(f)) = (self.drop_behind.load(Ordering::Relaxed), &s.reader) {
+                    use std::os::fd::AsRawFd;
+                    // SAFETY: a hint on an open descriptor; it reads and
+                    // writes no memory of this process. Pages still mapped
+                    // (by another process) stay.
+                    unsafe {
+                        libc::posix_fadvise(
+                            f.as_raw_fd(),
+                            begin as libc::off_t,
+                            (end - begin) as libc::off_t,
+                            libc::POSIX_FADV_DONTNEED,
+                        );
+                    }
+                }
                 s.released.store(end, Ordering::Relaxed);
             }
         }
+    }
+
+    /// Bytes of one stored row.
+    pub fn row_len_bytes(&self) -> usize {
+        self.vocab * self.dtype.size()
+    }
+
+    /// Makes `release_before` also drop the finished rows from the page
+    /// cache. For a run whose files cannot stay cached anyway (more than
+    /// `room::cache_room`): it frees their pages at once instead of leaving
+    /// reclaim to find them (see `input::room`). Off by default: files
+    /// that fit stay cached for the next run.
+    pub fn set_drop_behind(&self, on: bool) {
+        self.drop_behind.store(on, Ordering::Relaxed);
     }
 
     /// Tells the kernel that the logits of every shard will be read once,

@@ -4,6 +4,7 @@
 pub mod file;
 pub mod logits;
 pub mod logprobs;
+pub mod room;
 
 pub use logits::{Grouping, LogitFile, StoredDtype};
 pub use logprobs::LogprobFile;
