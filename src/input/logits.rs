@@ -384,21 +384,6 @@ impl LogitFile {
         decode_row(self.dtype, bytes, out);
     }
 
-    /// The first `buf.len()` columns of `row` as f32: the mapped values
-    /// themselves when the file stores aligned F32, else decoded into `buf`.
-    pub fn row_view<'a>(&'a self, row: usize, buf: &'a mut [f32]) -> &'a [f32] {
-        let bytes = self.row_bytes(row, buf.len());
-        if self.dtype == StoredDtype::F32 {
-            if let Ok(v) = bytemuck::try_cast_slice::<u8, f32>(bytes) {
-                if cfg!(target_endian = "little") {
-                    return v;
-                }
-            }
-        }
-        decode_row(self.dtype, bytes, buf);
-        buf
-    }
-
     /// The first `cols` columns of `row` in their stored form, for the
     /// streaming pass: straight from the map where the page cache maps
     /// cheaply, else read with one positioned read into the caller's
