@@ -39,19 +39,7 @@ import time
 HERE = os.path.dirname(os.path.abspath(__file__))
 REPO = os.path.dirname(os.path.dirname(HERE))
 sys.path.insert(0, HERE)
-from run import run_cmd  # noqa: E402
-
-
-def drop(paths):
-    """Drops the files from the page cache (written back first, so that
-    nothing dirty keeps a page)."""
-    for p in paths:
-        fd = os.open(p, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-            os.posix_fadvise(fd, 0, 0, os.POSIX_FADV_DONTNEED)
-        finally:
-            os.close(fd)
+from run import drop_from_cache as drop, run_cmd  # noqa: E402
 
 
 class Cgroup:

@@ -161,6 +161,18 @@ def page_cache_reclaim():
     return None
 
 
+def drop_from_cache(paths):
+    """Drops the files from the page cache (written back first, so that
+    nothing dirty keeps a page): the next read of them comes from disk."""
+    for p in paths:
+        fd = os.open(p, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+            os.posix_fadvise(fd, 0, 0, os.POSIX_FADV_DONTNEED)
+        finally:
+            os.close(fd)
+
+
 def as_read_from_disk(paths):
     """Drops the just-written files from the page cache and reads them back.
 
@@ -172,13 +184,7 @@ def as_read_from_disk(paths):
     read back from disk, so the benchmark starts every case from that
     state. (A machine that reclaims idle page cache can change it during
     the rounds; kib_per_fault reports it before and after them.)"""
-    for p in paths:
-        fd = os.open(p, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-            os.posix_fadvise(fd, 0, 0, os.POSIX_FADV_DONTNEED)
-        finally:
-            os.close(fd)
+    drop_from_cache(paths)
     warm(paths)
 
 
