@@ -110,6 +110,9 @@ struct Shard {
     /// Whether the streaming pass reads rows straight from the map (see
     /// `LogitFile::stored_row`), decided on first use.
     stream_map: std::sync::OnceLock<bool>,
+    /// Whether `release_before` also drops finished rows from the page
+    /// cache (see `LogitFile::set_drop_behind`).
+    drop_behind: std::sync::atomic::AtomicBool,
 }
 
 #[derive(Debug)]
@@ -128,9 +131,6 @@ pub struct LogitFile {
     /// Shape of `logits` in the first shard, for display.
     pub shape: Vec<usize>,
     shards: Vec<Shard>,
-    /// Whether `release_before` also drops finished rows from the page
-    /// cache (see `set_drop_behind`).
-    drop_behind: std::sync::atomic::AtomicBool,
 }
 
 impl LogitFile {
@@ -304,6 +304,7 @@ impl LogitFile {
                 released: AtomicUsize::new(0),
                 reader: std::fs::File::open(fpath).ok(),
                 stream_map: std::sync::OnceLock::new(),
+                drop_behind: std::sync::atomic::AtomicBool::new(false),
                 file,
             });
             first_row += rows;
@@ -321,7 +322,6 @@ impl LogitFile {
             metadata,
             shape: shape0,
             shards,
-            drop_behind: std::sync::atomic::AtomicBool::new(false),
         };
         f.advise_sequential();
         Ok(f)
@@ -461,7 +461,7 @@ impl LogitFile {
                     )
                 };
                 #[cfg(target_os = "linux")]
-                if let (true, Some(f)) = (self.drop_behind.load(Ordering::Relaxed), &s.reader) {
+                if let (true, Some(f)) = (s.drop_behind.load(Ordering::Relaxed), &s.reader) {
                     use std::os::fd::AsRawFd;
                     // SAFETY: a hint on an open descriptor; it reads and
                     // writes no memory of this process. Pages still mapped
@@ -486,12 +486,20 @@ impl LogitFile {
     }
 
     /// Makes `release_before` also drop the finished rows from the page
-    /// cache. For a run whose files cannot stay cached anyway (more than
+    /// cache, in the shards that were mostly not cached when this is
+    /// called. For a run whose files cannot stay cached anyway (more than
     /// `room::cache_room`): it frees their pages at once instead of leaving
     /// reclaim to find them (see `input::room`). Off by default: files
-    /// that fit stay cached for the next run.
+    /// that fit stay cached for the next run. A shard found cached is left
+    /// alone even then: something holds it in memory (a larger machine
+    /// outside this process's memory cgroup, say), and dropping its pages
+    /// would only send the next run to the disk.
     pub fn set_drop_behind(&self, on: bool) {
-        self.drop_behind.store(on, Ordering::Relaxed);
+        let es = self.dtype.size();
+        for s in &self.shards {
+            let drop = on && s.mostly_uncached(es);
+            s.drop_behind.store(drop, Ordering::Relaxed);
+        }
     }
 
     /// Tells the kernel that the logits of every shard will be read once,
@@ -582,31 +590,18 @@ impl Shard {
     /// 1.5 times as long, 2.1 times within a memory limit (see
     /// DEVELOPERS.md, "Reading rows").
     fn map_streams_cheaply(&self, es: usize) -> bool {
-        const PIECES: usize = 8;
-        const PIECE: usize = 1 << 20;
         const PER_FAULT: usize = 256 << 10;
-        let total = self.rows * self.stride * es;
         let Some(before) = thread_faults() else {
             return false;
         };
-        if total < PIECE {
+        if self.rows * self.stride * es < PIECE || self.mostly_uncached(es) {
             return false;
         }
         let page = page_size();
-        // Piece k starts at (2k + 1) / 16 of the way (the last one ends
-        // inside the shard); pieces overlap on a shard under 8 MiB.
-        let piece = |k: usize| {
-            let from = ((total - PIECE) * (2 * k + 1) / (2 * PIECES)) / page * page;
-            &self.file.map[self.logits_start + from..][..PIECE]
-        };
-        let cached: Option<usize> = (0..PIECES).map(|k| resident_pages(piece(k), page)).sum();
-        if cached.is_some_and(|c| 2 * c * page < PIECES * PIECE) {
-            return false;
-        }
         let mut touched = 0;
         let mut x = 0u8;
         for k in 0..PIECES {
-            let bytes = piece(k);
+            let bytes = self.piece(k, es);
             for i in (0..PIECE).step_by(page) {
                 // SAFETY: i < PIECE, inside the slice; a volatile read so
                 // that the touch is not optimised away.
@@ -620,7 +615,35 @@ impl Shard {
             None => false,
         }
     }
+
+    /// Piece k of the probe's eight: PIECE bytes starting at (2k + 1) / 16
+    /// of the way through the shard's logits, on a page boundary (the last
+    /// one ends inside the shard; pieces overlap on a shard under 8 MiB).
+    /// The shard holds at least PIECE bytes.
+    fn piece(&self, k: usize, es: usize) -> &[u8] {
+        let (total, page) = (self.rows * self.stride * es, page_size());
+        let from = ((total - PIECE) * (2 * k + 1) / (2 * PIECES)) / page * page;
+        &self.file.map[self.logits_start + from..][..PIECE]
+    }
+
+    /// Whether most of the probe's pieces are not in the page cache
+    /// (`mincore`, nothing touched). False where the system cannot tell,
+    /// or the shard holds under PIECE bytes.
+    fn mostly_uncached(&self, es: usize) -> bool {
+        if self.rows * self.stride * es < PIECE {
+            return false;
+        }
+        let page = page_size();
+        let cached: Option<usize> = (0..PIECES)
+            .map(|k| resident_pages(self.piece(k, es), page))
+            .sum();
+        cached.is_some_and(|c| 2 * c * page < PIECES * PIECE)
+    }
 }
+
+/// The probe's pieces of a shard (`Shard::piece`): how many, and their size.
+const PIECES: usize = 8;
+const PIECE: usize = 1 << 20;
 
 /// `KLGAUGE_IO=map` or `KLGAUGE_IO=read`: how the streaming pass reads rows,
 /// whatever the probe would choose (`map_streams_cheaply`).
@@ -748,7 +771,7 @@ mod tests {
     #[cfg(target_os = "linux")]
     #[test]
     fn resident_pages_counts_touched_pages() {
-        let path = bf16_file("resident", 64, 4096);
+        let path = bf16_file("resident", 256, 4096);
         let f = LogitFile::open(&path).unwrap();
         let page = page_size();
         let bytes = &f.shards[0].file.map[..];
@@ -757,6 +780,9 @@ mod tests {
         let pages =
             (bytes.as_ptr() as usize + bytes.len()).div_ceil(page) - bytes.as_ptr() as usize / page;
         assert_eq!(resident_pages(bytes, page), Some(pages));
+        // A cached shard keeps its pages even in a run that drops behind.
+        f.set_drop_behind(true);
+        assert!(!f.shards[0].drop_behind.load(Ordering::Relaxed));
         let _ = std::fs::remove_file(&path);
     }
 
@@ -784,6 +810,10 @@ mod tests {
             let _ = std::fs::remove_file(&path);
             return;
         }
+        f.set_drop_behind(true);
+        assert!(s.drop_behind.load(Ordering::Relaxed));
+        f.set_drop_behind(false);
+        assert!(!s.drop_behind.load(Ordering::Relaxed));
         assert!(!s.streams_from_map(2) || io_choice() == Some(true));
         if io_choice().is_none() {
             assert_eq!(
