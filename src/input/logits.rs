@@ -816,10 +816,14 @@ mod tests {
         assert!(!s.drop_behind.load(Ordering::Relaxed));
         assert!(!s.streams_from_map(2) || io_choice() == Some(true));
         if io_choice().is_none() {
-            assert_eq!(
-                resident_pages(logits, page),
-                Some(before),
-                "the probe read the file"
+            // A touch would bring in the probe's 8 MiB (2,048 pages here).
+            // Read-ahead the file's opening started may still add a few
+            // hundred pages (seen on a CI machine: 256 -> 512), hence a
+            // margin of half the pieces.
+            let after = resident_pages(logits, page).unwrap();
+            assert!(
+                after < before + PIECES * PIECE / page / 2,
+                "the probe read the file: {before} -> {after} pages cached"
             );
         }
         let _ = std::fs::remove_file(&path);
