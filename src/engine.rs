@@ -648,9 +648,9 @@ pub fn run(
         .iter()
         .map(|f| (range.len() * f.row_len_bytes()) as u64)
         .sum();
-    let drop = crate::input::room::cache_room().is_some_and(|room| streamed > room);
+    let drop_behind = crate::input::room::cache_room().is_some_and(|room| streamed > room);
     for f in &files {
-        f.set_drop_behind(drop);
+        f.set_drop_behind(drop_behind);
     }
     let nc = candidates.len();
     // Every file has the reference's rows (checked by `align`).

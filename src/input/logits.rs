@@ -353,7 +353,7 @@ impl LogitFile {
     pub fn row_bytes(&self, row: usize, cols: usize) -> &[u8] {
         let s = self.shard_of(row);
         let es = self.dtype.size();
-        let start = s.logits_start + (row - s.first_row) * s.stride * es;
+        let start = s.row_start(row, es);
         &s.file.map[start..start + cols * es]
     }
 
@@ -366,18 +366,12 @@ impl LogitFile {
     /// over files larger than the memory allowed, the faults for the 20
     /// worst positions' tokens were 9% of a run's CPU samples.
     pub fn read_row(&self, row: usize, out: &mut [f32]) {
-        #[cfg(unix)]
-        {
-            use std::os::unix::fs::FileExt;
-            let s = self.shard_of(row);
-            if let Some(f) = &s.reader {
-                let es = self.dtype.size();
-                let start = s.logits_start + (row - s.first_row) * s.stride * es;
-                let mut bytes = vec![0u8; out.len() * es];
-                if f.read_exact_at(&mut bytes, start as u64).is_ok() {
-                    decode_row(self.dtype, &bytes, out);
-                    return;
-                }
+        let (s, es) = (self.shard_of(row), self.dtype.size());
+        if let Some(f) = &s.reader {
+            let mut bytes = vec![0u8; out.len() * es];
+            if s.read_row_into(f, row, es, &mut bytes) {
+                decode_row(self.dtype, &bytes, out);
+                return;
             }
         }
         let bytes = self.row_bytes(row, out.len());
@@ -399,20 +393,13 @@ impl LogitFile {
     /// once per shard, when the pass first reads it. `KLGAUGE_IO=map` or
     /// `KLGAUGE_IO=read` overrides it.
     pub fn stored_row<'a>(&'a self, row: usize, cols: usize, raw: &'a mut Aligned<u8>) -> Row<'a> {
-        let es = self.dtype.size();
-        #[cfg(unix)]
-        {
-            use std::os::unix::fs::FileExt;
-            let s = self.shard_of(row);
-            if let Some(f) = s.positioned_reader(es) {
-                let start = s.logits_start + (row - s.first_row) * s.stride * es;
-                raw.resize(cols * es);
-                if f.read_exact_at(raw, start as u64).is_ok() {
-                    return self.dtype.row(raw);
-                }
+        let (s, es) = (self.shard_of(row), self.dtype.size());
+        if let Some(f) = s.positioned_reader(es) {
+            raw.resize(cols * es);
+            if s.read_row_into(f, row, es, raw) {
+                return self.dtype.row(raw);
             }
         }
-        let _ = raw;
         self.dtype.row(self.row_bytes(row, cols))
     }
 
@@ -442,7 +429,7 @@ impl LogitFile {
                 continue;
             }
             let done = (row - s.first_row).min(s.rows);
-            let end = (s.logits_start + done * s.stride * es) / page * page;
+            let end = s.row_start(s.first_row + done, es) / page * page;
             let begin = s
                 .released
                 .load(Ordering::Relaxed)
@@ -460,20 +447,10 @@ impl LogitFile {
                         end - begin,
                     )
                 };
+                // Pages still mapped (by another process) stay.
                 #[cfg(target_os = "linux")]
                 if let (true, Some(f)) = (s.drop_behind.load(Ordering::Relaxed), &s.reader) {
-                    use std::os::fd::AsRawFd;
-                    // SAFETY: a hint on an open descriptor; it reads and
-                    // writes no memory of this process. Pages still mapped
-                    // (by another process) stay.
-                    unsafe {
-                        libc::posix_fadvise(
-                            f.as_raw_fd(),
-                            begin as libc::off_t,
-                            (end - begin) as libc::off_t,
-                            libc::POSIX_FADV_DONTNEED,
-                        );
-                    }
+                    fadvise(f, begin, end - begin, libc::POSIX_FADV_DONTNEED);
                 }
                 s.released.store(end, Ordering::Relaxed);
             }
@@ -520,24 +497,14 @@ impl LogitFile {
     fn advise_sequential(&self) {
         let es = self.dtype.size();
         for s in &self.shards {
-            let len = s.rows * s.stride * es;
+            let len = s.logits_len(es);
             let _ = s
                 .file
                 .map
                 .advise_range(memmap2::Advice::Sequential, s.logits_start, len);
             #[cfg(target_os = "linux")]
             if let Some(f) = &s.reader {
-                use std::os::fd::AsRawFd;
-                // SAFETY: a hint on an open descriptor; it reads and writes no
-                // memory of this process.
-                unsafe {
-                    libc::posix_fadvise(
-                        f.as_raw_fd(),
-                        s.logits_start as libc::off_t,
-                        len as libc::off_t,
-                        libc::POSIX_FADV_SEQUENTIAL,
-                    );
-                }
+                fadvise(f, s.logits_start, len, libc::POSIX_FADV_SEQUENTIAL);
             }
         }
     }
@@ -594,7 +561,7 @@ impl Shard {
         let Some(before) = thread_faults() else {
             return false;
         };
-        if self.rows * self.stride * es < PIECE || self.mostly_uncached(es) {
+        if self.logits_len(es) < PIECE || self.mostly_uncached(es) {
             return false;
         }
         let page = page_size();
@@ -616,12 +583,38 @@ impl Shard {
         }
     }
 
+    /// Bytes of this shard's logits.
+    fn logits_len(&self, es: usize) -> usize {
+        self.rows * self.stride * es
+    }
+
+    /// Byte offset in the file of `row` (a global row this shard holds).
+    fn row_start(&self, row: usize, es: usize) -> usize {
+        self.logits_start + (row - self.first_row) * self.stride * es
+    }
+
+    /// Fills `buf` with the first bytes of `row` by one positioned read
+    /// from `f` (this shard's file); false where that failed or the system
+    /// has no positioned reads.
+    fn read_row_into(&self, f: &std::fs::File, row: usize, es: usize, buf: &mut [u8]) -> bool {
+        #[cfg(unix)]
+        {
+            use std::os::unix::fs::FileExt;
+            f.read_exact_at(buf, self.row_start(row, es) as u64).is_ok()
+        }
+        #[cfg(not(unix))]
+        {
+            let _ = (f, row, es, buf);
+            false
+        }
+    }
+
     /// Piece k of the probe's eight: PIECE bytes starting at (2k + 1) / 16
     /// of the way through the shard's logits, on a page boundary (the last
     /// one ends inside the shard; pieces overlap on a shard under 8 MiB).
     /// The shard holds at least PIECE bytes.
     fn piece(&self, k: usize, es: usize) -> &[u8] {
-        let (total, page) = (self.rows * self.stride * es, page_size());
+        let (total, page) = (self.logits_len(es), page_size());
         let from = ((total - PIECE) * (2 * k + 1) / (2 * PIECES)) / page * page;
         &self.file.map[self.logits_start + from..][..PIECE]
     }
@@ -630,7 +623,7 @@ impl Shard {
     /// (`mincore`, nothing touched). False where the system cannot tell,
     /// or the shard holds under PIECE bytes.
     fn mostly_uncached(&self, es: usize) -> bool {
-        if self.rows * self.stride * es < PIECE {
+        if self.logits_len(es) < PIECE {
             return false;
         }
         let page = page_size();
@@ -644,6 +637,23 @@ impl Shard {
 /// The probe's pieces of a shard (`Shard::piece`): how many, and their size.
 const PIECES: usize = 8;
 const PIECE: usize = 1 << 20;
+
+/// Gives the kernel a hint about how bytes `off .. off + len` of `f` will
+/// be used (`posix_fadvise`); a hint only, so its result is ignored.
+#[cfg(target_os = "linux")]
+fn fadvise(f: &std::fs::File, off: usize, len: usize, advice: libc::c_int) {
+    use std::os::fd::AsRawFd;
+    // SAFETY: a hint on an open descriptor; it reads and writes no memory
+    // of this process.
+    unsafe {
+        libc::posix_fadvise(
+            f.as_raw_fd(),
+            off as libc::off_t,
+            len as libc::off_t,
+            advice,
+        );
+    }
+}
 
 /// `KLGAUGE_IO=map` or `KLGAUGE_IO=read`: how the streaming pass reads rows,
 /// whatever the probe would choose (`map_streams_cheaply`).
@@ -792,13 +802,11 @@ mod tests {
     #[cfg(target_os = "linux")]
     #[test]
     fn a_shard_not_in_the_page_cache_is_read_without_touching_the_map() {
-        use std::os::fd::AsRawFd;
         let path = bf16_file("cold", 512, 8192);
         {
             let file = std::fs::File::open(&path).unwrap();
             file.sync_all().unwrap();
-            // SAFETY: a hint on an open descriptor.
-            unsafe { libc::posix_fadvise(file.as_raw_fd(), 0, 0, libc::POSIX_FADV_DONTNEED) };
+            fadvise(&file, 0, 0, libc::POSIX_FADV_DONTNEED);
         }
         let f = LogitFile::open(&path).unwrap();
         let s = &f.shards[0];
