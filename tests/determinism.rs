@@ -3,9 +3,10 @@
 //! shards. Only the timing fields (`timing` and
 //! `candidates[].sampling_cost.exact_pass_seconds`) may differ.
 //!
-//! The input spans several engine blocks (64 rows each) with a ragged last
-//! block, three candidates in three dtypes, uneven prompts, masked rows, rows
-//! without a target, rows with NaN (skipped) and an infinite kl, so every
+//! The input spans two engine blocks (256 rows each, and many more at the
+//! block sizes one test asks for) with a ragged last block, three
+//! candidates in three dtypes, uneven prompts, masked rows, rows without a
+//! target, rows with NaN (skipped) and an infinite kl, so every
 //! reduction path (per-prompt sums, percentiles, worst lists, estimators,
 //! skipped lists, paired comparisons) is exercised.
 
@@ -263,6 +264,40 @@ fn rows_read_from_the_map_or_by_positioned_reads_give_the_same_report() {
         );
         assert_eq!(auto.json, r.json, "JSON differs with KLGAUGE_IO={io}");
         assert!(auto.csv == r.csv, "CSV differs with KLGAUGE_IO={io}");
+    }
+}
+
+#[test]
+fn the_block_size_does_not_change_the_report() {
+    // Where the files cannot stay in the page cache, a run takes fewer rows
+    // per block (see `engine::block_rows`); a block's end settles the total
+    // variations its rows left to later passes, which must not change them.
+    let inp = inputs();
+    let base = run(
+        &inp,
+        &inp.reference,
+        &inp.candidates,
+        2,
+        7,
+        "b-default",
+        &[],
+    );
+    for rows in ["1", "5", "16", "64"] {
+        let r = run(
+            &inp,
+            &inp.reference,
+            &inp.candidates,
+            2,
+            7,
+            &format!("b-{rows}"),
+            &[("KLGAUGE_BLOCK_ROWS", rows)],
+        );
+        assert_eq!(base.json, r.json, "JSON differs with {rows} rows per block");
+        assert!(base.csv == r.csv, "CSV differs with {rows} rows per block");
+        assert_eq!(
+            base.text, r.text,
+            "terminal report differs with {rows} rows per block"
+        );
     }
 }
 
