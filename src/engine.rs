@@ -668,16 +668,13 @@ pub fn run(
         .collect();
     // Files that cannot all stay in the page cache are dropped from it
     // behind the pass (see `input::room`).
-    let streamed: u64 = files
-        .iter()
-        .map(|f| (range.len() * f.row_len_bytes()) as u64)
-        .sum();
+    let row_bytes: usize = files.iter().map(|f| f.row_len_bytes()).sum();
+    let streamed = (range.len() * row_bytes) as u64;
     let room = crate::input::room::cache_room();
     let drop_behind = room.is_some_and(|room| streamed > room);
     for f in &files {
         f.set_drop_behind(drop_behind);
     }
-    let row_bytes: usize = files.iter().map(|f| f.row_len_bytes()).sum();
     let block = block_rows(opts.block_rows, row_bytes, room.filter(|_| drop_behind));
     let nc = candidates.len();
     // Every file has the reference's rows (checked by `align`).
