@@ -110,6 +110,9 @@ struct Shard {
     /// Whether the streaming pass reads rows straight from the map (see
     /// `LogitFile::stored_row`), decided on first use.
     stream_map: std::sync::OnceLock<bool>,
+    /// Whether most of the probe's pieces were out of the page cache when
+    /// first asked (see `Shard::mostly_uncached`).
+    uncached: std::sync::OnceLock<bool>,
     /// Whether `release_before` also drops finished rows from the page
     /// cache (see `LogitFile::set_drop_behind`).
     drop_behind: std::sync::atomic::AtomicBool,
@@ -304,6 +307,7 @@ impl LogitFile {
                 released: AtomicUsize::new(0),
                 reader: std::fs::File::open(fpath).ok(),
                 stream_map: std::sync::OnceLock::new(),
+                uncached: std::sync::OnceLock::new(),
                 drop_behind: std::sync::atomic::AtomicBool::new(false),
                 file,
             });
@@ -463,8 +467,8 @@ impl LogitFile {
     }
 
     /// Makes `release_before` also drop the finished rows from the page
-    /// cache, in the shards that were mostly not cached when this is
-    /// called. For a run whose files cannot stay cached anyway (more than
+    /// cache, in the shards that were mostly not cached when first asked
+    /// (`Shard::mostly_uncached`: here, at the start of the run). For a run whose files cannot stay cached anyway (more than
     /// `room::cache_room`): it frees their pages at once instead of leaving
     /// reclaim to find them (see `input::room`). Off by default: files
     /// that fit stay cached for the next run. A shard found cached is left
@@ -621,16 +625,20 @@ impl Shard {
 
     /// Whether most of the probe's pieces are not in the page cache
     /// (`mincore`, nothing touched). False where the system cannot tell,
-    /// or the shard holds under PIECE bytes.
+    /// or the shard holds under PIECE bytes. Asked once per shard, when a
+    /// run begins (by `set_drop_behind`, else by the probe), and kept: both
+    /// want the state the run found, not one its own reads have changed.
     fn mostly_uncached(&self, es: usize) -> bool {
-        if self.logits_len(es) < PIECE {
-            return false;
-        }
-        let page = page_size();
-        let cached: Option<usize> = (0..PIECES)
-            .map(|k| resident_pages(self.piece(k, es), page))
-            .sum();
-        cached.is_some_and(|c| 2 * c * page < PIECES * PIECE)
+        *self.uncached.get_or_init(|| {
+            if self.logits_len(es) < PIECE {
+                return false;
+            }
+            let page = page_size();
+            let cached: Option<usize> = (0..PIECES)
+                .map(|k| resident_pages(self.piece(k, es), page))
+                .sum();
+            cached.is_some_and(|c| 2 * c * page < PIECES * PIECE)
+        })
     }
 }
 
