@@ -246,25 +246,42 @@ fn one_two_and_sixteen_threads_give_byte_identical_reports() {
     assert!(a.csv.len() > 3 * 400 * 50, "CSV unexpectedly short");
 }
 
-#[test]
-fn rows_read_from_the_map_or_by_positioned_reads_give_the_same_report() {
-    // How rows are read (chosen per file by measuring page faults, see
-    // LogitFile::stored_row) only changes where the bytes come from.
+/// Runs the inputs (two threads, seed 7) once without the environment
+/// variable `var` and once with each of `values`, and asserts the same
+/// JSON, CSV and terminal report every time.
+fn same_report_whatever(var: &str, values: &[&str]) {
     let inp = inputs();
-    let auto = run(&inp, &inp.reference, &inp.candidates, 2, 7, "io-auto", &[]);
-    for io in ["map", "read"] {
+    let tag = var.to_lowercase();
+    let base = run(
+        &inp,
+        &inp.reference,
+        &inp.candidates,
+        2,
+        7,
+        &format!("{tag}-unset"),
+        &[],
+    );
+    for v in values {
         let r = run(
             &inp,
             &inp.reference,
             &inp.candidates,
             2,
             7,
-            &format!("io-{io}"),
-            &[("KLGAUGE_IO", io)],
+            &format!("{tag}-{v}"),
+            &[(var, v)],
         );
-        assert_eq!(auto.json, r.json, "JSON differs with KLGAUGE_IO={io}");
-        assert!(auto.csv == r.csv, "CSV differs with KLGAUGE_IO={io}");
+        assert_eq!(base.json, r.json, "JSON differs with {var}={v}");
+        assert!(base.csv == r.csv, "CSV differs with {var}={v}");
+        assert_eq!(base.text, r.text, "terminal report differs with {var}={v}");
     }
+}
+
+#[test]
+fn rows_read_from_the_map_or_by_positioned_reads_give_the_same_report() {
+    // How rows are read (chosen per file by measuring page faults, see
+    // LogitFile::stored_row) only changes where the bytes come from.
+    same_report_whatever("KLGAUGE_IO", &["map", "read"]);
 }
 
 #[test]
@@ -272,33 +289,7 @@ fn the_block_size_does_not_change_the_report() {
     // Where the files cannot stay in the page cache, a run takes fewer rows
     // per block (see `engine::block_rows`); a block's end settles the total
     // variations its rows left to later passes, which must not change them.
-    let inp = inputs();
-    let base = run(
-        &inp,
-        &inp.reference,
-        &inp.candidates,
-        2,
-        7,
-        "b-default",
-        &[],
-    );
-    for rows in ["1", "5", "16", "64"] {
-        let r = run(
-            &inp,
-            &inp.reference,
-            &inp.candidates,
-            2,
-            7,
-            &format!("b-{rows}"),
-            &[("KLGAUGE_BLOCK_ROWS", rows)],
-        );
-        assert_eq!(base.json, r.json, "JSON differs with {rows} rows per block");
-        assert!(base.csv == r.csv, "CSV differs with {rows} rows per block");
-        assert_eq!(
-            base.text, r.text,
-            "terminal report differs with {rows} rows per block"
-        );
-    }
+    same_report_whatever("KLGAUGE_BLOCK_ROWS", &["1", "5", "16", "64"]);
 }
 
 #[test]
