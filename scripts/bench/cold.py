@@ -15,7 +15,9 @@ disk. In each round it runs, in turn: `cat` of the same files to
 with the kernel's read-ahead), `klgauge compare` (default metrics and
 --samples), and, with --old, another klgauge build. It prints the median
 wall seconds, GB/s of logits read, and the median of the per-round ratios
-to `cat` (1.0: klgauge reads the files as fast as cat does).
+to `cat` (1.0: klgauge reads the files as fast as cat does), and how many
+bytes each run read from the disk (more than the files hold: it read some
+of them twice).
 
 With --limit-mib the same rounds run again inside a memory cgroup of that
 size (cgroup v2 `memory.max` or v1 `memory.limit_in_bytes`; needs root),
@@ -31,6 +33,7 @@ virtual machine moves within minutes (cat of the same 1 GB took 0.33 s to
 """
 import argparse
 import os
+import resource
 import statistics
 import subprocess
 import sys
@@ -107,26 +110,35 @@ class Cgroup:
 
 
 def timed(cmd, files, cg):
+    """Wall seconds of one run on files just dropped from the page cache,
+    and the bytes it read from the disk (the children's block input
+    count, `ru_inblock`, which counts 512-byte units on Linux): more than
+    the files hold means the run read some of them twice."""
     drop(files)
     time.sleep(0.2)
     pre = cg.join if cg else None
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_inblock
     t0 = time.perf_counter()
     p = subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, preexec_fn=pre)
     wall = time.perf_counter() - t0
+    read = (resource.getrusage(resource.RUSAGE_CHILDREN).ru_inblock - before) * 512
     if p.returncode not in (0, 1):
         sys.exit(f"{' '.join(cmd)} failed ({p.returncode}):\n{p.stderr.decode(errors='replace')}")
-    return wall
+    return wall, read
 
 
 def measure(title, cases, files, rounds, cg):
     gb = sum(os.path.getsize(f) for f in files) / 1e9
     times = {name: [] for name, _ in cases}
+    reads = {name: [] for name, _ in cases}
     peaks = {name: [] for name, _ in cases}
     if cg:
         cg.peak_and_reset()
     for _ in range(rounds):
         for name, cmd in cases:
-            times[name].append(timed(cmd, files, cg))
+            wall, read = timed(cmd, files, cg)
+            times[name].append(wall)
+            reads[name].append(read)
             if cg:
                 peaks[name].append(cg.peak_and_reset())
     print(f"\n{title}: {len(files)} files, {gb:.2f} GB, {rounds} rounds, each run on files "
@@ -137,8 +149,9 @@ def measure(title, cases, files, rounds, cg):
         ratio = statistics.median(a / b for a, b in zip(t, base))
         peak = [p for p in peaks[name] if p is not None]
         pk = f"  cgroup peak {max(peak):5.0f} MiB" if peak else ""
+        rd = f"  read {min(reads[name]) / 1e9:.2f} to {max(reads[name]) / 1e9:.2f} GB"
         print(f"  {name:22s} median {statistics.median(t):6.3f} s  best {min(t):6.3f} s  "
-              f"{gb / statistics.median(t):5.2f} GB/s  / cat per round {ratio:5.2f}{pk}")
+              f"{gb / statistics.median(t):5.2f} GB/s  / cat per round {ratio:5.2f}{rd}{pk}")
 
 
 def main():
