@@ -829,34 +829,46 @@ mod tests {
         let _ = std::fs::remove_file(&path);
     }
 
-    /// With drop-behind, finished rows released block by block, at row
-    /// boundaries that fall inside the page cache's large pieces, leave none
-    /// of their pages cached up to the last `DROP_ALIGN` boundary, and the
-    /// rows not yet finished stay cached. (Dropping each block's exact
-    /// range, as before, left 48 of those pages cached on the machine
-    /// where this was found, where the file sits in pieces of up to 2 MiB.)
-    /// Where the file system keeps the file in memory anyway (tmpfs), there
-    /// is nothing to check.
+    /// `bf16_file` dropped from the page cache and opened; None (the file
+    /// removed) where the file system keeps it in memory anyway (tmpfs),
+    /// where a test of reading uncached files has nothing to check.
     #[cfg(target_os = "linux")]
-    #[test]
-    fn drop_behind_leaves_no_finished_rows_cached() {
-        // 16 KiB rows; blocks of 37 rows (592 KiB) end inside 2 MiB pieces.
-        let (rows, vocab, block) = (1024, 8192, 37);
-        let path = bf16_file("dropped", rows, vocab);
+    fn uncached_bf16_file(tag: &str, rows: usize, vocab: usize) -> Option<(PathBuf, LogitFile)> {
+        let path = bf16_file(tag, rows, vocab);
         {
             let file = std::fs::File::open(&path).unwrap();
             file.sync_all().unwrap();
             fadvise(&file, 0, 0, libc::POSIX_FADV_DONTNEED);
         }
         let f = LogitFile::open(&path).unwrap();
+        let map = &f.shards[0].file.map[..];
+        let page = page_size();
+        if 4 * resident_pages(map, page).unwrap() > map.len() / page {
+            eprintln!("skipped: the file system kept the file in memory");
+            drop(f);
+            let _ = std::fs::remove_file(&path);
+            return None;
+        }
+        Some((path, f))
+    }
+
+    /// With drop-behind, finished rows released block by block, at row
+    /// boundaries that fall inside the page cache's large pieces, leave none
+    /// of their pages cached up to the last `DROP_ALIGN` boundary, and the
+    /// rows not yet finished stay cached. (Dropping each block's exact
+    /// range, as before, left 48 of those pages cached on the machine
+    /// where this was found, where the file sits in pieces of up to 2 MiB.)
+    #[cfg(target_os = "linux")]
+    #[test]
+    fn drop_behind_leaves_no_finished_rows_cached() {
+        // 16 KiB rows; blocks of 37 rows (592 KiB) end inside 2 MiB pieces.
+        let (rows, vocab, block) = (1024, 8192, 37);
+        let Some((path, f)) = uncached_bf16_file("dropped", rows, vocab) else {
+            return;
+        };
         let s = &f.shards[0];
         let page = page_size();
         let map = &s.file.map[..];
-        if 4 * resident_pages(map, page).unwrap() > map.len() / page {
-            eprintln!("skipped: the file system kept the file in memory");
-            let _ = std::fs::remove_file(&path);
-            return;
-        }
         f.set_drop_behind(true);
         assert!(s.drop_behind.load(Ordering::Relaxed));
         // Row by row, front to back, as the pass reads it: the read-ahead
@@ -894,22 +906,13 @@ mod tests {
     #[cfg(target_os = "linux")]
     #[test]
     fn a_shard_not_in_the_page_cache_is_read_without_touching_the_map() {
-        let path = bf16_file("cold", 512, 8192);
-        {
-            let file = std::fs::File::open(&path).unwrap();
-            file.sync_all().unwrap();
-            fadvise(&file, 0, 0, libc::POSIX_FADV_DONTNEED);
-        }
-        let f = LogitFile::open(&path).unwrap();
+        let Some((path, f)) = uncached_bf16_file("cold", 512, 8192) else {
+            return;
+        };
         let s = &f.shards[0];
         let page = page_size();
         let logits = &s.file.map[s.logits_start..];
         let before = resident_pages(logits, page).unwrap();
-        if 4 * before > logits.len() / page {
-            eprintln!("skipped: the file system kept the file in memory");
-            let _ = std::fs::remove_file(&path);
-            return;
-        }
         f.set_drop_behind(true);
         assert!(s.drop_behind.load(Ordering::Relaxed));
         f.set_drop_behind(false);
