@@ -111,12 +111,18 @@ class Cgroup:
 
 def timed(cmd, files, cg):
     """Wall seconds of one run on files just dropped from the page cache,
-    and the bytes it read from the disk (the children's block input
-    count, `ru_inblock`, which counts 512-byte units on Linux): more than
-    the files hold means the run read some of them twice."""
+    the bytes it read from the disk (the children's block input count,
+    `ru_inblock`, which counts 512-byte units on Linux: more than the
+    files hold means the run read some of them twice), and the cgroup's
+    peak usage in MiB during the run (None without one). The peak is
+    reset after the drop: the page cache a previous run left in the
+    cgroup stays charged to it until then, and was counted in the next
+    run's peak."""
     drop(files)
     time.sleep(0.2)
     pre = cg.join if cg else None
+    if cg:
+        cg.peak_and_reset()
     before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_inblock
     t0 = time.perf_counter()
     p = subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, preexec_fn=pre)
@@ -124,7 +130,7 @@ def timed(cmd, files, cg):
     read = (resource.getrusage(resource.RUSAGE_CHILDREN).ru_inblock - before) * 512
     if p.returncode not in (0, 1):
         sys.exit(f"{' '.join(cmd)} failed ({p.returncode}):\n{p.stderr.decode(errors='replace')}")
-    return wall, read
+    return wall, read, cg.peak_and_reset() if cg else None
 
 
 def measure(title, cases, files, rounds, cg):
@@ -132,15 +138,12 @@ def measure(title, cases, files, rounds, cg):
     times = {name: [] for name, _ in cases}
     reads = {name: [] for name, _ in cases}
     peaks = {name: [] for name, _ in cases}
-    if cg:
-        cg.peak_and_reset()
     for _ in range(rounds):
         for name, cmd in cases:
-            wall, read = timed(cmd, files, cg)
+            wall, read, peak = timed(cmd, files, cg)
             times[name].append(wall)
             reads[name].append(read)
-            if cg:
-                peaks[name].append(cg.peak_and_reset())
+            peaks[name].append(peak)
     print(f"\n{title}: {len(files)} files, {gb:.2f} GB, {rounds} rounds, each run on files "
           "dropped from the page cache")
     base = times["cat"]
