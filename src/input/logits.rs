@@ -103,11 +103,10 @@ struct Shard {
     logits_start: usize,
     /// Columns per stored row (the file's own vocabulary).
     stride: usize,
-    /// Map offset up to which pages were already released.
+    /// Map offset up to which pages were already released (with
+    /// drop-behind, dropped from the page cache up to the last
+    /// `DROP_ALIGN` boundary before it).
     released: AtomicUsize,
-    /// File offset up to which finished rows were dropped from the page
-    /// cache (with drop-behind; a multiple of `DROP_ALIGN`).
-    dropped: AtomicUsize,
     /// The file opened for positioned reads (the streaming path).
     reader: Option<std::fs::File>,
     /// Whether the streaming pass reads rows straight from the map (see
@@ -308,7 +307,6 @@ impl LogitFile {
                 logits_start: logits.start,
                 stride: v,
                 released: AtomicUsize::new(0),
-                dropped: AtomicUsize::new(0),
                 reader: std::fs::File::open(fpath).ok(),
                 stream_map: std::sync::OnceLock::new(),
                 uncached: std::sync::OnceLock::new(),
@@ -458,14 +456,16 @@ impl LogitFile {
                 };
                 s.released.store(end, Ordering::Relaxed);
             }
-            // Pages still mapped (by another process) stay.
+            // Pages still mapped (by another process) stay. The last call
+            // dropped up to `begin`'s boundary, where this range starts.
             #[cfg(target_os = "linux")]
             if let (true, Some(f)) = (s.drop_behind.load(Ordering::Relaxed), &s.reader) {
-                let cut = end / DROP_ALIGN * DROP_ALIGN;
-                let from = s.dropped.load(Ordering::Relaxed);
+                let (from, cut) = (
+                    begin / DROP_ALIGN * DROP_ALIGN,
+                    end / DROP_ALIGN * DROP_ALIGN,
+                );
                 if cut > from {
                     fadvise(f, from, cut - from, libc::POSIX_FADV_DONTNEED);
-                    s.dropped.store(cut, Ordering::Relaxed);
                 }
             }
         }
