@@ -469,8 +469,7 @@ pub fn from_run(run: &ShardRun, result: EngineResult) -> Partial {
                 sketch_record(&s)
             })
             .collect();
-        let resolved =
-            report::resolve_worst(run.reference, file, run.cols, run.targets, &acc.worst);
+        let resolved = report::resolve_worst(run.reference, file, run.cols, run.targets, acc);
         let worst_positions = resolved
             .into_iter()
             .map(|rw| {

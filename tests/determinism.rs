@@ -293,6 +293,14 @@ fn the_block_size_does_not_change_the_report() {
 }
 
 #[test]
+fn dropping_rows_behind_the_pass_does_not_change_the_report() {
+    // Where the files cannot stay in the page cache, finished rows are
+    // dropped from it, blocks are smaller, and the worst positions' top
+    // tokens are taken during the pass instead of read again after it.
+    same_report_whatever("KLGAUGE_DROP_BEHIND", &["always", "never"]);
+}
+
+#[test]
 fn the_seed_moves_only_the_estimators() {
     let inp = inputs();
     let a = run(&inp, &inp.reference, &inp.candidates[..1], 2, 1, "s1", &[]);

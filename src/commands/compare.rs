@@ -143,6 +143,7 @@ fn engine_options(args: &CompareArgs, rows: Option<std::ops::Range<usize>>) -> E
         rows,
         block_rows: crate::engine::BLOCK_ROWS,
         progress: args.progress,
+        drop_behind: None,
     }
 }
 

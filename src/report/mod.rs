@@ -358,26 +358,35 @@ pub struct ResolvedWorst {
     pub context: Option<Vec<i64>>,
 }
 
-/// Reads the top tokens and context of each worst position from the files,
-/// in parallel (each is a row read and normalised twice), in list order.
+/// The top tokens and context of each worst position of `acc`, in list
+/// order: the tokens the pass took (`CandidateAccum::worst_tops`), else
+/// read from the files, in parallel (each is a row read and normalised
+/// twice).
 pub fn resolve_worst(
     reference: &LogitFile,
     candidate: &LogitFile,
     cols: usize,
     targets: Option<&[i64]>,
-    worst: &[WorstPosition],
+    acc: &CandidateAccum,
 ) -> Vec<ResolvedWorst> {
     use rayon::prelude::*;
-    worst
+    acc.worst
         .par_iter()
         .map_init(
             || (Vec::new(), Vec::new()),
             |buf, w| {
                 let row = w.row as usize;
+                let (ref_top, cand_top) = match acc.worst_tops.get(&w.row) {
+                    Some(t) => (t.reference.clone(), t.candidate.clone()),
+                    None => (
+                        engine::top_tokens(reference, row, cols, engine::TOP_TOKENS, buf),
+                        engine::top_tokens(candidate, row, cols, engine::TOP_TOKENS, buf),
+                    ),
+                };
                 ResolvedWorst {
                     at: w.clone(),
-                    ref_top: engine::top_tokens(reference, row, cols, 5, buf),
-                    cand_top: engine::top_tokens(candidate, row, cols, 5, buf),
+                    ref_top,
+                    cand_top,
                     context: context_ids(targets, row, w.position as usize),
                 }
             },
@@ -447,7 +456,7 @@ pub fn build(inputs: &BuildInputs, mut result: EngineResult) -> Report {
             file: FileSummary::of(file),
             acc,
             aggregates,
-            worst: resolve_worst(r, file, inputs.cols, inputs.targets, &acc.worst),
+            worst: resolve_worst(r, file, inputs.cols, inputs.targets, acc),
             storage_floor: crate::floor::mean_floor(acc.floor_sum, acc.floor_rows),
             kl_p99_ci95: p99_ci,
         });
