@@ -485,11 +485,24 @@ impl LogitFile {
     /// alone even then: something holds it in memory (a larger machine
     /// outside this process's memory cgroup, say), and dropping its pages
     /// would only send the next run to the disk.
+    ///
+    /// Such shards also go back to the device's plain read-ahead, not twice
+    /// it (`advise_sequential`): the kernel keeps up to two windows in
+    /// flight per file, and within a memory limit the doubled windows of
+    /// several files crowded out the rows the pass was about to read, which
+    /// it then read from the disk a second time (three candidates in a
+    /// 128 MiB cgroup where `read_ahead_kb` is 8192: 2.5 to 2.7 GB read for
+    /// 2.10 GB of files, 1.7 times as long as `cat`; with the plain
+    /// windows 2.10 GB; see DEVELOPERS.md, "Reading rows").
     pub fn set_drop_behind(&self, on: bool) {
         let es = self.dtype.size();
         for s in &self.shards {
             let drop = on && s.mostly_uncached(es);
             s.drop_behind.store(drop, Ordering::Relaxed);
+            #[cfg(target_os = "linux")]
+            if let (true, Some(f)) = (drop, &s.reader) {
+                fadvise(f, s.logits_start, s.logits_len(es), libc::POSIX_FADV_NORMAL);
+            }
         }
     }
 
