@@ -706,8 +706,10 @@ pub fn run(
     let drop_behind = opts
         .drop_behind
         .unwrap_or_else(|| drops_behind(streamed, room));
+    // Each file's read-ahead may take a quarter of the room's share per file.
+    let ahead_room = room.map_or(u64::MAX, |r| r / 4 / files.len() as u64);
     for f in &files {
-        f.set_drop_behind(drop_behind);
+        f.set_drop_behind(drop_behind, ahead_room);
     }
     let block = block_rows(opts.block_rows, row_bytes, room.filter(|_| drop_behind));
     let nc = candidates.len();

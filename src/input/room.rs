@@ -78,6 +78,41 @@ fn cgroup_limit(cgroups: &str, root: &Path, read: impl Fn(&Path) -> Option<Strin
     best
 }
 
+/// The read-ahead window, in bytes, of the block device that holds `file`
+/// (its `read_ahead_kb`), or None where the system does not say: not
+/// Linux, or a file system with no single device behind it.
+pub fn device_read_ahead(file: &std::fs::File) -> Option<u64> {
+    #[cfg(target_os = "linux")]
+    {
+        use std::os::unix::fs::MetadataExt;
+        let dev = file.metadata().ok()?.dev();
+        read_ahead_of(dev, |p| std::fs::read_to_string(p).ok())
+    }
+    #[cfg(not(target_os = "linux"))]
+    {
+        let _ = file;
+        None
+    }
+}
+
+/// `read_ahead_kb` in bytes for device number `dev` (glibc's encoding of
+/// major and minor, as `stat` gives it), read with `read`: the device's
+/// backing-device entry, else its block queue, else the queue of the disk a
+/// partition belongs to (sysfs-block(5), common practice).
+fn read_ahead_of(dev: u64, read: impl Fn(&Path) -> Option<String>) -> Option<u64> {
+    let major = ((dev >> 32) & 0xffff_f000) | ((dev >> 8) & 0xfff);
+    let minor = ((dev >> 12) & 0xffff_ff00) | (dev & 0xff);
+    let id = format!("{major}:{minor}");
+    [
+        format!("/sys/class/bdi/{id}/read_ahead_kb"),
+        format!("/sys/dev/block/{id}/queue/read_ahead_kb"),
+        format!("/sys/dev/block/{id}/../queue/read_ahead_kb"),
+    ]
+    .iter()
+    .find_map(|p| read(Path::new(p))?.trim().parse::<u64>().ok())
+    .map(|kb| kb * 1024)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -97,6 +132,23 @@ mod tests {
             .map(|(k, v)| (k.to_string(), v.to_string()))
             .collect();
         move |p: &Path| m.get(p.to_str().unwrap()).cloned()
+    }
+
+    #[test]
+    fn read_ahead_of_the_device_or_the_disk_of_its_partition() {
+        // 254:0 as stat(2) gives it: os.makedev(254, 0) in Python is 65024.
+        let disk = 65024;
+        let read = reader(&[("/sys/class/bdi/254:0/read_ahead_kb", "8192\n")]);
+        assert_eq!(read_ahead_of(disk, &read), Some(8 << 20));
+        // Partition 259:3 of an NVMe disk: only the disk's queue says.
+        let part = 66307; // os.makedev(259, 3)
+        let read = reader(&[("/sys/dev/block/259:3/../queue/read_ahead_kb", "128\n")]);
+        assert_eq!(read_ahead_of(part, &read), Some(128 << 10));
+        // A major above 4095 and a minor above 255: Python's
+        // os.makedev(4660, 74565) (glibc's encoding) is 17592491324485.
+        let read = reader(&[("/sys/class/bdi/4660:74565/read_ahead_kb", "64")]);
+        assert_eq!(read_ahead_of(17592491324485, &read), Some(64 << 10));
+        assert_eq!(read_ahead_of(disk, reader(&[])), None);
     }
 
     #[test]
