@@ -835,7 +835,7 @@ pub fn run(
                 let position = row - reference.prompt_starts[prompt];
                 let target = targets.map(|t| t[row]).filter(|&t| t >= 0);
                 let mut ref_top = None;
-                for k in 0..nc {
+                for (k, cand_file) in candidates.iter().enumerate() {
                     let acc = &mut res.candidates[k];
                     let fault = match (out.ref_fault, out.cands[k].fault) {
                         (Some(f), _) => Some(("reference", f)),
@@ -863,7 +863,7 @@ pub fn run(
                                 top_tokens(reference, row, cols, TOP_TOKENS, tops_buf)
                             })
                             .clone();
-                        let candidate = top_tokens(&candidates[k], row, cols, TOP_TOKENS, tops_buf);
+                        let candidate = top_tokens(cand_file, row, cols, TOP_TOKENS, tops_buf);
                         let tops = RowTops {
                             reference,
                             candidate,
