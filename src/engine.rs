@@ -856,22 +856,24 @@ pub fn run(
                         continue;
                     }
                     let co = &out.cands[k];
-                    let entered = fold_position(acc, co, opts, row, prompt, position, target);
-                    if entered && drop_behind {
-                        let reference = ref_top
-                            .get_or_insert_with(|| {
-                                top_tokens(reference, row, cols, TOP_TOKENS, tops_buf)
-                            })
-                            .clone();
-                        let candidate = top_tokens(cand_file, row, cols, TOP_TOKENS, tops_buf);
-                        let tops = RowTops {
-                            reference,
-                            candidate,
-                        };
-                        acc.worst_tops.insert(row as u64, tops);
-                        let worst = &acc.worst;
-                        acc.worst_tops
-                            .retain(|r, _| worst.iter().any(|w| w.row == *r));
+                    if let Some(left) = fold_position(acc, co, opts, row, prompt, position, target)
+                    {
+                        if let Some(r) = left {
+                            acc.worst_tops.remove(&r);
+                        }
+                        if drop_behind {
+                            let reference = ref_top
+                                .get_or_insert_with(|| {
+                                    top_tokens(reference, row, cols, TOP_TOKENS, tops_buf)
+                                })
+                                .clone();
+                            let candidate = top_tokens(cand_file, row, cols, TOP_TOKENS, tops_buf);
+                            let tops = RowTops {
+                                reference,
+                                candidate,
+                            };
+                            acc.worst_tops.insert(row as u64, tops);
+                        }
                     }
                     sink.position(
                         k,
@@ -929,8 +931,9 @@ pub fn worst_order(a: &WorstPosition, b: &WorstPosition) -> std::cmp::Ordering {
     b.kl.total_cmp(&a.kl).then(a.row.cmp(&b.row))
 }
 
-/// Adds one counted position to a candidate's sums; returns whether it
-/// entered the worst-position list.
+/// Adds one counted position to a candidate's sums. Where it entered the
+/// worst-position list, returns Some with the row that left the list to
+/// make room for it, if one did.
 fn fold_position(
     acc: &mut CandidateAccum,
     co: &CandOut,
@@ -939,7 +942,7 @@ fn fold_position(
     prompt: usize,
     position: usize,
     target: Option<i64>,
-) -> bool {
+) -> Option<Option<u64>> {
     acc.positions += 1;
     let m = &co.m;
     let ps = match acc.prompts.last_mut() {
@@ -987,11 +990,16 @@ fn fold_position(
         if !full || worst_order(&w, acc.worst.last().unwrap()).is_lt() {
             let at = acc.worst.partition_point(|x| worst_order(x, &w).is_lt());
             acc.worst.insert(at, w);
-            acc.worst.truncate(opts.top);
-            return true;
+            // It went in before the last, which leaves where the list was full.
+            let left = if acc.worst.len() > opts.top {
+                acc.worst.pop().map(|l| l.row)
+            } else {
+                None
+            };
+            return Some(left);
         }
     }
-    false
+    None
 }
 
 fn progress_bar(enabled: bool, len: u64) -> indicatif::ProgressBar {
