@@ -498,6 +498,8 @@ impl LogitFile {
     /// as `cat`; with the plain window 2.10 GB, 0.95 times). Where they fit,
     /// the doubled windows read faster (see DEVELOPERS.md, "Reading rows").
     pub fn set_drop_behind(&self, on: bool, ahead_room: u64) {
+        #[cfg(not(target_os = "linux"))]
+        let _ = ahead_room;
         let es = self.dtype.size();
         for s in &self.shards {
             let drop = on && s.mostly_uncached(es);
