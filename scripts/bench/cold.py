@@ -17,7 +17,10 @@ with the kernel's read-ahead), `klgauge compare` (default metrics and
 wall seconds, GB/s of logits read, and the median of the per-round ratios
 to `cat` (1.0: klgauge reads the files as fast as cat does), and how many
 bytes each run read from the disk (more than the files hold: it read some
-of them twice).
+of them twice), and the median share of its wall time during which the
+disk had requests in flight (where sysfs has the device's `stat`): a run
+slower than `cat` with the disk busy for less of it leaves the disk idle
+somewhere.
 
 With --limit-mib the same rounds run again inside a memory cgroup of that
 size (cgroup v2 `memory.max` or v1 `memory.limit_in_bytes`; needs root),
@@ -109,7 +112,26 @@ class Cgroup:
                 pass
 
 
-def timed(cmd, files, cg):
+def disk_busy_ms(files):
+    """A function giving the milliseconds the device holding the files has
+    spent with requests in flight (field 10 of its `stat` in sysfs,
+    `io_ticks`; Documentation/admin-guide/iostats.rst), or None where
+    sysfs has no block device for it (tmpfs, overlay)."""
+    st = os.stat(files[0]).st_dev
+    path = f"/sys/dev/block/{os.major(st)}:{os.minor(st)}/stat"
+    try:
+        with open(path) as f:
+            int(f.read().split()[9])
+    except (OSError, ValueError, IndexError):
+        return None
+
+    def busy():
+        with open(path) as f:
+            return int(f.read().split()[9])
+    return busy
+
+
+def timed(cmd, files, cg, busy=None):
     """Wall seconds of one run on files just dropped from the page cache,
     the bytes it read from the disk (the children's block input count,
     `ru_inblock`, which counts 512-byte units on Linux: more than the
@@ -117,20 +139,23 @@ def timed(cmd, files, cg):
     peak usage in MiB during the run (None without one). The peak is
     reset after the drop: the page cache a previous run left in the
     cgroup stays charged to it until then, and was counted in the next
-    run's peak."""
+    run's peak. With `busy` (see `disk_busy_ms`), also the seconds the
+    disk was busy during the run."""
     drop(files)
     time.sleep(0.2)
     pre = cg.join if cg else None
     if cg:
         cg.peak_and_reset()
     before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_inblock
+    busy0 = busy() if busy else None
     t0 = time.perf_counter()
     p = subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, preexec_fn=pre)
     wall = time.perf_counter() - t0
+    disk = (busy() - busy0) / 1e3 if busy else None
     read = (resource.getrusage(resource.RUSAGE_CHILDREN).ru_inblock - before) * 512
     if p.returncode not in (0, 1):
         sys.exit(f"{' '.join(cmd)} failed ({p.returncode}):\n{p.stderr.decode(errors='replace')}")
-    return wall, read, cg.peak_and_reset() if cg else None
+    return wall, read, cg.peak_and_reset() if cg else None, disk
 
 
 def measure(title, cases, files, rounds, cg):
@@ -138,12 +163,16 @@ def measure(title, cases, files, rounds, cg):
     times = {name: [] for name, _ in cases}
     reads = {name: [] for name, _ in cases}
     peaks = {name: [] for name, _ in cases}
+    disk = {name: [] for name, _ in cases}
+    busy = disk_busy_ms(files)
     for _ in range(rounds):
         for name, cmd in cases:
-            wall, read, peak = timed(cmd, files, cg)
+            wall, read, peak, d = timed(cmd, files, cg, busy)
             times[name].append(wall)
             reads[name].append(read)
             peaks[name].append(peak)
+            if d is not None:
+                disk[name].append(d / wall)
     print(f"\n{title}: {len(files)} files, {gb:.2f} GB, {rounds} rounds, each run on files "
           "dropped from the page cache")
     base = times["cat"]
@@ -153,8 +182,9 @@ def measure(title, cases, files, rounds, cg):
         peak = [p for p in peaks[name] if p is not None]
         pk = f"  cgroup peak {max(peak):5.0f} MiB" if peak else ""
         rd = f"  read {min(reads[name]) / 1e9:.2f} to {max(reads[name]) / 1e9:.2f} GB"
+        dk = f"  disk busy {100 * statistics.median(disk[name]):3.0f}%" if disk[name] else ""
         print(f"  {name:22s} median {statistics.median(t):6.3f} s  best {min(t):6.3f} s  "
-              f"{gb / statistics.median(t):5.2f} GB/s  / cat per round {ratio:5.2f}{rd}{pk}")
+              f"{gb / statistics.median(t):5.2f} GB/s  / cat per round {ratio:5.2f}{rd}{dk}{pk}")
 
 
 def main():
