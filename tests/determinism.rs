@@ -298,6 +298,25 @@ fn dropping_rows_behind_the_pass_does_not_change_the_report() {
     // dropped from it, blocks are smaller, and the worst positions' top
     // tokens are taken during the pass instead of read again after it.
     same_report_whatever("KLGAUGE_DROP_BEHIND", &["always", "never"]);
+    // There the workers claim rows in row order: any number of them gives
+    // the same report.
+    let inp = inputs();
+    let always = [("KLGAUGE_DROP_BEHIND", "always")];
+    let runs: Vec<Run> = [1, 2, 16]
+        .iter()
+        .map(|&t| {
+            let tag = format!("drop-behind-{t}");
+            run(&inp, &inp.reference, &inp.candidates, t, 7, &tag, &always)
+        })
+        .collect();
+    for (r, t) in runs[1..].iter().zip([2, 16]) {
+        assert_eq!(runs[0].json, r.json, "JSON differs at {t} threads");
+        assert!(runs[0].csv == r.csv, "CSV differs at {t} threads");
+        assert_eq!(
+            runs[0].text, r.text,
+            "terminal report differs at {t} threads"
+        );
+    }
 }
 
 #[test]
