@@ -119,15 +119,14 @@ def disk_busy_ms(files):
     sysfs has no block device for it (tmpfs, overlay)."""
     st = os.stat(files[0]).st_dev
     path = f"/sys/dev/block/{os.major(st)}:{os.minor(st)}/stat"
-    try:
-        with open(path) as f:
-            int(f.read().split()[9])
-    except (OSError, ValueError, IndexError):
-        return None
 
     def busy():
         with open(path) as f:
             return int(f.read().split()[9])
+    try:
+        busy()
+    except (OSError, ValueError, IndexError):
+        return None
     return busy
 
 
