@@ -246,6 +246,14 @@ fn one_two_and_sixteen_threads_give_byte_identical_reports() {
     assert!(a.csv.len() > 3 * 400 * 50, "CSV unexpectedly short");
 }
 
+/// Asserts that two runs wrote the same JSON, CSV and terminal report;
+/// `what` names the second run's difference from the first.
+fn assert_same_report(base: &Run, r: &Run, what: &str) {
+    assert_eq!(base.json, r.json, "JSON differs {what}");
+    assert!(base.csv == r.csv, "CSV differs {what}");
+    assert_eq!(base.text, r.text, "terminal report differs {what}");
+}
+
 /// Runs the inputs (two threads, seed 7) once without the environment
 /// variable `var` and once with each of `values`, and asserts the same
 /// JSON, CSV and terminal report every time.
@@ -271,9 +279,7 @@ fn same_report_whatever(var: &str, values: &[&str]) {
             &format!("{tag}-{v}"),
             &[(var, v)],
         );
-        assert_eq!(base.json, r.json, "JSON differs with {var}={v}");
-        assert!(base.csv == r.csv, "CSV differs with {var}={v}");
-        assert_eq!(base.text, r.text, "terminal report differs with {var}={v}");
+        assert_same_report(&base, &r, &format!("with {var}={v}"));
     }
 }
 
@@ -310,12 +316,7 @@ fn dropping_rows_behind_the_pass_does_not_change_the_report() {
         })
         .collect();
     for (r, t) in runs[1..].iter().zip([2, 16]) {
-        assert_eq!(runs[0].json, r.json, "JSON differs at {t} threads");
-        assert!(runs[0].csv == r.csv, "CSV differs at {t} threads");
-        assert_eq!(
-            runs[0].text, r.text,
-            "terminal report differs at {t} threads"
-        );
+        assert_same_report(&runs[0], r, &format!("at {t} threads"));
     }
 }
 
