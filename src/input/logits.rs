@@ -478,7 +478,8 @@ impl LogitFile {
 
     /// Makes `release_before` also drop the finished rows from the page
     /// cache, in the shards that were mostly not cached when first asked
-    /// (`Shard::mostly_uncached`: here, at the start of the run). For a run whose files cannot stay cached anyway (more than
+    /// (`Shard::mostly_uncached`: here, at the start of the run). For a
+    /// run whose files cannot stay cached anyway (more than
     /// `room::cache_room`): it frees their pages at once instead of leaving
     /// reclaim to find them (see `input::room`). Off by default: files
     /// that fit stay cached for the next run. A shard found cached is left
