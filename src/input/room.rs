@@ -95,14 +95,13 @@ pub fn device_read_ahead(file: &std::fs::File) -> Option<u64> {
     }
 }
 
-/// `read_ahead_kb` in bytes for device number `dev` (glibc's encoding of
-/// major and minor, as `stat` gives it), read with `read`: the device's
-/// backing-device entry, else its block queue, else the queue of the disk a
-/// partition belongs to (sysfs-block(5), common practice).
+/// `read_ahead_kb` in bytes for device number `dev` (as `stat` gives it),
+/// read with `read`: the device's backing-device entry, else its block
+/// queue, else the queue of the disk a partition belongs to
+/// (sysfs-block(5), common practice).
+#[cfg(target_os = "linux")]
 fn read_ahead_of(dev: u64, read: impl Fn(&Path) -> Option<String>) -> Option<u64> {
-    let major = ((dev >> 32) & 0xffff_f000) | ((dev >> 8) & 0xfff);
-    let minor = ((dev >> 12) & 0xffff_ff00) | (dev & 0xff);
-    let id = format!("{major}:{minor}");
+    let id = format!("{}:{}", libc::major(dev), libc::minor(dev));
     [
         format!("/sys/class/bdi/{id}/read_ahead_kb"),
         format!("/sys/dev/block/{id}/queue/read_ahead_kb"),
@@ -134,6 +133,7 @@ mod tests {
         move |p: &Path| m.get(p.to_str().unwrap()).cloned()
     }
 
+    #[cfg(target_os = "linux")]
     #[test]
     fn read_ahead_of_the_device_or_the_disk_of_its_partition() {
         // 254:0 as stat(2) gives it: os.makedev(254, 0) in Python is 65024.
