@@ -66,6 +66,12 @@ static inline void route(__m512 x, __m512 y, Sums *s) {
         s->g = _mm512_add_ps(s->g, x);
 }
 
+/* One chunk of the loop: the route test, the step, v stored at `v`. */
+static inline void chunk(__m512 x, __m512 y, const float *e, float *v, Sums *s, __m512 kc, const __m512 *c) {
+    route(x, y, s);
+    _mm512_store_ps(v, step(x, y, _mm512_load_ps(e), s, kc, c));
+}
+
 static inline __m512 widen(const uint16_t *p) {
     return _mm512_castsi512_ps(_mm512_slli_epi32(_mm512_cvtepu16_epi32(_mm256_loadu_si256((const void *)p)), 16));
 }
@@ -110,8 +116,7 @@ int main(void) {
                     if (w == 0) {
                         for (long i = 0; i < n; i += 16) {
                             __m512 x = widen(xb + i), y = widen(yb + i);
-                            route(x, y, &s);
-                            _mm512_store_ps(vbuf + i, step(x, y, _mm512_load_ps(eb + i), &s, kc, c));
+                            chunk(x, y, eb + i, vbuf + i, &s, kc, c);
                         }
                     } else if (w == 1) {
                         for (long i = 0; i < n; i += 32) {
@@ -121,16 +126,13 @@ int main(void) {
                             __m512 y0 = _mm512_castsi512_ps(_mm512_slli_epi32(yr, 16));
                             __m512 x1 = _mm512_castsi512_ps(_mm512_and_si512(xr, hi));
                             __m512 y1 = _mm512_castsi512_ps(_mm512_and_si512(yr, hi));
-                            route(x0, y0, &s);
-                            _mm512_store_ps(vbuf + i, step(x0, y0, _mm512_load_ps(eb + i), &s, kc, c));
-                            route(x1, y1, &s);
-                            _mm512_store_ps(vbuf + i + 16, step(x1, y1, _mm512_load_ps(eb + i + 16), &s, kc, c));
+                            chunk(x0, y0, eb + i, vbuf + i, &s, kc, c);
+                            chunk(x1, y1, eb + i + 16, vbuf + i + 16, &s, kc, c);
                         }
                     } else if (w == 2) {
                         for (long i = 0; i < n; i += 16) {
                             __m512 x = _mm512_load_ps(xf + i), y = widen(yb + i);
-                            route(x, y, &s);
-                            _mm512_store_ps(vbuf + i, step(x, y, _mm512_load_ps(eb + i), &s, kc, c));
+                            chunk(x, y, eb + i, vbuf + i, &s, kc, c);
                         }
                     } else if (w == 3) {
                         for (long i = 0; i < n; i += 16) {
@@ -140,16 +142,14 @@ int main(void) {
                                 _mm512_and_si512(_mm512_sllv_epi32(_mm512_loadu_si512((const void *)(xb + g)), k), hi));
                             __m512 y = _mm512_castsi512_ps(
                                 _mm512_and_si512(_mm512_sllv_epi32(_mm512_loadu_si512((const void *)(yb + g)), k), hi));
-                            route(x, y, &s);
-                            _mm512_store_ps(vbuf + i, step(x, y, _mm512_load_ps(eb + i), &s, kc, c));
+                            chunk(x, y, eb + i, vbuf + i, &s, kc, c);
                         }
                     } else {
                         for (long i = 0; i < n; i += 16) {
                             long off = i - 1 - 15 * ((i >> 4) & 1);
                             __m512 x = _mm512_castsi512_ps(_mm512_and_si512(_mm512_loadu_si512((const void *)(xb + off)), hi));
                             __m512 y = _mm512_castsi512_ps(_mm512_and_si512(_mm512_loadu_si512((const void *)(yb + off)), hi));
-                            route(x, y, &s);
-                            _mm512_store_ps(vbuf + i, step(x, y, _mm512_load_ps(eb + i), &s, kc, c));
+                            chunk(x, y, eb + i, vbuf + i, &s, kc, c);
                         }
                     }
                 }
