@@ -800,19 +800,13 @@ pub fn run(
             // 128 MiB 1.10x against 1.19x). Not for cached files: there the
             // halves let each worker's passes pull its own next row
             // (`Ahead`), and row order measured 0.961x on two threads.
-            let tasks: Vec<std::sync::Mutex<(usize, &mut [RowOut])>> = outs[..row1 - row0]
+            // `par_bridge` hands the tasks out one at a time, in order, to
+            // whichever worker asks next.
+            outs[..row1 - row0]
                 .chunks_mut(TASK_ROWS)
                 .enumerate()
-                .map(std::sync::Mutex::new)
-                .collect();
-            let claimed = std::sync::atomic::AtomicUsize::new(0);
-            (0..scratch.len()).into_par_iter().for_each(|_| loop {
-                let t = claimed.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
-                let Some(task) = tasks.get(t) else { break };
-                let mut task = task.lock().unwrap_or_else(|e| e.into_inner());
-                let (ti, rows) = &mut *task;
-                run_task(*ti, rows);
-            });
+                .par_bridge()
+                .for_each(|(ti, task)| run_task(ti, task));
         } else {
             outs[..row1 - row0]
                 .par_chunks_mut(TASK_ROWS)
