@@ -409,6 +409,15 @@ impl LogitFile {
         self.dtype.row(self.row_bytes(row, cols))
     }
 
+    /// Makes the choice `stored_row` makes when it first reads the shard
+    /// that holds `row` (the map or positioned reads, see there) now, so
+    /// that a caller can have it made for several files side by side
+    /// rather than by whichever worker reads each file first while the
+    /// others wait for it.
+    pub fn choose_reads(&self, row: usize) {
+        self.shard_of(row).streams_from_map(self.dtype.size());
+    }
+
     /// The mapped bytes of `row` for the kernel to pull toward the cache
     /// before it reads them (`kernel::Ahead`), where the streaming pass
     /// reads this file from the map; else none (a positioned read copies

@@ -370,17 +370,24 @@ pub fn resolve_worst(
     acc: &CandidateAccum,
 ) -> Vec<ResolvedWorst> {
     use rayon::prelude::*;
+    // One run of positions per worker, each with one set of buffers
+    // (`map_init` made a set for every piece rayon split off).
+    let per = acc
+        .worst
+        .len()
+        .div_ceil(rayon::current_num_threads().max(1))
+        .max(1);
     acc.worst
-        .par_iter()
-        .map_init(
-            || (Vec::new(), Vec::new()),
-            |buf, w| {
+        .par_chunks(per)
+        .flat_map_iter(|run| {
+            let mut buf = engine::TopBuf::default();
+            run.iter().map(move |w| {
                 let row = w.row as usize;
                 let (ref_top, cand_top) = match acc.worst_tops.get(&w.row) {
                     Some(t) => (t.reference.clone(), t.candidate.clone()),
                     None => (
-                        engine::top_tokens(reference, row, cols, engine::TOP_TOKENS, buf),
-                        engine::top_tokens(candidate, row, cols, engine::TOP_TOKENS, buf),
+                        engine::top_tokens(reference, row, cols, engine::TOP_TOKENS, &mut buf),
+                        engine::top_tokens(candidate, row, cols, engine::TOP_TOKENS, &mut buf),
                     ),
                 };
                 ResolvedWorst {
@@ -389,8 +396,8 @@ pub fn resolve_worst(
                     cand_top,
                     context: context_ids(targets, row, w.position as usize),
                 }
-            },
-        )
+            })
+        })
         .collect()
 }
 
