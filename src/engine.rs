@@ -1053,25 +1053,15 @@ fn progress_bar(enabled: bool, len: u64) -> indicatif::ProgressBar {
     bar
 }
 
-/// Reusable buffers of `top_tokens`: the row as stored (where it is read
-/// rather than mapped), decoded, and its block sums. Each row used to be
-/// read into a fresh 256 KiB buffer; a position whose buffers are new
-/// took 0.5 ms, one that reuses them 0.12 ms (both models' rows, 128k
-/// bf16).
+/// Reusable buffers of `top_tokens`: the row's bytes as read, decoded,
+/// and its block sums. Each row used to be read into a fresh 256 KiB
+/// buffer; a position whose buffers are new took 0.5 ms, one that reuses
+/// them 0.12 ms (both models' rows, 128k bf16).
+#[derive(Default)]
 pub struct TopBuf {
-    raw: Aligned<u8>,
+    bytes: Vec<u8>,
     x: Vec<f32>,
     blocks: Vec<f64>,
-}
-
-impl Default for TopBuf {
-    fn default() -> TopBuf {
-        TopBuf {
-            raw: Aligned::zeroed(0),
-            x: Vec::new(),
-            blocks: Vec::new(),
-        }
-    }
 }
 
 /// The top tokens of a model at one row, for the worst-position list:
@@ -1083,10 +1073,10 @@ pub fn top_tokens(
     k: usize,
     buf: &mut TopBuf,
 ) -> Vec<(u32, f64)> {
-    let TopBuf { raw, x, blocks } = buf;
+    let TopBuf { bytes, x, blocks } = buf;
     x.resize(cols, 0.0);
     blocks.resize(kernel::norm_blocks(cols), 0.0);
-    kernel::decode(file.stored_row(row, cols, raw), x);
+    file.read_row_via(row, x, bytes);
     match kernel::normalise(x, blocks) {
         Ok(n) => kernel::top_k(x, k)
             .into_iter()

@@ -372,11 +372,17 @@ impl LogitFile {
     /// over files larger than the memory allowed, the faults for the 20
     /// worst positions' tokens were 9% of a run's CPU samples.
     pub fn read_row(&self, row: usize, out: &mut [f32]) {
+        self.read_row_via(row, out, &mut Vec::new());
+    }
+
+    /// `read_row` with the caller's reusable buffer for the bytes read
+    /// (`bytes`), for callers that read many rows.
+    pub fn read_row_via(&self, row: usize, out: &mut [f32], bytes: &mut Vec<u8>) {
         let (s, es) = (self.shard_of(row), self.dtype.size());
         if let Some(f) = &s.reader {
-            let mut bytes = vec![0u8; out.len() * es];
-            if s.read_row_into(f, row, es, &mut bytes) {
-                decode_row(self.dtype, &bytes, out);
+            bytes.resize(out.len() * es, 0);
+            if s.read_row_into(f, row, es, bytes) {
+                decode_row(self.dtype, bytes, out);
                 return;
             }
         }
