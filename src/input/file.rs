@@ -98,8 +98,8 @@ impl MappedFile {
         }
         // Read before the crate parses it from the map (which it needs for the
         // file's length), so that its pages are cached and the map's first
-        // fault does not read around them.
-        // (The crate refuses a header over 100 MB without reading it.)
+        // fault does not read around them. The crate refuses a header over
+        // 100 MB without reading it.
         let header = if declared <= 100_000_000 {
             read_at(&file, &map, 8, 8 + declared as usize)
                 .map_err(|e| cannot_read(path, "header", e))?
@@ -154,8 +154,13 @@ impl MappedFile {
     }
 
     /// The bytes of a tensor that is read whole (token ids, flags, offsets,
-    /// log-probabilities), by one positioned read (see `read_at`).
+    /// log-probabilities): up to 1 MiB by one positioned read (see
+    /// `read_at`), larger ones from the map, where reading around the first
+    /// fault reads what comes next anyway and no copy of the bytes is made.
     fn bytes(&self, name: &str, t: &TensorEntry) -> Result<Cow<'_, [u8]>> {
+        if t.end - t.start > 1 << 20 {
+            return Ok(Cow::Borrowed(&self.map[t.start..t.end]));
+        }
         read_at(&self.file, &self.map, t.start, t.end)
             .map_err(|e| cannot_read(&self.path, &format!("tensor `{name}`"), e))
     }
