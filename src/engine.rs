@@ -854,7 +854,11 @@ pub fn run(
         let n = row1 - row0;
         let row2 = (row1 + block).min(range.end);
         // The next block is computed while this one is folded, in row order,
-        // on the calling thread: the fold never holds the workers up.
+        // on the calling thread. `compare` calls from a worker of the pool
+        // (`commands::compare::with_threads`): the fold takes that worker,
+        // the others start the next block, and the folding worker joins
+        // them once done. Called from outside the pool, the fold would be
+        // one thread more than the pool has cores for.
         let folded: Result<()> = rayon::in_place_scope(|sc| {
             if row1 < row2 {
                 let next = &mut next;

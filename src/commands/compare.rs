@@ -58,7 +58,14 @@ pub struct Outcome {
     pub gate_failed: bool,
 }
 
-/// Runs `f` on a pool of `threads` workers (or rayon's default).
+/// Runs `f` on one of the workers of a pool of `threads` (or of rayon's
+/// default pool, one per core), so that a run, its report included, uses
+/// that many threads and no more. Run on the calling thread instead, `f`
+/// was a third thread beside two workers on two cores: the engine folds
+/// each block on the thread that called it while the workers compute the
+/// next, and that fold took turns with a worker (see DEVELOPERS.md,
+/// "Engine"). On a worker the fold takes that worker's time and the
+/// worker then joins the others.
 pub fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Send) -> Result<T> {
     match threads {
         Some(0) => Err(Error::usage("--threads must be at least 1")),
@@ -69,7 +76,8 @@ pub fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Sen
                 .map_err(|e| Error::usage(format!("cannot start {n} threads: {e}")))?;
             Ok(pool.install(f))
         }
-        None => Ok(f()),
+        // `scope` called from outside the pool runs its closure on a worker.
+        None => Ok(rayon::scope(|_| f())),
     }
 }
 
@@ -90,7 +98,6 @@ pub fn compare(args: &CompareArgs) -> Result<Outcome> {
     let opts = engine_options(args, None);
     let samples = engine::budgets(&args.samples);
 
-    let result = run_engine(args, &reference, &candidates, &aligned, &opts)?;
     let inputs = BuildInputs {
         reference: &reference,
         candidates: &candidates,
@@ -105,7 +112,11 @@ pub fn compare(args: &CompareArgs) -> Result<Outcome> {
         vocabulary: vocabulary.as_ref(),
         targets,
     };
-    let report = report::build(&inputs, result);
+    // The report reads the worst positions' rows again, on the same pool.
+    let report = with_threads(args.threads, || -> Result<Report> {
+        let result = run_engine(args, &reference, &candidates, &aligned, &opts)?;
+        Ok(report::build(&inputs, result))
+    })??;
     write_reports(&report, args.json.as_ref(), args.html.as_ref())?;
     let gate_failed = report
         .candidates
@@ -147,7 +158,7 @@ fn engine_options(args: &CompareArgs, rows: Option<std::ops::Range<usize>>) -> E
     }
 }
 
-/// Runs the engine on the requested thread pool, streaming `--csv` if asked.
+/// Runs the engine, streaming `--csv` if asked (inside `with_threads`).
 fn run_engine(
     args: &CompareArgs,
     reference: &LogitFile,
@@ -155,17 +166,15 @@ fn run_engine(
     aligned: &engine::Alignment,
     opts: &EngineOptions,
 ) -> Result<engine::EngineResult> {
-    with_threads(args.threads, || -> Result<engine::EngineResult> {
-        match &args.csv {
-            Some(p) => {
-                let mut sink = CsvSink::create(p, candidates.len(), args.js, args.bits)?;
-                let r = engine::run(reference, candidates, aligned, opts, &mut sink)?;
-                sink.finish()?;
-                Ok(r)
-            }
-            None => engine::run(reference, candidates, aligned, opts, &mut NoSink),
+    match &args.csv {
+        Some(p) => {
+            let mut sink = CsvSink::create(p, candidates.len(), args.js, args.bits)?;
+            let r = engine::run(reference, candidates, aligned, opts, &mut sink)?;
+            sink.finish()?;
+            Ok(r)
         }
-    })?
+        None => engine::run(reference, candidates, aligned, opts, &mut NoSink),
+    }
 }
 
 /// Writes the file reports that were asked for, each atomically.
@@ -249,31 +258,34 @@ pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
     let (prompts, rows) = crate::partial::shard_range(&reference, index, count);
     let samples = engine::budgets(&args.samples);
     let opts = engine_options(args, Some(rows.clone()));
-    let result = run_engine(args, &reference, &candidates, &aligned, &opts)?;
-    let counted = result
-        .candidates
-        .iter()
-        .map(|c| (c.positions, c.skipped_rows))
-        .collect();
-    let run = crate::partial::ShardRun {
-        reference: &reference,
-        candidates: &candidates,
-        cols,
-        targets,
-        settings: crate::partial::SettingsRecord {
-            compared_vocab: cols as u64,
-            vocab: args.vocab.map(|v| v as u64),
-            samples,
-            seed: args.seed,
-            top: args.top,
-            js: args.js,
-            bits: args.bits,
-            sketch_relative_accuracy: crate::sketch::DEFAULT_RELATIVE_ACCURACY,
-        },
-        index,
-        count,
-    };
-    let partial = crate::partial::from_run(&run, result);
+    // The partial's worst positions read their rows again, on the same pool.
+    let (partial, counted) = with_threads(args.threads, || -> Result<_> {
+        let result = run_engine(args, &reference, &candidates, &aligned, &opts)?;
+        let counted = result
+            .candidates
+            .iter()
+            .map(|c| (c.positions, c.skipped_rows))
+            .collect();
+        let run = crate::partial::ShardRun {
+            reference: &reference,
+            candidates: &candidates,
+            cols,
+            targets,
+            settings: crate::partial::SettingsRecord {
+                compared_vocab: cols as u64,
+                vocab: args.vocab.map(|v| v as u64),
+                samples,
+                seed: args.seed,
+                top: args.top,
+                js: args.js,
+                bits: args.bits,
+                sketch_relative_accuracy: crate::sketch::DEFAULT_RELATIVE_ACCURACY,
+            },
+            index,
+            count,
+        };
+        Ok((crate::partial::from_run(&run, result), counted))
+    })??;
     crate::partial::write(&partial, &partial_path)?;
     Ok(ShardOutcome {
         partial: partial_path,
@@ -285,4 +297,36 @@ pub fn compare_shard(args: &CompareArgs) -> Result<ShardOutcome> {
         total_rows: reference.rows,
         counted,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::with_threads;
+
+    /// A run, its report included, takes place on a worker of a pool of the
+    /// size asked for; by default on one of rayon's own pool, not beside it.
+    #[test]
+    fn a_run_takes_place_on_a_worker_of_its_pool() {
+        for n in [1, 3] {
+            let (on_worker, size) = with_threads(Some(n), || {
+                (
+                    rayon::current_thread_index().is_some(),
+                    rayon::current_num_threads(),
+                )
+            })
+            .unwrap();
+            assert!(on_worker, "--threads {n}: the run is not on a worker");
+            assert_eq!(size, n);
+        }
+        let (on_worker, size) = with_threads(None, || {
+            (
+                rayon::current_thread_index().is_some(),
+                rayon::current_num_threads(),
+            )
+        })
+        .unwrap();
+        assert!(on_worker, "default: the run is not on a worker");
+        assert_eq!(size, rayon::current_num_threads());
+        assert!(with_threads(Some(0), || ()).is_err());
+    }
 }
