@@ -259,9 +259,8 @@ fn main() {
         let mut seed = 0u64;
         run("draw_16", &mut || {
             seed += 1;
-            let e = &er3;
             klgauge::estimators::draw_weighted(
-                |i| e[i],
+                klgauge::estimators::Stored::One(&er3),
                 cols,
                 black_box(&br),
                 seed,

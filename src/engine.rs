@@ -8,7 +8,7 @@
 //! block plus the per-position values kept for exact percentiles.
 
 use crate::error::{Error, Result};
-use crate::estimators::{draw_weighted, k_values, EstimatorSums};
+use crate::estimators::{draw_weighted, k_values, EstimatorSums, Stored};
 use crate::input::LogitFile;
 use crate::kernel::buf::Aligned;
 use crate::kernel::{self, Ahead, Row, RowFault, RowNorm};
@@ -521,9 +521,8 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
     let draws = ctx.draws;
     if draws > 0 {
         // The weights are the exponentials the kernel stored.
-        let e = &*er;
         draw_weighted(
-            |i| e[i],
+            Stored::One(er),
             cols,
             br,
             ctx.opts.seed,
@@ -597,10 +596,8 @@ fn compute_row(ctx: &RowCtx, s: &mut Scratch, row: usize, out: &mut RowOut) {
             fold_draws(&mut co.est, 0, &ctx.opts.samples, |j| {
                 log_ratio(xr, &nr, xc, &nc, tp[j])
             });
-            let pair = &*pair;
-            let e = &*er;
             draw_weighted(
-                |i| pair.weight(e, route, i),
+                pair.weights(er, route),
                 cols,
                 &pair.blocks,
                 ctx.opts.seed,

@@ -101,13 +101,69 @@ pub struct DrawScratch {
     prefix: Vec<f64>,
 }
 
-/// `draw_tokens` from the weights themselves: `weight(i)` is column i's
+/// Column weights of the draws' walk: column i's unnormalised probability,
+/// and the f64 sum of the CHUNK columns from `lo` by the kernel's fixed tree
+/// (`lanes::hsum64`), which the walk takes most often.
+pub trait Weights {
+    fn at(&self, i: usize) -> f32;
+
+    #[inline(always)]
+    fn chunk_sum(&self, lo: usize) -> f64 {
+        hsum64(&std::array::from_fn(|j| self.at(lo + j) as f64))
+    }
+}
+
+/// Weights computed column by column (`draw_tokens`, tests).
+impl<F: Fn(usize) -> f32> Weights for F {
+    #[inline(always)]
+    fn at(&self, i: usize) -> f32 {
+        self(i)
+    }
+}
+
+/// Weights the kernel stored: the reference's exponentials, or the
+/// candidate's where the two-pass route made them; or, on the fused route,
+/// the candidate's as the sum of two stored rows, e + v, in f32 as the pass
+/// summed them. Read as slices, a chunk's sum takes one bounds check and
+/// vector loads and conversions; through a closure it took a check, a
+/// scalar load (two for e + v) and a conversion per column (`draw_16` in
+/// the kernel benchmark 1.6 -> 1.5 us; see DEVELOPERS.md, "Estimators").
+#[derive(Debug, Clone, Copy)]
+pub enum Stored<'a> {
+    One(&'a [f32]),
+    Sum(&'a [f32], &'a [f32]),
+}
+
+impl Weights for Stored<'_> {
+    #[inline(always)]
+    fn at(&self, i: usize) -> f32 {
+        match *self {
+            Stored::One(a) => a[i],
+            Stored::Sum(a, b) => a[i] + b[i],
+        }
+    }
+
+    #[inline(always)]
+    fn chunk_sum(&self, lo: usize) -> f64 {
+        let chunk = |r: &[f32]| -> [f32; CHUNK] { r[lo..lo + CHUNK].try_into().unwrap() };
+        let w = match *self {
+            Stored::One(a) => chunk(a),
+            Stored::Sum(a, b) => {
+                let (a, b) = (chunk(a), chunk(b));
+                std::array::from_fn(|j| a[j] + b[j])
+            }
+        };
+        hsum64(&std::array::from_fn(|j| w[j] as f64))
+    }
+}
+
+/// `draw_tokens` from the weights themselves: `weight.at(i)` is column i's
 /// unnormalised probability and `blocks` the sums of those weights per
 /// NORM_BLOCK columns (the engine passes the exponentials the kernel
 /// stored, so nothing is recomputed).
 #[allow(clippy::too_many_arguments)]
 pub fn draw_weighted(
-    weight: impl Fn(usize) -> f32,
+    weight: impl Weights,
     cols: usize,
     blocks: &[f64],
     seed: u64,
@@ -164,7 +220,7 @@ pub fn draw_weighted(
         // columns, and walked one column at a time it was most of a draw's
         // cost (`draw_16` 4.8 us against 2.2 with chunks).
         while w.next + CHUNK <= hi {
-            let cs = chunk_sum(&weight, w.next);
+            let cs = weight.chunk_sum(w.next);
             if w.sum + cs > u {
                 break;
             }
@@ -182,7 +238,7 @@ pub fn draw_weighted(
         let mut sum = w.sum;
         let (mut pick, mut last) = (None, None);
         for i in w.next..end {
-            let e = weight(i) as f64;
+            let e = weight.at(i) as f64;
             if e > 0.0 {
                 last = Some(i);
                 if sum + e > u {
@@ -197,7 +253,7 @@ pub fn draw_weighted(
         // before it is the right answer.
         let pick = pick.or(last).unwrap_or_else(|| {
             w.last_mass
-                .and_then(|c| (c..c + CHUNK).rev().find(|&i| weight(i) > 0.0))
+                .and_then(|c| (c..c + CHUNK).rev().find(|&i| weight.at(i) > 0.0))
                 .unwrap_or(lo)
         });
         out[j] = pick as u32;
@@ -206,13 +262,6 @@ pub fn draw_weighted(
 
 /// Columns per chunk of the draws' walk inside a block: one kernel lane set.
 const CHUNK: usize = W;
-
-/// The sum of weights lo .. lo + CHUNK, in f64, by the kernel's fixed
-/// pairwise tree (`lanes::hsum64`).
-#[inline(always)]
-fn chunk_sum(weight: &impl Fn(usize) -> f32, lo: usize) -> f64 {
-    hsum64(&std::array::from_fn(|j| weight(lo + j) as f64))
-}
 
 /// The running sums of `blocks` into `prefix` (resized to blocks.len() + 1):
 /// prefix[b] is the sum of the blocks before b, prefix[len] the total.
@@ -405,6 +454,54 @@ mod tests {
                 last as u32
             })
             .collect()
+    }
+
+    /// The stored weights read as slices give the bits of the same weights
+    /// read column by column through a closure: each chunk's sum, and so
+    /// every token drawn.
+    #[test]
+    fn stored_weights_draw_what_a_closure_over_them_draws() {
+        let cols = 3 * NORM_BLOCK + 40;
+        let mut st = 11u64;
+        let mut next = || {
+            st += 1;
+            (mix64(st) >> 40) as f32 / (1u64 << 24) as f32
+        };
+        let a: Vec<f32> = (0..cols).map(|_| next() * next() * next()).collect();
+        // v = w - e of a fused pass: of either sign, never below -e.
+        let b: Vec<f32> = a.iter().map(|&e| e * (next() - 0.5)).collect();
+        for lo in (0..cols - CHUNK).step_by(7) {
+            let one = |i: usize| a[i];
+            let sum = |i: usize| a[i] + b[i];
+            assert_eq!(
+                Stored::One(&a).chunk_sum(lo).to_bits(),
+                one.chunk_sum(lo).to_bits()
+            );
+            assert_eq!(
+                Stored::Sum(&a, &b).chunk_sum(lo).to_bits(),
+                sum.chunk_sum(lo).to_bits()
+            );
+        }
+        let blocks = |w: &dyn Fn(usize) -> f32| -> Vec<f64> {
+            (0..cols.div_ceil(NORM_BLOCK))
+                .map(|k| {
+                    (k * NORM_BLOCK..((k + 1) * NORM_BLOCK).min(cols))
+                        .map(|i| w(i) as f64)
+                        .sum()
+                })
+                .collect()
+        };
+        let (bo, bs) = (blocks(&|i| a[i]), blocks(&|i| a[i] + b[i]));
+        let mut s = DrawScratch::default();
+        let (mut x, mut y) = ([0u32; 64], [0u32; 64]);
+        for row in 0..20 {
+            draw_weighted(Stored::One(&a), cols, &bo, 3, row, 0, &mut s, &mut x);
+            draw_weighted(|i: usize| a[i], cols, &bo, 3, row, 0, &mut s, &mut y);
+            assert_eq!(x, y);
+            draw_weighted(Stored::Sum(&a, &b), cols, &bs, 3, row, 1, &mut s, &mut x);
+            draw_weighted(|i: usize| a[i] + b[i], cols, &bs, 3, row, 1, &mut s, &mut y);
+            assert_eq!(x, y);
+        }
     }
 
     #[test]

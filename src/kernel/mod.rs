@@ -1901,14 +1901,15 @@ pub struct PairScratch {
 }
 
 impl PairScratch {
-    /// Column i's weight in the candidate's block sums (`blocks`) after
+    /// The columns' weights in the candidate's block sums (`blocks`) after
     /// `compare_pair` took `route`: exp(y_i - anchor), as the pass summed
-    /// it, for the sampler.
+    /// them, for the sampler.
     #[inline]
-    pub fn weight(&self, er: &[f32], route: Route, i: usize) -> f32 {
+    pub fn weights<'a>(&'a self, er: &'a [f32], route: Route) -> crate::estimators::Stored<'a> {
+        use crate::estimators::Stored;
         match route {
-            Route::Fused => er[i] + self.v[i],
-            Route::TwoPass => self.ec[i],
+            Route::Fused => Stored::Sum(er, &self.v),
+            Route::TwoPass => Stored::One(&self.ec),
         }
     }
 
