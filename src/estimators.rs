@@ -124,10 +124,11 @@ impl<F: Fn(usize) -> f32> Weights for F {
 /// Weights the kernel stored: the reference's exponentials, or the
 /// candidate's where the two-pass route made them; or, on the fused route,
 /// the candidate's as the sum of two stored rows, e + v, in f32 as the pass
-/// summed them. Read as slices, a chunk's sum takes one bounds check and
-/// vector loads and conversions; through a closure it took a check, a
-/// scalar load (two for e + v) and a conversion per column (`draw_16` in
-/// the kernel benchmark 1.6 -> 1.5 us; see DEVELOPERS.md, "Estimators").
+/// summed them. Read as slices, a chunk's sum takes one bounds check per
+/// slice and vector loads and conversions; through a closure it took a
+/// check, a scalar load (two for e + v) and a conversion per column
+/// (`draw_16` in the kernel benchmark 1.6 -> 1.5 us; see DEVELOPERS.md,
+/// "Estimators").
 #[derive(Debug, Clone, Copy)]
 pub enum Stored<'a> {
     One(&'a [f32]),

@@ -60,12 +60,12 @@ pub struct Outcome {
 
 /// Runs `f` on one of the workers of a pool of `threads` (or of rayon's
 /// default pool, one per core), so that a run, its report included, uses
-/// that many threads and no more. Run on the calling thread instead, `f`
-/// was a third thread beside two workers on two cores: the engine folds
-/// each block on the thread that called it while the workers compute the
-/// next, and that fold took turns with a worker (see DEVELOPERS.md,
-/// "Engine"). On a worker the fold takes that worker's time and the
-/// worker then joins the others.
+/// that many threads and no more. On the calling thread, outside the pool,
+/// `f` would be a third thread beside two workers on two cores: the engine
+/// folds each block on the thread that called it while the workers compute
+/// the next, and that fold would take turns with a worker (see
+/// DEVELOPERS.md, "Engine"). On a worker the fold takes that worker's time,
+/// and the worker then joins the others.
 pub fn with_threads<T: Send>(threads: Option<usize>, f: impl FnOnce() -> T + Send) -> Result<T> {
     match threads {
         Some(0) => Err(Error::usage("--threads must be at least 1")),
