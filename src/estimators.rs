@@ -109,8 +109,15 @@ pub trait Weights {
 
     #[inline(always)]
     fn chunk_sum(&self, lo: usize) -> f64 {
-        hsum64(&std::array::from_fn(|j| self.at(lo + j) as f64))
+        chunk_total(&std::array::from_fn(|j| self.at(lo + j)))
     }
+}
+
+/// The f64 sum of one chunk's weights by the kernel's fixed tree: the one
+/// order every `Weights` sums a chunk in.
+#[inline(always)]
+fn chunk_total(w: &[f32; CHUNK]) -> f64 {
+    hsum64(&std::array::from_fn(|j| w[j] as f64))
 }
 
 /// Weights computed column by column (`draw_tokens`, tests).
@@ -154,7 +161,7 @@ impl Weights for Stored<'_> {
                 std::array::from_fn(|j| a[j] + b[j])
             }
         };
-        hsum64(&std::array::from_fn(|j| w[j] as f64))
+        chunk_total(&w)
     }
 }
 
